@@ -1,0 +1,61 @@
+"""The project's exception types.
+
+Library code raises these; only the CLI edge turns them into one-line messages.
+Every message is one line and names the file (and page, field) it concerns.
+"""
+
+__all__ = [
+    "FormreadError", "DataError", "ModelFileError", "ImageError", "LayoutError",
+    "RegistrationError", "SegmentationError", "RuleError", "LedgerError",
+    "ReviewError", "ParameterError",
+]
+
+
+class FormreadError(Exception):
+    """Base of every error formread raises on purpose."""
+
+
+class ParameterError(FormreadError, ValueError):
+    """A bad parameter: names it, says what it must be and what it got."""
+
+
+class DataError(FormreadError):
+    """A dataset or samples folder cannot be used."""
+
+
+class ModelFileError(FormreadError):
+    """A model file is missing, truncated, tampered with or of another version."""
+
+
+class ImageError(FormreadError):
+    """A scan cannot be read: corrupt, truncated, unsupported or oversized."""
+
+
+class LayoutError(FormreadError):
+    """A layout file is malformed or describes an impossible form."""
+
+
+class RegistrationError(FormreadError):
+    """A page cannot be matched to its layout (marks missing, residual too large)."""
+
+
+class SegmentationError(FormreadError):
+    """A field cannot be split into digits."""
+
+
+class RuleError(FormreadError):
+    """A field rule is malformed or names an unknown field."""
+
+
+class LedgerError(FormreadError):
+    """The results ledger or output folder cannot be used."""
+
+
+class ReviewError(FormreadError):
+    """A review action is refused (stale, malformed, unknown field)."""
+
+
+def check_param(ok: bool, name: str, must: str, got: object) -> None:
+    """Raise ParameterError in the project's one message form unless ``ok``."""
+    if not ok:
+        raise ParameterError(f"parameter {name!r} must be {must}; got {got!r}")

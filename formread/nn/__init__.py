@@ -1,0 +1,1 @@
+"""Pure-numpy convolutional network: layers, losses, optimizers, model files, training."""

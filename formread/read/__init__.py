@@ -1,0 +1,1 @@
+"""The batch job: where imaging and the network meet. Rules, decoding, the ledger, outputs."""

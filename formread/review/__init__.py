@@ -1,0 +1,1 @@
+"""The clerk's side: review page, audit trail, local samples."""
