@@ -1,0 +1,366 @@
+"""The layout file: where a form's marks and fields are, in millimetres (DEVELOPERS.md, "Layout file").
+
+Coordinates are millimetres from the page's top-left corner, ``x`` to the right and ``y`` down, so
+one layout serves scans at any dpi. ``parse_layout`` checks everything it can and raises a one-line
+``LayoutError("<file>: field 'x': <problem>")``; the reading stage can then trust a ``Layout``.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+from dataclasses import dataclass, field as dc_field
+from pathlib import Path
+
+try:  # Python 3.11+
+    import tomllib
+except ModuleNotFoundError:  # pragma: no cover - Python 3.10
+    import tomli as tomllib
+
+from ..errors import LayoutError
+
+__all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout",
+           "KINDS", "BINARIZE_METHODS", "NAME_PATTERN"]
+
+KINDS = ("boxed", "open")
+BINARIZE_METHODS = ("auto", "otsu", "sauvola")
+NAME_PATTERN = re.compile(r"[a-z_][a-z0-9_]*\Z")
+
+
+@dataclass(frozen=True)
+class Mark:
+    """A solid square registration mark: centre (x, y) and side, all in mm."""
+    x: float
+    y: float
+    size: float
+
+
+@dataclass(frozen=True)
+class Region:
+    """A rectangle in mm: top-left corner (x, y), width w, height h."""
+    x: float
+    y: float
+    w: float
+    h: float
+
+    def corners(self) -> tuple[tuple[float, float], ...]:
+        """The four corners (x, y) in mm: top-left, top-right, bottom-right, bottom-left."""
+        return ((self.x, self.y), (self.x + self.w, self.y),
+                (self.x + self.w, self.y + self.h), (self.x, self.y + self.h))
+
+
+@dataclass(frozen=True)
+class FieldSpec:
+    """One numeric field. ``boxed``: ``cells`` printed cells, one digit each (``max_digits == cells``);
+    ``open``: up to ``max_digits`` digits written freely (``cells is None``)."""
+    name: str
+    kind: str
+    x: float
+    y: float
+    w: float
+    h: float
+    cells: int | None
+    max_digits: int
+    optional: bool = False
+    rules: dict = dc_field(default_factory=dict, hash=False)
+    threshold: float | None = None
+
+    @property
+    def region(self) -> Region:
+        return Region(self.x, self.y, self.w, self.h)
+
+    def cell_regions(self) -> list[Region]:
+        """The printed cells of a boxed field (equal widths across ``w``), left to right, in mm."""
+        if self.cells is None:
+            return []
+        cw = self.w / self.cells
+        return [Region(self.x + i * cw, self.y, cw, self.h) for i in range(self.cells)]
+
+
+@dataclass(frozen=True)
+class Layout:
+    """A form's layout: page size, marks, fields, cross-field relations (all lengths in mm)."""
+    name: str
+    width_mm: float
+    height_mm: float
+    marks: tuple[Mark, ...]
+    fields: tuple[FieldSpec, ...]
+    relations: tuple[str, ...] = ()
+    header: Region | None = None
+    binarize: str = "auto"
+    threshold: float | None = None
+    source: str = "<layout>"
+
+    def field(self, name: str) -> FieldSpec:
+        """The field called ``name``; ``LayoutError`` if there is none."""
+        for f in self.fields:
+            if f.name == name:
+                return f
+        raise LayoutError(f"{self.source}: no field named {name!r}")
+
+    @property
+    def field_names(self) -> list[str]:
+        return [f.name for f in self.fields]
+
+    def to_toml(self) -> str:
+        """This layout as TOML text in the format ``parse_layout`` reads (round-trips exactly)."""
+        out = ["[form]", f"name = {_toml_value(self.name)}",
+               f"width_mm = {_toml_value(float(self.width_mm))}",
+               f"height_mm = {_toml_value(float(self.height_mm))}",
+               f"binarize = {_toml_value(self.binarize)}"]
+        if self.threshold is not None:
+            out.append(f"threshold = {_toml_value(float(self.threshold))}")
+        if self.header is not None:
+            out += ["", "[form.header]"] + [f"{k} = {_toml_value(float(getattr(self.header, k)))}"
+                                            for k in ("x", "y", "w", "h")]
+        for m in self.marks:
+            out += ["", "[[marks]]"] + [f"{k} = {_toml_value(float(getattr(m, k)))}"
+                                        for k in ("x", "y", "size")]
+        for f in self.fields:
+            out += ["", "[[fields]]", f"name = {_toml_value(f.name)}", f"kind = {_toml_value(f.kind)}"]
+            out += [f"{k} = {_toml_value(float(getattr(f, k)))}" for k in ("x", "y", "w", "h")]
+            out.append(f"cells = {f.cells}" if f.kind == "boxed" else f"max_digits = {f.max_digits}")
+            out.append(f"optional = {_toml_value(f.optional)}")
+            if f.threshold is not None:
+                out.append(f"threshold = {_toml_value(float(f.threshold))}")
+            if f.rules:
+                out += ["[fields.rules]"] + [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in f.rules.items()]
+        for r in self.relations:
+            out += ["", "[[relations]]", f"rule = {_toml_value(r)}"]
+        return "\n".join(out) + "\n"
+
+
+def _toml_key(k: str) -> str:
+    return k if re.fullmatch(r"[A-Za-z0-9_-]+", k) else _toml_value(k)
+
+
+def _toml_value(v) -> str:
+    """One TOML value: str, bool, int, float, list or dict of those."""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if math.isnan(v):
+            return "nan"
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return repr(v)
+    if isinstance(v, str):  # a JSON string is a valid TOML basic string
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{_toml_key(k)} = {_toml_value(x)}" for k, x in v.items()) + "}"
+    raise TypeError(f"cannot write {type(v).__name__} as TOML")
+
+
+# ----------------------------------------------------------------------------------------- parsing
+
+def load_layout(path) -> Layout:
+    """Read and check a layout file (TOML, UTF-8). Raises ``LayoutError("<file>: <problem>")``."""
+    path = Path(path)
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        raise LayoutError(f"{path}: no such file") from None
+    except IsADirectoryError:
+        raise LayoutError(f"{path}: is a directory, not a layout file") from None
+    except UnicodeDecodeError as e:
+        raise LayoutError(f"{path}: not UTF-8 text (byte {e.start})") from None
+    except OSError as e:
+        raise LayoutError(f"{path}: cannot be read ({e.strerror or e})") from None
+    return parse_layout(text, str(path))
+
+
+def parse_layout(text: str, source: str = "<layout>") -> Layout:
+    """Parse and check layout TOML ``text``; ``source`` names it in error messages."""
+    try:
+        doc = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as e:
+        raise LayoutError(f"{source}: TOML syntax error: {str(e).splitlines()[0]}") from None
+    return _Checker(source).layout(doc)
+
+
+class _Checker:
+    """Builds a Layout from a parsed TOML document, one clear message per problem."""
+
+    def __init__(self, source: str):
+        self.source = source
+
+    def fail(self, where: str, problem: str):
+        raise LayoutError(f"{self.source}: {where}: {problem}")
+
+    def table(self, doc: dict, key: str, where: str, *, required: bool = True) -> dict | None:
+        if key not in doc:
+            if required:
+                self.fail(where, f"missing [{key}] table")
+            return None
+        if not isinstance(doc[key], dict):
+            self.fail(where, f"{key!r} must be a table; got {_tname(doc[key])}")
+        return doc[key]
+
+    def unknown(self, d: dict, allowed: set, where: str):
+        extra = sorted(set(d) - allowed)
+        if extra:
+            self.fail(where, f"unknown key {extra[0]!r} (allowed: {', '.join(sorted(allowed))})")
+
+    def number(self, d: dict, key: str, where: str, *, required: bool = True, positive: bool = False,
+               nonneg: bool = False, default=None):
+        if key not in d:
+            if required:
+                self.fail(where, f"missing key {key!r}")
+            return default
+        v = d[key]
+        if isinstance(v, bool) or not isinstance(v, (int, float)):
+            self.fail(where, f"{key!r} must be a number; got {_tname(v)} {v!r}")
+        v = float(v)
+        if not math.isfinite(v):
+            self.fail(where, f"{key!r} must be finite; got {v!r}")
+        if positive and v <= 0:
+            self.fail(where, f"{key!r} must be > 0; got {v:g}")
+        if nonneg and v < 0:
+            self.fail(where, f"{key!r} must be >= 0; got {v:g}")
+        return v
+
+    def integer(self, d: dict, key: str, where: str, *, minimum: int):
+        if key not in d:
+            self.fail(where, f"missing key {key!r}")
+        v = d[key]
+        if isinstance(v, bool) or not isinstance(v, int):
+            self.fail(where, f"{key!r} must be a whole number; got {_tname(v)} {v!r}")
+        if v < minimum:
+            self.fail(where, f"{key!r} must be at least {minimum}; got {v}")
+        return v
+
+    def string(self, d: dict, key: str, where: str, *, required: bool = True, default=None):
+        if key not in d:
+            if required:
+                self.fail(where, f"missing key {key!r}")
+            return default
+        if not isinstance(d[key], str):
+            self.fail(where, f"{key!r} must be a string; got {_tname(d[key])} {d[key]!r}")
+        return d[key]
+
+    def threshold(self, d: dict, where: str):
+        t = self.number(d, "threshold", where, required=False)
+        if t is not None and not 0.0 < t <= 1.0:
+            self.fail(where, f"'threshold' must be in (0, 1]; got {t:g}")
+        return t
+
+    def on_page(self, r: Region, where: str, W: float, H: float):
+        if r.x < 0 or r.y < 0 or r.x + r.w > W + 1e-9 or r.y + r.h > H + 1e-9:
+            self.fail(where, f"rectangle x={r.x:g} y={r.y:g} w={r.w:g} h={r.h:g} lies off the "
+                             f"{W:g} x {H:g} mm page")
+
+    def region(self, d: dict, where: str, W: float, H: float) -> Region:
+        self.unknown(d, {"x", "y", "w", "h"}, where)
+        r = Region(self.number(d, "x", where), self.number(d, "y", where),
+                   self.number(d, "w", where, positive=True), self.number(d, "h", where, positive=True))
+        self.on_page(r, where, W, H)
+        return r
+
+    def layout(self, doc: dict) -> Layout:
+        self.unknown(doc, {"form", "marks", "fields", "relations"}, "layout")
+        form = self.table(doc, "form", "layout")
+        self.unknown(form, {"name", "width_mm", "height_mm", "binarize", "threshold", "header"}, "[form]")
+        name = self.string(form, "name", "[form]")
+        W = self.number(form, "width_mm", "[form]", positive=True)
+        H = self.number(form, "height_mm", "[form]", positive=True)
+        method = self.string(form, "binarize", "[form]", required=False, default="auto")
+        if method not in BINARIZE_METHODS:
+            self.fail("[form]", f"'binarize' must be one of {', '.join(BINARIZE_METHODS)}; got {method!r}")
+        threshold = self.threshold(form, "[form]")
+        header = self.table(form, "header", "[form]", required=False)
+        header = None if header is None else self.region(header, "[form.header]", W, H)
+        marks = self.marks(doc.get("marks"), W, H)
+        fields = self.fields(doc.get("fields"), W, H)
+        relations = self.relations(doc.get("relations"))
+        return Layout(name=name, width_mm=W, height_mm=H, marks=marks, fields=fields,
+                      relations=relations, header=header, binarize=method, threshold=threshold,
+                      source=self.source)
+
+    def array(self, v, key: str) -> list[dict]:
+        if v is None:
+            return []
+        if not isinstance(v, list) or not all(isinstance(x, dict) for x in v):
+            self.fail("layout", f"{key!r} must be an array of tables ([[{key}]])")
+        return v
+
+    def marks(self, v, W: float, H: float) -> tuple[Mark, ...]:
+        out = []
+        for i, d in enumerate(self.array(v, "marks"), 1):
+            where = f"mark {i}"
+            self.unknown(d, {"x", "y", "size"}, where)
+            m = Mark(self.number(d, "x", where), self.number(d, "y", where),
+                     self.number(d, "size", where, positive=True))
+            self.on_page(Region(m.x - m.size / 2, m.y - m.size / 2, m.size, m.size), where, W, H)
+            out.append(m)
+        if len(out) < 3:
+            self.fail("marks", f"at least 3 registration marks are needed; got {len(out)}")
+        return tuple(out)
+
+    def fields(self, v, W: float, H: float) -> tuple[FieldSpec, ...]:
+        out: list[FieldSpec] = []
+        allowed = {"name", "kind", "x", "y", "w", "h", "cells", "max_digits", "optional", "threshold", "rules"}
+        for i, d in enumerate(self.array(v, "fields"), 1):
+            if "name" not in d:
+                self.fail(f"field {i}", "missing key 'name'")
+            name = self.string(d, "name", f"field {i}")
+            where = f"field {name!r}"
+            if not NAME_PATTERN.match(name):
+                self.fail(where, "bad name: use lower-case letters, digits and '_', not starting with a digit")
+            if any(f.name == name for f in out):
+                self.fail(where, "duplicate field name")
+            self.unknown(d, allowed, where)
+            kind = self.string(d, "kind", where)
+            if kind not in KINDS:
+                self.fail(where, f"unknown kind {kind!r} (use 'boxed' or 'open')")
+            x, y = self.number(d, "x", where), self.number(d, "y", where)
+            w, h = self.number(d, "w", where, positive=True), self.number(d, "h", where, positive=True)
+            self.on_page(Region(x, y, w, h), where, W, H)
+            if kind == "boxed":
+                if "max_digits" in d:
+                    self.fail(where, "a boxed field takes 'cells', not 'max_digits'")
+                cells = self.integer(d, "cells", where, minimum=1)
+                max_digits = cells
+            else:
+                if "cells" in d:
+                    self.fail(where, "an open field takes 'max_digits', not 'cells'")
+                cells, max_digits = None, self.integer(d, "max_digits", where, minimum=1)
+            optional = d.get("optional", False)
+            if not isinstance(optional, bool):
+                self.fail(where, f"'optional' must be true or false; got {optional!r}")
+            rules = d.get("rules", {})
+            if not isinstance(rules, dict):
+                self.fail(where, f"'rules' must be a table ([fields.rules]); got {_tname(rules)}")
+            f = FieldSpec(name=name, kind=kind, x=x, y=y, w=w, h=h, cells=cells, max_digits=max_digits,
+                          optional=optional, rules=dict(rules), threshold=self.threshold(d, where))
+            for g in out:
+                if _overlap(f.region, g.region):
+                    self.fail(where, f"overlaps field {g.name!r}")
+            out.append(f)
+        return tuple(out)
+
+    def relations(self, v) -> tuple[str, ...]:
+        out = []
+        for i, d in enumerate(self.array(v, "relations"), 1):
+            self.unknown(d, {"rule"}, f"relation {i}")
+            rule = self.string(d, "rule", f"relation {i}")
+            if not rule.strip():
+                self.fail(f"relation {i}", "'rule' is empty")
+            out.append(rule)
+        return tuple(out)
+
+
+def _overlap(a: Region, b: Region) -> bool:
+    """True when two rectangles share a positive area (touching edges do not overlap)."""
+    eps = 1e-9
+    return (min(a.x + a.w, b.x + b.w) - max(a.x, b.x) > eps
+            and min(a.y + a.h, b.y + b.h) - max(a.y, b.y) > eps)
+
+
+def _tname(v) -> str:
+    return {bool: "boolean", int: "integer", float: "float", str: "string", list: "array",
+            dict: "table"}.get(type(v), type(v).__name__)
