@@ -1,0 +1,199 @@
+"""Field rules from a layout: compiled and checked once, then evaluated per reading.
+
+A layout field may carry ``[fields.rules]`` (DEVELOPERS.md):
+
+- ``length = 8`` or ``length = [7, 8]``: allowed digit count;
+- ``range = [lo, hi]``: allowed integer value (leading zeros allowed);
+- ``date = "DDMMYYYY"``: a real Gregorian calendar date in one of the patterns
+  ``DDMMYYYY``, ``MMDDYYYY``, ``YYYYMMDD``, ``DDMMYY``, ``YYMMDD`` (``YY`` means
+  20YY, so ``00`` is the leap year 2000);
+- ``check = "luhn"``: a check digit, one of :data:`CHECKS`;
+- ``optional = true``: empty allowed (same as the field's own ``optional``).
+
+:func:`compile_rules` validates everything up front (unknown rule names, bad
+arguments, relations that do not parse or name an unknown field) so that a batch
+never fails half-way on a bad layout.  Errors are :class:`RuleError` with one line:
+``"<layout file>: field 'x': <problem>"`` or ``"<layout file>: relation '<text>': <problem>"``.
+
+Results of a check are ``dict[rule name, bool]`` with rule names ``length``,
+``range``, ``date`` and the check scheme's own name (``luhn``, ``mod11-2``, ...).
+An empty value is checked only for presence: ``{}`` when the field is optional,
+``{"required": False}`` when it is not.
+"""
+
+from __future__ import annotations
+
+import calendar
+from dataclasses import dataclass, field
+
+from formread.errors import RuleError
+from formread.read.checkdigits import SCHEMES
+from formread.read.expr import Relation, parse_relation
+
+__all__ = ["FieldRules", "CompiledRules", "compile_rules", "check_field", "check_value",
+           "CHECKS", "DATE_PATTERNS", "RULE_NAMES"]
+
+CHECKS = tuple(SCHEMES)
+"""Check-digit schemes a layout may name."""
+DATE_PATTERNS = ("DDMMYYYY", "MMDDYYYY", "YYYYMMDD", "DDMMYY", "YYMMDD")
+RULE_NAMES = ("length", "range", "date", "check", "optional")
+
+
+@dataclass(frozen=True)
+class FieldRules:
+    """One field's compiled rules (None = rule not set)."""
+
+    name: str
+    kind: str
+    optional: bool
+    length: tuple[int, int] | None = None
+    range: tuple[int, int] | None = None
+    date: str | None = None
+    check: str | None = None
+    threshold: float | None = None
+
+
+@dataclass(frozen=True)
+class CompiledRules:
+    """All rules of a layout: per field, and the relations between fields."""
+
+    source: str
+    fields: dict[str, FieldRules]
+    relations: tuple[Relation, ...] = ()
+    _by_field: dict[str, tuple[Relation, ...]] = field(default_factory=dict, repr=False)
+
+    def relations_of(self, name: str) -> tuple[Relation, ...]:
+        """Relations that use field ``name`` (empty tuple if none)."""
+        return self._by_field.get(name, ())
+
+
+def _is_int(v) -> bool:
+    return isinstance(v, int) and not isinstance(v, bool)
+
+
+def _compile_field(src: str, f) -> FieldRules:
+    name = f.name
+    rules = dict(getattr(f, "rules", None) or {})
+
+    def bad(problem: str) -> RuleError:
+        return RuleError(f"{src}: field {name!r}: {problem}")
+
+    unknown = sorted(set(rules) - set(RULE_NAMES))
+    if unknown:
+        raise bad(f"unknown rule {unknown[0]!r} (known: {', '.join(RULE_NAMES)})")
+    length = rng = date = check = None
+    if "length" in rules:
+        v = rules["length"]
+        if _is_int(v):
+            v = [v, v]
+        if not (isinstance(v, (list, tuple)) and len(v) == 2 and all(_is_int(x) for x in v)
+                and 1 <= v[0] <= v[1]):
+            raise bad(f"rule 'length' must be a positive integer or [min, max] with 1 <= min <= max; "
+                      f"got {rules['length']!r}")
+        length = (int(v[0]), int(v[1]))
+    if "range" in rules:
+        v = rules["range"]
+        if not (isinstance(v, (list, tuple)) and len(v) == 2 and all(_is_int(x) for x in v)
+                and v[0] <= v[1]):
+            raise bad(f"rule 'range' must be [lo, hi] integers with lo <= hi; got {v!r}")
+        rng = (int(v[0]), int(v[1]))
+    if "date" in rules:
+        date = rules["date"]
+        if date not in DATE_PATTERNS:
+            raise bad(f"rule 'date' must be one of {', '.join(DATE_PATTERNS)}; got {date!r}")
+        if length is not None and not length[0] <= len(date) <= length[1]:
+            raise bad(f"rule 'length' {list(length)} cannot hold a {date} date")
+    if "check" in rules:
+        check = rules["check"]
+        if check not in SCHEMES:
+            raise bad(f"rule 'check' must be one of {', '.join(CHECKS)}; got {check!r}")
+    optional = bool(getattr(f, "optional", False))
+    if "optional" in rules:
+        if not isinstance(rules["optional"], bool):
+            raise bad(f"rule 'optional' must be true or false; got {rules['optional']!r}")
+        optional = optional or rules["optional"]
+    return FieldRules(name=name, kind=getattr(f, "kind", "boxed"), optional=optional, length=length,
+                      range=rng, date=date, check=check, threshold=getattr(f, "threshold", None))
+
+
+def compile_rules(layout) -> CompiledRules:
+    """Compile and validate every rule and relation of ``layout``.
+
+    Parameters
+    ----------
+    layout : formread.imaging.layout.Layout
+        Uses ``layout.source`` (file name for messages), ``layout.fields``
+        (FieldSpec: name, kind, optional, rules, threshold) and ``layout.relations``
+        (list of rule strings; ``{"rule": text}`` tables are accepted too).
+
+    Raises
+    ------
+    RuleError
+        One line naming the layout file and the field or relation.
+    """
+    src = str(getattr(layout, "source", "") or "layout")
+    fields: dict[str, FieldRules] = {}
+    for f in layout.fields:
+        fields[f.name] = _compile_field(src, f)
+    relations = []
+    by_field: dict[str, list[Relation]] = {}
+    for item in getattr(layout, "relations", None) or ():
+        text = item.get("rule") if isinstance(item, dict) else item
+        try:
+            rel = parse_relation(text)
+        except RuleError as e:
+            raise RuleError(f"{src}: relation {text!r}: {e}") from None
+        for n in rel.fields:
+            if n not in fields:
+                raise RuleError(f"{src}: relation {text!r}: unknown field {n!r}")
+            by_field.setdefault(n, []).append(rel)
+        relations.append(rel)
+    return CompiledRules(source=src, fields=fields, relations=tuple(relations),
+                         _by_field={k: tuple(v) for k, v in by_field.items()})
+
+
+def _valid_date(value: str, pattern: str) -> bool:
+    if len(value) != len(pattern) or not value.isascii() or not value.isdigit():
+        return False
+    part = {}
+    for key in ("DD", "MM", "YYYY", "YY"):
+        i = pattern.find(key)
+        if i >= 0 and not (key == "YY" and "YYYY" in pattern):
+            part[key] = int(value[i:i + len(key)])
+    year = part.get("YYYY", 2000 + part.get("YY", 0))
+    month, day = part["MM"], part["DD"]
+    if year < 1 or not 1 <= month <= 12:
+        return False
+    # calendar.monthrange applies the Gregorian leap rule (proleptic)
+    return 1 <= day <= calendar.monthrange(year, month)[1]
+
+
+def check_value(rules: FieldRules, value: str) -> dict[str, bool]:
+    """Evaluate one field's own rules on ``value`` (a string of digits, '' = empty).
+
+    Returns
+    -------
+    dict of str to bool
+        ``{}`` for an empty optional field, ``{"required": False}`` for an empty
+        required one, else one entry per rule set on the field.
+    """
+    if value == "":
+        return {} if rules.optional else {"required": False}
+    out: dict[str, bool] = {}
+    digits = value.isascii() and value.isdigit()
+    if rules.length is not None:
+        out["length"] = rules.length[0] <= len(value) <= rules.length[1]
+    if rules.range is not None:
+        out["range"] = digits and rules.range[0] <= int(value) <= rules.range[1]
+    if rules.date is not None:
+        out["date"] = _valid_date(value, rules.date)
+    if rules.check is not None:
+        out[rules.check] = SCHEMES[rules.check][1](value)
+    return out
+
+
+def check_field(compiled: CompiledRules, name: str, value: str) -> dict[str, bool]:
+    """Evaluate field ``name``'s own rules on ``value``; see :func:`check_value`."""
+    if name not in compiled.fields:
+        raise RuleError(f"{compiled.source}: field {name!r}: not in the layout")
+    return check_value(compiled.fields[name], value)

@@ -1,0 +1,140 @@
+"""Field rules: compilation errors and evaluation (with small fakes of the layout objects)."""
+
+from dataclasses import dataclass, field
+
+import pytest
+
+from formread.errors import RuleError
+from formread.read.rules import check_field, compile_rules
+
+
+@dataclass
+class FakeField:
+    name: str
+    kind: str = "boxed"
+    cells: int | None = 8
+    max_digits: int | None = None
+    optional: bool = False
+    rules: dict = field(default_factory=dict)
+    threshold: float | None = None
+
+
+@dataclass
+class FakeLayout:
+    fields: list
+    relations: list = field(default_factory=list)
+    threshold: float = 0.9
+    source: str = "cards/meter.toml"
+
+
+def layout(**rules_by_field):
+    return FakeLayout([FakeField(n, rules=r) for n, r in rules_by_field.items()])
+
+
+def test_length_int_and_range_of_lengths():
+    c = compile_rules(layout(a={"length": 4}, b={"length": [2, 3]}))
+    assert check_field(c, "a", "1234") == {"length": True}
+    assert check_field(c, "a", "123") == {"length": False}
+    assert [check_field(c, "b", v)["length"] for v in ("1", "12", "123", "1234")] == [False, True, True, False]
+
+
+def test_range_allows_leading_zeros():
+    c = compile_rules(layout(a={"range": [1, 240]}))
+    assert check_field(c, "a", "007") == {"range": True}
+    assert check_field(c, "a", "0") == {"range": False}
+    assert check_field(c, "a", "241") == {"range": False}
+
+
+def test_dates_and_the_gregorian_leap_rule():
+    # Gregorian leap rule (common practice): 29/02/2000 valid, 29/02/1900 invalid
+    c = compile_rules(layout(d={"date": "DDMMYYYY"}, m={"date": "MMDDYYYY"}, y={"date": "YYYYMMDD"},
+                             s={"date": "DDMMYY"}))
+    assert check_field(c, "d", "29022000") == {"date": True}
+    assert check_field(c, "d", "29021900") == {"date": False}
+    assert check_field(c, "d", "29022024") == {"date": True}
+    assert check_field(c, "d", "29022023") == {"date": False}
+    assert check_field(c, "d", "31042024") == {"date": False}
+    assert check_field(c, "d", "00012024") == {"date": False}
+    assert check_field(c, "d", "01132024") == {"date": False}
+    assert check_field(c, "d", "0101202") == {"date": False}
+    assert check_field(c, "m", "02292000") == {"date": True}
+    assert check_field(c, "m", "02291900") == {"date": False}
+    assert check_field(c, "y", "20000229") == {"date": True}
+    assert check_field(c, "y", "00000101") == {"date": False}
+    assert check_field(c, "s", "290200") == {"date": True}    # YY = 20YY
+    assert check_field(c, "s", "290201") == {"date": False}
+
+
+def test_check_digit_rules():
+    c = compile_rules(layout(a={"check": "luhn"}, b={"check": "mod11-2"}, g={"check": "gs1"}))
+    # ISO/IEC 7812-1 annex B: 7992739871 -> 3
+    assert check_field(c, "a", "79927398713") == {"luhn": True}
+    assert check_field(c, "a", "79927398710") == {"luhn": False}
+    # ISO 7064 MOD 11-2 worked example: 000000021825009 -> 7
+    assert check_field(c, "b", "0000000218250097") == {"mod11-2": True}
+    # GS1 manual calculation example: 629104150021 -> 3
+    assert check_field(c, "g", "6291041500213") == {"gs1": True}
+
+
+def test_empty_values_optional_and_required():
+    lay = FakeLayout([FakeField("a", optional=True, rules={"length": 3}), FakeField("b", rules={"length": 3}),
+                      FakeField("c", rules={"optional": True})])
+    c = compile_rules(lay)
+    assert check_field(c, "a", "") == {}
+    assert check_field(c, "b", "") == {"required": False}
+    assert check_field(c, "c", "") == {}
+    assert c.fields["c"].optional
+
+
+def test_combined_rules():
+    c = compile_rules(layout(a={"length": [7, 8], "range": [1, 99999999], "check": "damm"}))
+    assert check_field(c, "a", "5724001") == {"length": True, "range": True, "damm": False}
+
+
+@pytest.mark.parametrize("rules,fragment", [
+    ({"lenght": 3}, "unknown rule 'lenght'"),
+    ({"length": 0}, "rule 'length'"),
+    ({"length": [5, 3]}, "rule 'length'"),
+    ({"length": "8"}, "rule 'length'"),
+    ({"length": True}, "rule 'length'"),
+    ({"range": [10, 1]}, "rule 'range'"),
+    ({"range": 5}, "rule 'range'"),
+    ({"range": [1.5, 3]}, "rule 'range'"),
+    ({"date": "DD/MM/YYYY"}, "rule 'date'"),
+    ({"date": "DDMMYYYY", "length": 6}, "cannot hold"),
+    ({"check": "crc32"}, "rule 'check'"),
+    ({"optional": "yes"}, "rule 'optional'"),
+])
+def test_bad_rules_name_file_and_field(rules, fragment):
+    with pytest.raises(RuleError) as e:
+        compile_rules(layout(meter={}, member=rules))
+    msg = str(e.value)
+    assert msg.startswith("cards/meter.toml: field 'member': ") and fragment in msg and "\n" not in msg
+
+
+def test_relations_are_compiled_and_indexed():
+    lay = layout(a={}, b={}, c={}, d={})
+    lay.relations = ["a = b - c", {"rule": "d <= 100"}]
+    c = compile_rules(lay)
+    assert [r.text for r in c.relations] == ["a = b - c", "d <= 100"]
+    assert [r.text for r in c.relations_of("b")] == ["a = b - c"]
+    assert c.relations_of("nothing") == ()
+
+
+@pytest.mark.parametrize("text,fragment", [
+    ("a = b - zz", "unknown field 'zz'"),
+    ("a = b -", "column"),
+    ("__import__('os').system('x')", "column"),
+])
+def test_bad_relations_name_file_and_rule(text, fragment):
+    lay = layout(a={}, b={})
+    lay.relations = [text]
+    with pytest.raises(RuleError) as e:
+        compile_rules(lay)
+    msg = str(e.value)
+    assert msg.startswith(f"cards/meter.toml: relation {text!r}: ") and fragment in msg
+
+
+def test_unknown_field_in_check_field():
+    with pytest.raises(RuleError, match="field 'x'"):
+        check_field(compile_rules(layout(a={})), "x", "1")
