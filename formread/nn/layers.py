@@ -1,0 +1,266 @@
+"""Network layers with forward and backward written side by side.
+
+Every layer takes and returns arrays in the public (N, C, H, W) or (N, F) layout and keeps the dtype
+it is given: float32 in normal use, float64 for gradient checks. ``forward`` caches what ``backward``
+needs; ``backward(dy)`` fills the ``.grad`` of the layer's parameters (overwriting, not adding) and
+returns the gradient with respect to the input.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from formread.errors import check_param
+from formread.nn import _conv
+
+__all__ = [
+    "Param", "Layer", "Conv2D", "MaxPool2D", "AvgPool2D", "Dense", "ReLU", "Tanh", "Sigmoid",
+    "Dropout", "Flatten",
+]
+
+
+class Param:
+    """A trainable array and its gradient (same shape and dtype)."""
+
+    def __init__(self, value: np.ndarray, name: str = ""):
+        self.value = value
+        self.grad = np.zeros_like(value)
+        self.name = name
+
+    def __repr__(self) -> str:
+        return f"Param({self.name!r}, shape={self.value.shape}, dtype={self.value.dtype})"
+
+
+class Layer:
+    """Base layer: no parameters, identity spec."""
+
+    kind = "layer"
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        raise NotImplementedError
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        raise NotImplementedError
+
+    def params(self) -> list[Param]:
+        """The layer's own parameters, in a fixed order."""
+        return []
+
+    def spec(self) -> dict:
+        """JSON-serialisable description that ``build_model`` turns back into this layer."""
+        return {"type": self.kind}
+
+    def astype(self, dtype) -> "Layer":
+        """Convert parameters to ``dtype`` in place (e.g. float64 for gradient checks)."""
+        for p in self.params():
+            p.value = p.value.astype(dtype)
+            p.grad = np.zeros_like(p.value)
+        return self
+
+
+def _check_positive_int(name: str, value) -> int:
+    check_param(isinstance(value, (int, np.integer)) and not isinstance(value, bool) and value > 0,
+                name, "a positive integer", value)
+    return int(value)
+
+
+class Conv2D(Layer):
+    """2-D cross-correlation (what deep-learning libraries call convolution) with zero padding.
+
+    weight : (out, in, k, k); bias : (out,). Input (N, in, H, W) -> output (N, out, Ho, Wo) with
+    Ho = (H + 2 * padding - k) // stride + 1. Weights uniform in +-gain * sqrt(3 / fan_in): gain
+    sqrt(2) before a ReLU (He et al. 2015), 1 otherwise (LeCun's fan-in rule).
+    """
+
+    kind = "conv2d"
+
+    def __init__(self, in_ch: int, out_ch: int, kernel: int, stride: int = 1, padding: int = 0,
+                 *, rng: np.random.Generator, dtype=np.float32, gain: float = np.sqrt(2.0)):
+        self.in_ch = _check_positive_int("in", in_ch)
+        self.out_ch = _check_positive_int("out", out_ch)
+        self.kernel = _check_positive_int("kernel", kernel)
+        self.stride = _check_positive_int("stride", stride)
+        check_param(isinstance(padding, (int, np.integer)) and padding >= 0, "padding",
+                    "a non-negative integer", padding)
+        self.padding = int(padding)
+        fan_in = in_ch * kernel * kernel
+        bound = gain * np.sqrt(3.0 / fan_in)
+        w = rng.uniform(-bound, bound, size=(out_ch, in_ch, kernel, kernel)).astype(dtype)
+        self.weight = Param(w, "weight")
+        self.bias = Param(np.zeros(out_ch, dtype=dtype), "bias")
+        self._cache = None
+
+    def params(self) -> list[Param]:
+        return [self.weight, self.bias]
+
+    def spec(self) -> dict:
+        return {"type": self.kind, "in": self.in_ch, "out": self.out_ch, "kernel": self.kernel,
+                "stride": self.stride, "padding": self.padding}
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        check_param(x.ndim == 4 and x.shape[1] == self.in_ch, "x", f"of shape (N, {self.in_ch}, H, W)",
+                    x.shape)
+        y, self._cache = _conv.conv_forward(x, self.weight.value, self.bias.value, self.stride,
+                                            self.padding)
+        return y
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        dx, dw, db = _conv.conv_backward(dy, self.weight.value, self._cache)
+        self.weight.grad = dw
+        self.bias.grad = db
+        return dx
+
+
+class _Pool(Layer):
+    def __init__(self, size: int = 2, stride: int | None = None):
+        self.size = _check_positive_int("size", size)
+        self.stride = self.size if stride is None else _check_positive_int("stride", stride)
+        self._cache = None
+
+    def spec(self) -> dict:
+        return {"type": self.kind, "size": self.size, "stride": self.stride}
+
+
+class MaxPool2D(_Pool):
+    """Max pooling over size x size windows (no padding, trailing rows/cols that do not fill a
+    window are dropped). (N, C, H, W) -> (N, C, Ho, Wo). Ties send the gradient to the first max."""
+
+    kind = "maxpool"
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        y, self._cache = _conv.maxpool_forward(x, self.size, self.stride)
+        return y
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        return _conv.maxpool_backward(dy, self._cache)
+
+
+class AvgPool2D(_Pool):
+    """Average pooling over size x size windows (no padding). (N, C, H, W) -> (N, C, Ho, Wo)."""
+
+    kind = "avgpool"
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        y, self._cache = _conv.avgpool_forward(x, self.size, self.stride)
+        return y
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        return _conv.avgpool_backward(dy, self._cache)
+
+
+class Dense(Layer):
+    """Fully connected layer: (N, in) -> (N, out), y = x @ weight + bias.
+
+    weight : (in, out); bias : (out,). Initialised like Conv2D (uniform, +-gain * sqrt(3 / fan_in)).
+    """
+
+    kind = "dense"
+
+    def __init__(self, in_features: int, out_features: int, *, rng: np.random.Generator,
+                 dtype=np.float32, gain: float = np.sqrt(2.0)):
+        self.in_features = _check_positive_int("in", in_features)
+        self.out_features = _check_positive_int("out", out_features)
+        bound = gain * np.sqrt(3.0 / in_features)
+        w = rng.uniform(-bound, bound, size=(in_features, out_features)).astype(dtype)
+        self.weight = Param(w, "weight")
+        self.bias = Param(np.zeros(out_features, dtype=dtype), "bias")
+        self._x = None
+
+    def params(self) -> list[Param]:
+        return [self.weight, self.bias]
+
+    def spec(self) -> dict:
+        return {"type": self.kind, "in": self.in_features, "out": self.out_features}
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        check_param(x.ndim == 2 and x.shape[1] == self.in_features, "x",
+                    f"of shape (N, {self.in_features})", x.shape)
+        self._x = x
+        y = x @ self.weight.value
+        y += self.bias.value
+        return y
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        self.weight.grad = self._x.T @ dy
+        self.bias.grad = dy.sum(axis=0)
+        return dy @ self.weight.value.T
+
+
+class ReLU(Layer):
+    """max(x, 0), elementwise, any shape."""
+
+    kind = "relu"
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        self._mask = x > 0
+        return np.maximum(x, 0)
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        return dy * self._mask
+
+
+class Tanh(Layer):
+    """tanh(x), elementwise, any shape."""
+
+    kind = "tanh"
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        self._y = np.tanh(x)
+        return self._y
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        return dy * (1 - self._y * self._y)
+
+
+class Sigmoid(Layer):
+    """1 / (1 + exp(-x)), elementwise, any shape; computed without overflow."""
+
+    kind = "sigmoid"
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        # 0.5 * (1 + tanh(x / 2)) equals the logistic function and never overflows.
+        self._y = 0.5 * (1 + np.tanh(0.5 * x))
+        return self._y
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        return dy * self._y * (1 - self._y)
+
+
+class Dropout(Layer):
+    """Inverted dropout: when training, zero each value with probability p and scale the rest by
+    1 / (1 - p); identity when not training. Draws from its own seeded ``rng``."""
+
+    kind = "dropout"
+
+    def __init__(self, p: float = 0.5, *, rng: np.random.Generator):
+        check_param(isinstance(p, (int, float)) and 0.0 <= p < 1.0, "p", "a number in [0, 1)", p)
+        self.p = float(p)
+        self.rng = rng
+        self._mask = None
+
+    def spec(self) -> dict:
+        return {"type": self.kind, "p": self.p}
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        if not train or self.p == 0.0:
+            self._mask = None
+            return x
+        keep = self.rng.random(x.shape, dtype=np.float32) >= self.p
+        self._mask = keep.astype(x.dtype) * x.dtype.type(1.0 / (1.0 - self.p))
+        return x * self._mask
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        return dy if self._mask is None else dy * self._mask
+
+
+class Flatten(Layer):
+    """(N, C, H, W) -> (N, C * H * W) in C order."""
+
+    kind = "flatten"
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        self._shape = x.shape
+        return x.reshape(x.shape[0], -1)
+
+    def backward(self, dy: np.ndarray) -> np.ndarray:
+        return dy.reshape(self._shape)

@@ -1,0 +1,206 @@
+"""The sequential model, building it from a JSON-able spec, and the named architectures."""
+
+from __future__ import annotations
+
+import copy
+
+import numpy as np
+
+from formread.errors import check_param
+from formread.nn import layers as L
+from formread.nn.losses import softmax
+
+__all__ = ["Sequential", "build_model", "ARCHITECTURES"]
+
+
+ARCHITECTURES: dict[str, list[dict]] = {
+    # LeNet-5 shape (LeCun et al. 1998) with ReLU and max pooling: 28x28 -> 6@28x28 -> 6@14x14
+    # -> 16@10x10 -> 16@5x5 -> 120 -> 84 -> 10.
+    "lenet5": [
+        {"type": "conv2d", "in": 1, "out": 6, "kernel": 5, "padding": 2},
+        {"type": "relu"},
+        {"type": "maxpool", "size": 2},
+        {"type": "conv2d", "in": 6, "out": 16, "kernel": 5},
+        {"type": "relu"},
+        {"type": "maxpool", "size": 2},
+        {"type": "flatten"},
+        {"type": "dense", "in": 400, "out": 120},
+        {"type": "relu"},
+        {"type": "dense", "in": 120, "out": 84},
+        {"type": "relu"},
+        {"type": "dense", "in": 84, "out": 10},
+    ],
+    # The 1998 style: tanh and average pooling (subsampling), same sizes.
+    "lenet5-classic": [
+        {"type": "conv2d", "in": 1, "out": 6, "kernel": 5, "padding": 2},
+        {"type": "tanh"},
+        {"type": "avgpool", "size": 2},
+        {"type": "conv2d", "in": 6, "out": 16, "kernel": 5},
+        {"type": "tanh"},
+        {"type": "avgpool", "size": 2},
+        {"type": "flatten"},
+        {"type": "dense", "in": 400, "out": 120},
+        {"type": "tanh"},
+        {"type": "dense", "in": 120, "out": 84},
+        {"type": "tanh"},
+        {"type": "dense", "in": 84, "out": 10},
+    ],
+    # A wider ReLU CNN: 28x28 -> 32@28x28 -> 32@14x14 -> 64@14x14 -> 64@7x7 -> 128 -> 10.
+    "wide": [
+        {"type": "conv2d", "in": 1, "out": 32, "kernel": 3, "padding": 1},
+        {"type": "relu"},
+        {"type": "maxpool", "size": 2},
+        {"type": "conv2d", "in": 32, "out": 64, "kernel": 3, "padding": 1},
+        {"type": "relu"},
+        {"type": "maxpool", "size": 2},
+        {"type": "flatten"},
+        {"type": "dense", "in": 3136, "out": 128},
+        {"type": "relu"},
+        {"type": "dropout", "p": 0.5},
+        {"type": "dense", "in": 128, "out": 10},
+    ],
+}
+
+
+class Sequential:
+    """Layers applied in order. Input (N, C, H, W) float32 (or float64) -> logits (N, classes).
+
+    ``spec`` is the JSON-serialisable list of layer dicts the model was built from.
+    """
+
+    def __init__(self, layers: list[L.Layer]):
+        self.layers = list(layers)
+        for i, layer in enumerate(self.layers):
+            for p in layer.params():
+                p.name = f"{i}.{layer.kind}.{p.name.rsplit('.', 1)[-1]}"
+
+    @property
+    def spec(self) -> list[dict]:
+        return [layer.spec() for layer in self.layers]
+
+    @property
+    def dtype(self) -> np.dtype:
+        ps = self.parameters()
+        return ps[0].value.dtype if ps else np.dtype(np.float32)
+
+    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+        """x (N, C, H, W) -> logits (N, classes), in the model's dtype. ``train`` enables dropout."""
+        x = np.asarray(x)
+        if x.dtype != self.dtype:
+            x = x.astype(self.dtype)
+        for layer in self.layers:
+            x = layer.forward(x, train=train)
+        return x
+
+    def backward(self, dlogits: np.ndarray) -> np.ndarray:
+        """dlogits (N, classes) -> dx (N, C, H, W); fills every parameter's ``.grad``."""
+        d = np.asarray(dlogits, dtype=self.dtype)
+        for layer in reversed(self.layers):
+            d = layer.backward(d)
+        return d
+
+    def predict_proba(self, x: np.ndarray, batch_size: int = 256, temperature: float = 1.0
+                      ) -> np.ndarray:
+        """x (N, C, H, W) -> (N, classes) float32 softmax(logits / temperature), in batches."""
+        check_param(batch_size >= 1, "batch_size", "a positive integer", batch_size)
+        check_param(temperature > 0, "temperature", "a positive number", temperature)
+        x = np.asarray(x)
+        outs = []
+        for start in range(0, len(x), batch_size):
+            z = self.forward(x[start:start + batch_size], train=False)
+            outs.append(softmax(z / z.dtype.type(temperature), axis=1).astype(np.float32))
+        if not outs:
+            n_out = self.spec_classes()
+            return np.zeros((0, n_out), dtype=np.float32)
+        return np.concatenate(outs, axis=0)
+
+    def spec_classes(self) -> int:
+        """Number of output classes (the last dense layer's width)."""
+        for layer in reversed(self.layers):
+            if isinstance(layer, L.Dense):
+                return layer.out_features
+        raise ValueError("model has no dense layer")
+
+    def parameters(self) -> list[L.Param]:
+        """Every trainable parameter, in layer order (weight before bias)."""
+        return [p for layer in self.layers for p in layer.params()]
+
+    def state_dict(self) -> dict[str, np.ndarray]:
+        """Parameter name -> a copy of its value."""
+        return {p.name: p.value.copy() for p in self.parameters()}
+
+    def load_state_dict(self, d: dict[str, np.ndarray]) -> None:
+        """Set every parameter from ``d`` (same names and shapes; cast to the model's dtype)."""
+        params = self.parameters()
+        names = {p.name for p in params}
+        check_param(set(d) == names, "state_dict", f"the arrays {sorted(names)}", sorted(d))
+        for p in params:
+            v = np.asarray(d[p.name])
+            check_param(v.shape == p.value.shape, f"state_dict[{p.name!r}]",
+                        f"of shape {p.value.shape}", v.shape)
+            p.value = v.astype(p.value.dtype, copy=True)
+            p.grad = np.zeros_like(p.value)
+
+    def astype(self, dtype) -> "Sequential":
+        """Convert every parameter to ``dtype`` in place; returns self."""
+        for layer in self.layers:
+            layer.astype(dtype)
+        return self
+
+
+def _gain(spec: list[dict], i: int) -> float:
+    """Initialisation gain for the weighted layer at i: sqrt(2) when a ReLU follows it (possibly
+    after pooling or dropout), else 1."""
+    for entry in spec[i + 1:]:
+        kind = entry.get("type") if isinstance(entry, dict) else None
+        if kind in ("maxpool", "avgpool", "dropout", "flatten"):
+            continue
+        return float(np.sqrt(2.0)) if kind == "relu" else 1.0
+    return 1.0
+
+
+def _layer_from(entry: dict, rng: np.random.Generator, dtype, gain: float = 1.0) -> L.Layer:
+    check_param(isinstance(entry, dict) and "type" in entry, "spec entry",
+                "a dict with a 'type' key", entry)
+    kind = entry["type"]
+    known = {
+        "conv2d": {"in", "out", "kernel", "stride", "padding"},
+        "maxpool": {"size", "stride"}, "avgpool": {"size", "stride"},
+        "dense": {"in", "out"}, "dropout": {"p"},
+        "relu": set(), "tanh": set(), "sigmoid": set(), "flatten": set(),
+    }
+    check_param(kind in known, "spec type", f"one of {sorted(known)}", kind)
+    extra = set(entry) - known[kind] - {"type"}
+    check_param(not extra, f"spec {kind}", f"keys among {sorted(known[kind])}", sorted(extra))
+    try:
+        if kind == "conv2d":
+            return L.Conv2D(entry["in"], entry["out"], entry["kernel"], entry.get("stride", 1),
+                            entry.get("padding", 0), rng=rng, dtype=dtype, gain=gain)
+        if kind == "dense":
+            return L.Dense(entry["in"], entry["out"], rng=rng, dtype=dtype, gain=gain)
+    except KeyError as e:
+        check_param(False, f"spec {kind}", f"a dict with key {e.args[0]!r}", entry)
+    if kind == "maxpool":
+        return L.MaxPool2D(entry.get("size", 2), entry.get("stride"))
+    if kind == "avgpool":
+        return L.AvgPool2D(entry.get("size", 2), entry.get("stride"))
+    if kind == "dropout":
+        # Each dropout layer owns a generator seeded from the model's rng: reproducible.
+        return L.Dropout(entry.get("p", 0.5), rng=np.random.default_rng(rng.integers(2**63)))
+    return {"relu": L.ReLU, "tanh": L.Tanh, "sigmoid": L.Sigmoid, "flatten": L.Flatten}[kind]()
+
+
+def build_model(spec: list[dict] | str, rng: np.random.Generator, dtype=np.float32) -> Sequential:
+    """Build a model from a spec (list of layer dicts, or a name in ARCHITECTURES).
+
+    Weights are drawn from ``rng`` in layer order, so the same seed gives identical weights.
+    dtype : float32 (default) or float64 (for gradient checks).
+    """
+    if isinstance(spec, str):
+        check_param(spec in ARCHITECTURES, "spec", f"one of {sorted(ARCHITECTURES)}", spec)
+        spec = ARCHITECTURES[spec]
+    check_param(isinstance(spec, (list, tuple)) and len(spec) > 0, "spec",
+                "a non-empty list of layer dicts", spec)
+    check_param(isinstance(rng, np.random.Generator), "rng", "a numpy.random.Generator", type(rng))
+    spec = copy.deepcopy(list(spec))
+    return Sequential([_layer_from(entry, rng, dtype, _gain(spec, i)) for i, entry in enumerate(spec)])

@@ -1,0 +1,192 @@
+"""Layer forward values against reference implementations; dtypes; model building and reproducibility."""
+
+import json
+
+import numpy as np
+import pytest
+from scipy import signal
+
+from formread.errors import ParameterError
+from formread.nn import layers as L
+from formread.nn.model import ARCHITECTURES, Sequential, build_model
+
+
+def conv_reference(x, w, b, stride, padding):
+    """Convolution layer output computed with scipy.signal.correlate (reference library)."""
+    xp = np.pad(x, ((0, 0), (0, 0), (padding, padding), (padding, padding)))
+    n, o = x.shape[0], w.shape[0]
+    outs = []
+    for i in range(n):
+        maps = []
+        for j in range(o):
+            # 3-D 'valid' correlation over (channel, row, col) sums over the input channels.
+            full = signal.correlate(xp[i], w[j], mode="valid")[0]
+            maps.append(full[::stride, ::stride] + b[j])
+        outs.append(maps)
+    return np.array(outs)
+
+
+@pytest.mark.parametrize("cin,cout,k,stride,padding,h,w", [
+    (1, 6, 5, 1, 2, 28, 28), (6, 16, 5, 1, 0, 14, 14), (3, 5, 3, 2, 1, 9, 8), (4, 2, 4, 3, 2, 11, 10),
+    (2, 3, 1, 1, 0, 5, 5),
+])
+def test_conv_forward_matches_scipy(cin, cout, k, stride, padding, h, w):
+    rng = np.random.default_rng(0)
+    layer = L.Conv2D(cin, cout, k, stride, padding, rng=rng, dtype=np.float64)
+    layer.bias.value[:] = rng.standard_normal(cout)
+    x = rng.standard_normal((3, cin, h, w))
+    y = layer.forward(x)
+    ref = conv_reference(x, layer.weight.value, layer.bias.value, stride, padding)
+    assert y.shape == ref.shape == (3, cout, (h + 2 * padding - k) // stride + 1,
+                                    (w + 2 * padding - k) // stride + 1)
+    np.testing.assert_allclose(y, ref, rtol=1e-10, atol=1e-10)
+
+
+def pool_loop(x, size, stride, op):
+    """Slow, obviously correct pooling: one window at a time."""
+    n, c, h, w = x.shape
+    ho, wo = (h - size) // stride + 1, (w - size) // stride + 1
+    out = np.zeros((n, c, ho, wo), dtype=x.dtype)
+    for a in range(n):
+        for b in range(c):
+            for i in range(ho):
+                for j in range(wo):
+                    win = x[a, b, i * stride:i * stride + size, j * stride:j * stride + size]
+                    out[a, b, i, j] = op(win)
+    return out
+
+
+@pytest.mark.parametrize("size,stride", [(2, None), (3, 2), (2, 1), (3, 3), (4, None)])
+@pytest.mark.parametrize("cls,op", [(L.MaxPool2D, np.max), (L.AvgPool2D, np.mean)])
+def test_pooling_matches_loop(cls, op, size, stride):
+    x = np.random.default_rng(1).standard_normal((2, 3, 9, 10))
+    y = cls(size, stride).forward(x)
+    np.testing.assert_allclose(y, pool_loop(x, size, stride or size, op), rtol=1e-12)
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_every_layer_keeps_dtype(dtype):
+    rng = np.random.default_rng(2)
+    x4 = rng.standard_normal((2, 3, 8, 8)).astype(dtype)
+    x2 = rng.standard_normal((2, 6)).astype(dtype)
+    cases = [
+        (L.Conv2D(3, 4, 3, 1, 1, rng=rng, dtype=dtype), x4),
+        (L.MaxPool2D(2), x4), (L.AvgPool2D(2), x4),
+        (L.Dense(6, 3, rng=rng, dtype=dtype), x2),
+        (L.ReLU(), x4), (L.Tanh(), x4), (L.Sigmoid(), x4), (L.Flatten(), x4),
+        (L.Dropout(0.5, rng=rng), x4),
+    ]
+    for layer, x in cases:
+        y = layer.forward(x, train=True)
+        assert y.dtype == dtype, layer.kind
+        dx = layer.backward(np.ones_like(y))
+        assert dx.dtype == dtype and dx.shape == x.shape, layer.kind
+        for p in layer.params():
+            assert p.value.dtype == dtype and p.grad.dtype == dtype and p.grad.shape == p.value.shape
+
+
+@pytest.mark.parametrize("dtype", [np.float32, np.float64])
+def test_model_dtype(dtype):
+    model = build_model("lenet5", np.random.default_rng(0), dtype=dtype)
+    x = np.random.default_rng(1).random((4, 1, 28, 28)).astype(dtype)
+    z = model.forward(x, train=True)
+    assert z.shape == (4, 10) and z.dtype == dtype
+    assert model.backward(np.ones_like(z)).dtype == dtype
+    p = model.predict_proba(x)
+    assert p.dtype == np.float32 and p.shape == (4, 10)
+
+
+def test_sigmoid_is_stable_for_large_inputs():
+    y = L.Sigmoid().forward(np.array([-1000.0, 0.0, 1000.0], dtype=np.float32))
+    np.testing.assert_allclose(y, [0.0, 0.5, 1.0])
+
+
+def test_dropout_only_when_training_and_reproducible():
+    x = np.ones((50, 40), dtype=np.float32)
+    a = L.Dropout(0.5, rng=np.random.default_rng(3))
+    b = L.Dropout(0.5, rng=np.random.default_rng(3))
+    assert a.forward(x) is x
+    ya, yb = a.forward(x, train=True), b.forward(x, train=True)
+    np.testing.assert_array_equal(ya, yb)
+    assert 0.4 < (ya == 0).mean() < 0.6
+    assert set(np.unique(ya)) == {0.0, 2.0}
+
+
+@pytest.mark.parametrize("name", sorted(ARCHITECTURES))
+def test_architectures_build_and_run(name):
+    model = build_model(name, np.random.default_rng(0))
+    x = np.random.default_rng(1).random((3, 1, 28, 28), dtype=np.float32)
+    assert model.forward(x).shape == (3, 10)
+    json.dumps(model.spec)
+    # the spec rebuilds the same layer structure
+    assert build_model(model.spec, np.random.default_rng(0)).spec == model.spec
+
+
+def test_same_seed_same_weights_and_outputs():
+    x = np.random.default_rng(1).random((8, 1, 28, 28), dtype=np.float32)
+    outs = []
+    for _ in range(2):
+        model = build_model("wide", np.random.default_rng(42))
+        outs.append((model.state_dict(), model.forward(x, train=True), model.forward(x)))
+    (s1, t1, e1), (s2, t2, e2) = outs
+    assert s1.keys() == s2.keys()
+    for k in s1:
+        np.testing.assert_array_equal(s1[k], s2[k])
+    np.testing.assert_array_equal(t1, t2)  # dropout masks drawn from the seeded layer rng
+    np.testing.assert_array_equal(e1, e2)
+    other = build_model("wide", np.random.default_rng(43)).state_dict()
+    assert not np.array_equal(other["0.conv2d.weight"], s1["0.conv2d.weight"])
+
+
+def test_parameters_state_dict_roundtrip():
+    rng = np.random.default_rng(0)
+    a, b = build_model("lenet5", rng), build_model("lenet5", rng)
+    names = [p.name for p in a.parameters()]
+    assert names[:2] == ["0.conv2d.weight", "0.conv2d.bias"] and len(names) == 10
+    assert len(set(names)) == len(names)
+    x = np.random.default_rng(1).random((2, 1, 28, 28), dtype=np.float32)
+    assert not np.array_equal(a.forward(x), b.forward(x))
+    b.load_state_dict(a.state_dict())
+    np.testing.assert_array_equal(a.forward(x), b.forward(x))
+    with pytest.raises(ParameterError):
+        b.load_state_dict({k: v for k, v in a.state_dict().items() if k != "0.conv2d.bias"})
+    bad = a.state_dict()
+    bad["0.conv2d.bias"] = np.zeros(7, dtype=np.float32)
+    with pytest.raises(ParameterError):
+        b.load_state_dict(bad)
+
+
+def test_predict_proba_batches_and_temperature():
+    model = build_model("lenet5", np.random.default_rng(0))
+    x = np.random.default_rng(1).random((10, 1, 28, 28), dtype=np.float32)
+    p = model.predict_proba(x, batch_size=3)
+    np.testing.assert_allclose(p, model.predict_proba(x, batch_size=256), rtol=1e-5, atol=1e-7)
+    np.testing.assert_allclose(p.sum(axis=1), 1.0, rtol=1e-5)
+    z = model.forward(x).astype(np.float64)
+    e = np.exp((z - z.max(axis=1, keepdims=True)) / 2.0)
+    np.testing.assert_allclose(model.predict_proba(x, temperature=2.0), e / e.sum(1, keepdims=True),
+                               rtol=1e-5, atol=1e-7)
+    # higher temperature -> flatter
+    assert model.predict_proba(x, temperature=3.0).max() < p.max()
+    assert model.predict_proba(x[:0]).shape == (0, 10)
+
+
+@pytest.mark.parametrize("spec", [
+    [{"type": "conv3d"}],
+    [{"type": "dense", "in": 3}],
+    [{"type": "dense", "in": 3, "out": 0}],
+    [{"type": "relu", "extra": 1}],
+    [{"type": "dropout", "p": 1.5}],
+    [],
+    "no-such-architecture",
+])
+def test_bad_specs_raise_parameter_error(spec):
+    with pytest.raises(ParameterError):
+        build_model(spec, np.random.default_rng(0))
+
+
+def test_sequential_of_given_layers():
+    rng = np.random.default_rng(0)
+    model = Sequential([L.Flatten(), L.Dense(4, 2, rng=rng)])
+    assert model.forward(np.ones((3, 1, 2, 2), dtype=np.float32)).shape == (3, 2)
+    assert [p.name for p in model.parameters()] == ["1.dense.weight", "1.dense.bias"]
