@@ -1,0 +1,267 @@
+"""Decoding with hand-made probability tables: rules, relations, confidence, decisions."""
+
+import itertools
+import json
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+import pytest
+
+from formread.errors import ParameterError
+from formread.read.checkdigits import luhn_compute, luhn_valid
+from formread.read.decode import (CandidateEvidence, FieldEvidence, decode_field, decode_page,
+                                  evidence_from_digits, kbest_strings, unregistered_page)
+from formread.read.rules import compile_rules
+
+
+@dataclass
+class FakeField:
+    name: str
+    kind: str = "boxed"
+    cells: int | None = 4
+    max_digits: int | None = None
+    optional: bool = False
+    rules: dict = field(default_factory=dict)
+    threshold: float | None = None
+
+
+@dataclass
+class FakeLayout:
+    fields: list
+    relations: list = field(default_factory=list)
+    threshold: float = 0.9
+    source: str = "meter.toml"
+
+
+def table(*positions):
+    """(K, 10) probabilities: each position a dict digit -> p, the rest spread evenly."""
+    rows = []
+    for spec in positions:
+        if isinstance(spec, str):
+            spec = {int(spec): 0.98}
+        rest = (1.0 - sum(spec.values())) / (10 - len(spec))
+        rows.append([spec.get(d, rest) for d in range(10)])
+    return np.array(rows, dtype=np.float64)
+
+
+def sure(digits, p=0.98):
+    return table(*[{int(d): p} for d in digits])
+
+
+def ev(name, *cands, doubtful=False):
+    return FieldEvidence(name, [c if isinstance(c, CandidateEvidence) else CandidateEvidence(c) for c in cands],
+                         doubtful=doubtful)
+
+
+def test_kbest_strings_match_brute_force():
+    rng = np.random.default_rng(0)
+    for k in (1, 2, 4):
+        p = rng.dirichlet(np.ones(10), size=k)
+        lp = np.log(p)
+        got = kbest_strings(lp, top=3, limit=20)
+        top3 = np.argsort(-lp, axis=1)[:, :3]
+        brute = sorted((("".join(map(str, c)), sum(lp[i, d] for i, d in enumerate(c)))
+                        for c in itertools.product(*top3)), key=lambda t: -t[1])[:20]
+        assert [round(s, 9) for _, s in got] == [round(s, 9) for _, s in brute]
+        assert [s for s, _ in got] == [s for s, _ in brute]   # random tables: no ties
+        assert len(got) == min(20, 3 ** k)
+        assert len({s for s, _ in got}) == len(got)
+
+
+def test_luhn_rule_picks_the_second_best_string():
+    payload = "799273987"
+    true = payload + luhn_compute(payload)
+    wrong = str((int(true[-1]) + 5) % 10)
+    assert luhn_valid(true) and not luhn_valid(true[:-1] + wrong)
+    probs = table(*true[:-1], {int(wrong): 0.6, int(true[-1]): 0.35})
+    lay = FakeLayout([FakeField("card", cells=10, rules={"check": "luhn"})])
+    out = decode_page({"card": ev("card", probs)}, compile_rules(lay), lay)
+    r = out["card"]
+    assert r.alternatives[0][0] == true[:-1] + wrong          # the network's favourite breaks Luhn
+    assert r.reading == true
+    assert r.rules == {"luhn": True}
+    assert r.confidence == pytest.approx(0.98 ** 9 * 0.35)
+    assert r.decision == "review" and r.reason == "low_confidence"
+    assert [d for d, _ in r.digit_probs[-1][:2]] == [int(wrong), int(true[-1])]
+    assert [p for _, p in r.digit_probs[-1][:2]] == pytest.approx([0.6, 0.35])
+    assert r.positions == list(range(10)) and r.candidate == 0
+
+
+def test_confidence_is_the_string_probability_over_all_strings():
+    lay = FakeLayout([FakeField("n", kind="open", cells=None, max_digits=3)])
+    c = compile_rules(lay)
+    # two segmentations: "17" (cost 0) and "7" (cost ln 3) -> priors 0.75 and 0.25
+    a = CandidateEvidence(table({1: 0.9}, {7: 0.8}), cost=0.0)
+    b = CandidateEvidence(table({7: 0.6}), cost=math.log(3))
+    r = decode_page({"n": ev("n", a, b)}, c, lay, threshold=0.5)["n"]
+    assert r.reading == "17"
+    assert r.confidence == pytest.approx(0.75 * 0.9 * 0.8)
+    assert r.decision == "accepted"
+    assert dict(r.alternatives)["7"] == pytest.approx(0.25 * 0.6)
+    assert sum(p for _, p in r.alternatives) <= 1.0 + 1e-12
+
+
+def test_same_string_from_two_segmentations_adds_up():
+    lay = FakeLayout([FakeField("n", kind="open", cells=None, max_digits=3)])
+    a = CandidateEvidence(table({4: 0.5}, {2: 0.5}), cost=0.0)
+    b = CandidateEvidence(table({4: 0.5}, {2: 0.5}), cost=0.0)
+    r = decode_page({"n": ev("n", a, b)}, compile_rules(lay), lay)["n"]
+    assert r.reading == "42" and r.confidence == pytest.approx(0.25)
+
+
+def test_rule_violating_mass_keeps_confidence_low():
+    # every string considered is out of range: the best is kept and the field goes to review
+    lay = FakeLayout([FakeField("age", cells=2, rules={"range": [96, 99]})])
+    r = decode_page({"age": ev("age", sure("95"))}, compile_rules(lay), lay)["age"]
+    assert r.reading == "95" and r.rules == {"range": False}
+    assert r.reason == "rule_failed:range" and r.decision == "review"
+    lay = FakeLayout([FakeField("age", cells=2, rules={"range": [1, 20]})])
+    # the in-range reading "15" exists only far down the list, so its confidence is tiny
+    probs = table({9: 0.7, 1: 0.2}, {5: 0.98})
+    r = decode_page({"age": ev("age", probs)}, compile_rules(lay), lay)["age"]
+    assert r.reading == "15" and r.confidence == pytest.approx(0.2 * 0.98)
+    assert r.reason == "low_confidence"
+
+
+def meter_layout(litres_threshold=None):
+    return FakeLayout([FakeField("previous_reading", cells=3), FakeField("current_reading", cells=3),
+                       FakeField("litres_used", cells=2, threshold=litres_threshold)],
+                      relations=["litres_used = current_reading - previous_reading"])
+
+
+def test_relation_fixes_a_misread_litres_field():
+    lay = meter_layout()
+    evidence = {"previous_reading": ev("previous_reading", sure("100", 0.995)),
+                "current_reading": ev("current_reading", sure("120", 0.995)),
+                "litres_used": ev("litres_used", table({2: 0.99}, {6: 0.6, 0: 0.38}))}
+    out = decode_page(evidence, compile_rules(lay), lay, threshold=0.3)
+    lit = out["litres_used"]
+    assert lit.alternatives[0][0] == "26"
+    assert lit.reading == "20" and lit.rules == {"relation": True}
+    # the relation can only lower confidence: P(litres = 20 and the relation holds)
+    assert lit.confidence <= 0.99 * 0.38 + 1e-12
+    assert lit.confidence == pytest.approx(0.99 * 0.38 * 0.995 ** 6, rel=0.02)
+    assert [d for d, _ in lit.digit_probs[1][:2]] == [6, 0]
+    assert lit.decision == "accepted"
+    for name in ("previous_reading", "current_reading"):
+        assert out[name].rules == {"relation": True}
+        assert out[name].confidence <= 0.995 ** 3
+
+
+def test_relation_that_cannot_hold_sends_its_fields_to_review():
+    lay = meter_layout()
+    evidence = {"previous_reading": ev("previous_reading", sure("100", 0.999)),
+                "current_reading": ev("current_reading", sure("120", 0.999)),
+                "litres_used": ev("litres_used", sure("55", 0.999))}
+    out = decode_page(evidence, compile_rules(lay), lay)
+    for r in out.values():
+        assert r.rules["relation"] is False and r.reason == "rule_failed:relation"
+    assert out["litres_used"].reading == "55"
+
+
+def test_thresholds_field_overrides_page_and_equality_accepts():
+    lay = FakeLayout([FakeField("a", cells=1), FakeField("b", cells=1, threshold=0.95)])
+    c = compile_rules(lay)
+    evidence = {"a": ev("a", table({3: 0.9})), "b": ev("b", table({3: 0.9}))}
+    out = decode_page(evidence, c, lay, threshold=0.9)
+    assert out["a"].decision == "accepted" and out["a"].threshold == 0.9
+    assert out["b"].reason == "low_confidence" and out["b"].threshold == 0.95
+    out = decode_page(evidence, c, lay)          # falls back to layout.threshold (0.9)
+    assert out["a"].decision == "accepted"
+    assert decode_page(evidence, c, lay, threshold=0.91)["a"].reason == "low_confidence"
+    with pytest.raises(ParameterError):
+        decode_page(evidence, c, lay, threshold=1.5)
+
+
+def test_doubtful_segmentation_and_interior_blanks():
+    lay = FakeLayout([FakeField("a", cells=4), FakeField("b", cells=4), FakeField("c", cells=4)])
+    c = compile_rules(lay)
+    blank_mid = CandidateEvidence(sure("1234"), blank=np.array([False, True, False, False]))
+    evidence = {"a": ev("a", sure("1234"), doubtful=True), "b": ev("b", blank_mid)}
+    out = decode_page(evidence, c, lay, threshold=0.5)
+    assert out["a"].reason == "segmentation_doubtful" and out["a"].reading == "1234"
+    assert out["b"].reason == "segmentation_doubtful" and out["b"].reading == "134"
+    assert out["b"].positions == [0, 2, 3]
+    # no evidence at all: no reading
+    assert out["c"].reading is None and out["c"].reason == "segmentation_doubtful"
+
+
+def test_leading_and_trailing_blanks_are_fine():
+    lay = FakeLayout([FakeField("a", cells=5, rules={"range": [0, 999]})])
+    cand = CandidateEvidence(sure("00420"), blank=np.array([True, True, False, False, True]))
+    r = decode_page({"a": ev("a", cand)}, compile_rules(lay), lay, threshold=0.9)["a"]
+    assert r.reading == "42" and r.decision == "accepted" and r.positions == [2, 3]
+
+
+def test_empty_fields():
+    lay = FakeLayout([FakeField("opt", optional=True, rules={"length": 4}), FakeField("req", rules={"length": 4}),
+                      FakeField("open_opt", kind="open", cells=None, max_digits=4, optional=True)])
+    c = compile_rules(lay)
+    all_blank = CandidateEvidence(sure("0000"), blank=np.ones(4, bool))
+    evidence = {"opt": ev("opt", all_blank), "req": ev("req", all_blank),
+                # open field: "nothing written" (cost 0) against one faint stroke (cost 1)
+                "open_opt": ev("open_opt", CandidateEvidence(np.zeros((0, 10))),
+                               CandidateEvidence(sure("1"), cost=1.0))}
+    out = decode_page(evidence, c, lay, threshold=0.9)
+    assert out["opt"].reading == "" and out["opt"].confidence == 1.0 and out["opt"].decision == "accepted"
+    assert out["req"].reading == "" and out["req"].reason == "missing"
+    assert out["open_opt"].reading == ""
+    assert out["open_opt"].confidence == pytest.approx(1 / (1 + math.exp(-1)))
+    assert out["open_opt"].reason == "low_confidence"
+
+
+def test_empty_optional_field_skips_its_relation():
+    lay = FakeLayout([FakeField("a", cells=2), FakeField("b", cells=2, optional=True)], relations=["a >= b"])
+    out = decode_page({"a": ev("a", sure("10", 0.999)), "b": ev("b", CandidateEvidence(sure("99"),
+                      blank=np.ones(2, bool)))}, compile_rules(lay), lay)
+    assert "relation" not in out["a"].rules and out["a"].decision == "accepted"
+    assert out["b"].reading == "" and out["b"].decision == "accepted"
+
+
+def test_decode_field_alone_and_records_are_json():
+    lay = FakeLayout([FakeField("a", cells=2)])
+    r = decode_field(ev("a", sure("42")), compile_rules(lay).fields["a"], threshold=0.9)
+    assert r.reading == "42" and r.decision == "accepted"
+    rec = json.loads(json.dumps(r.to_record()))
+    assert rec["alternatives"][0][0] == "42" and rec["digit_probs"][0][0] == [4, 0.98]
+
+
+def test_unregistered_page():
+    lay = meter_layout(litres_threshold=0.97)
+    out = unregistered_page(lay)
+    assert list(out) == ["previous_reading", "current_reading", "litres_used"]
+    assert all(r.reading is None and r.decision == "review" and r.reason == "page_not_registered"
+               for r in out.values())
+    assert out["litres_used"].threshold == 0.97
+
+
+def test_evidence_from_digits_uses_blank_for_boxed_only():
+    @dataclass
+    class Cand:
+        digits: np.ndarray
+        boxes: list
+        cost: float
+
+    @dataclass
+    class FD:
+        name: str
+        kind: str
+        candidates: list
+        blank: np.ndarray | None
+        doubtful: bool = False
+        reason: str | None = None
+
+    fd = FD("a", "boxed", [Cand(np.zeros((3, 1, 28, 28), np.float32), [], 0.5)], np.array([True, False, False]))
+    e = evidence_from_digits(fd, [sure("123")])
+    assert e.candidates[0].cost == 0.5 and e.candidates[0].blank.tolist() == [True, False, False]
+    with pytest.raises(ParameterError):
+        evidence_from_digits(fd, [])
+
+
+def test_bad_probabilities_are_refused():
+    lay = FakeLayout([FakeField("a", cells=2)])
+    with pytest.raises(ParameterError, match="a.candidates"):
+        decode_page({"a": ev("a", np.ones((2, 9)))}, compile_rules(lay), lay)
+    with pytest.raises(ParameterError):
+        decode_page({"a": ev("a", np.full((2, 10), np.nan))}, compile_rules(lay), lay)
