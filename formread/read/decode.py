@@ -61,6 +61,7 @@ from formread.read.rules import CompiledRules, FieldRules, check_value
 __all__ = [
     "CandidateEvidence", "FieldEvidence", "FieldReading", "decode_page", "decode_field",
     "unregistered_page", "evidence_from_digits", "kbest_strings", "REASONS", "ACCEPTED", "REVIEW",
+    "DEFAULT_THRESHOLD",
 ]
 
 ACCEPTED = "accepted"
@@ -76,6 +77,8 @@ MAX_STRINGS = 128
 RELATION_TOP = 5
 MAX_COMBINATIONS = 20000
 N_ALTERNATIVES = 5
+DEFAULT_THRESHOLD = 0.9
+"""Page threshold when neither the caller nor the layout gives one."""
 _FLOOR = 1e-300
 
 
@@ -427,7 +430,7 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
         From ``compile_rules(layout)``.
     layout : Layout
         Its ``fields`` give the order of the result; ``layout.threshold`` is used
-        when ``threshold`` is None.
+        when ``threshold`` is None (and :data:`DEFAULT_THRESHOLD` when both are).
     threshold : float in [0, 1] or None
         Page threshold (a field's own ``threshold`` takes precedence).
     top_per_position, max_strings, relation_top, max_combinations, cost_scale
@@ -438,7 +441,7 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
     dict of str to FieldReading
         In the layout's field order.
     """
-    thr = layout.threshold if threshold is None else threshold
+    thr = _page_threshold(layout, threshold)
     check_param(isinstance(thr, (int, float)) and 0.0 <= thr <= 1.0, "threshold", "a number in [0, 1]", thr)
     check_param(top_per_position >= 1 and max_strings >= 1 and relation_top >= 1 and max_combinations >= 1,
                 "search sizes", "positive integers",
@@ -454,10 +457,18 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
     return {name: st.reading for name, st in states.items()}
 
 
-def unregistered_page(layout) -> dict[str, FieldReading]:
+def _page_threshold(layout, threshold):
+    if threshold is not None:
+        return threshold
+    t = getattr(layout, "threshold", None)
+    return DEFAULT_THRESHOLD if t is None else t
+
+
+def unregistered_page(layout, *, threshold: float | None = None) -> dict[str, FieldReading]:
     """Every field of ``layout`` without a reading, in review as ``page_not_registered``."""
+    thr = _page_threshold(layout, threshold)
     return {f.name: FieldReading(f.name, None, 0.0, decision=REVIEW, reason="page_not_registered",
-                                 threshold=float(f.threshold if f.threshold is not None else layout.threshold))
+                                 threshold=float(f.threshold if f.threshold is not None else thr))
             for f in layout.fields}
 
 

@@ -91,6 +91,9 @@ def _compile_field(src: str, f) -> FieldRules:
             raise bad(f"rule 'length' must be a positive integer or [min, max] with 1 <= min <= max; "
                       f"got {rules['length']!r}")
         length = (int(v[0]), int(v[1]))
+        room = getattr(f, "max_digits", None) or getattr(f, "cells", None)
+        if room is not None and length[0] > room:
+            raise bad(f"rule 'length' asks for at least {length[0]} digits but the field holds {room}")
     if "range" in rules:
         v = rules["range"]
         if not (isinstance(v, (list, tuple)) and len(v) == 2 and all(_is_int(x) for x in v)

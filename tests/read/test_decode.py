@@ -265,3 +265,10 @@ def test_bad_probabilities_are_refused():
         decode_page({"a": ev("a", np.ones((2, 9)))}, compile_rules(lay), lay)
     with pytest.raises(ParameterError):
         decode_page({"a": ev("a", np.full((2, 10), np.nan))}, compile_rules(lay), lay)
+
+
+def test_no_threshold_anywhere_uses_the_default():
+    lay = FakeLayout([FakeField("a", cells=1)], threshold=None)
+    r = decode_page({"a": ev("a", table({3: 0.9}))}, compile_rules(lay), lay)["a"]
+    assert r.threshold == 0.9 and r.decision == "accepted"
+    assert unregistered_page(lay)["a"].threshold == 0.9

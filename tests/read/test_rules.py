@@ -138,3 +138,62 @@ def test_bad_relations_name_file_and_rule(text, fragment):
 def test_unknown_field_in_check_field():
     with pytest.raises(RuleError, match="field 'x'"):
         check_field(compile_rules(layout(a={})), "x", "1")
+
+
+def test_length_must_fit_the_field():
+    with pytest.raises(RuleError, match="holds 8"):
+        compile_rules(layout(a={"length": [9, 10]}))
+
+
+def test_with_the_real_layout_parser():
+    from formread.imaging.layout import parse_layout
+    text = """
+[form]
+name = "Meter card"
+width_mm = 210.0
+height_mm = 297.0
+[[marks]]
+x = 10.0
+y = 10.0
+size = 5.0
+[[marks]]
+x = 200.0
+y = 10.0
+size = 5.0
+[[marks]]
+x = 10.0
+y = 287.0
+size = 5.0
+[[fields]]
+name = "previous"
+kind = "boxed"
+x = 40.0
+y = 60.0
+w = 30.0
+h = 7.0
+cells = 5
+[fields.rules]
+range = [0, 99999]
+[[fields]]
+name = "current"
+kind = "open"
+x = 40.0
+y = 80.0
+w = 30.0
+h = 7.0
+max_digits = 5
+[fields.rules]
+lenght = 5
+[[relations]]
+rule = "current >= previous"
+"""
+    with pytest.raises(RuleError) as e:
+        compile_rules(parse_layout(text, "meter.toml"))
+    assert str(e.value) == ("meter.toml: field 'current': unknown rule 'lenght' "
+                            "(known: length, range, date, check, optional)")
+    c = compile_rules(parse_layout(text.replace("lenght", "length"), "meter.toml"))
+    assert c.source == "meter.toml" and [r.text for r in c.relations] == ["current >= previous"]
+    assert check_field(c, "current", "123") == {"length": False}
+    bad = text.replace("lenght", "length").replace("current >= previous", "current >= previus")
+    with pytest.raises(RuleError, match="^meter.toml: relation 'current >= previus': unknown field 'previus'$"):
+        compile_rules(parse_layout(bad, "meter.toml"))
