@@ -1,0 +1,97 @@
+"""The output files regenerated from the ledger: ``readings.csv`` and ``fields.jsonl``.
+
+Both are rebuilt from the ledger as a whole at the end of every run (and may be
+rebuilt at any time), each written atomically, so they always agree with the
+ledger, whatever happened to earlier runs.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+from pathlib import Path
+
+from .ledger import Ledger, atomic_write
+
+__all__ = ["READINGS_CSV", "FIELDS_JSONL", "field_value", "field_status", "write_outputs"]
+
+READINGS_CSV = "readings.csv"
+FIELDS_JSONL = "fields.jsonl"
+
+
+def field_value(row: dict) -> str | None:
+    """The field's current value: the clerk's final value once decided, else the machine's reading."""
+    if row.get("final_status") is not None:
+        return row.get("final_value")
+    return row.get("reading")
+
+
+def field_status(row: dict) -> str:
+    """The field's current status: 'accepted', 'review' (waiting for a clerk) or the clerk's final status."""
+    fs = row.get("final_status")
+    if fs is None:
+        return "review" if row["decision"] == "review" else row["decision"]
+    return "accepted" if fs == "auto" else fs
+
+
+def _field_names(rows: list[dict]) -> list[str]:
+    seen: dict[str, None] = {}
+    for r in sorted(rows, key=lambda r: r["id"]):
+        seen.setdefault(r["name"], None)
+    return list(seen)
+
+
+def readings_csv(ledger: Ledger) -> str:
+    """``readings.csv`` text: one row per page, a value and a status column per field."""
+    pages = ledger.page_rows()
+    fields = ledger.field_rows()
+    names = _field_names(fields)
+    by_page: dict[int, dict[str, dict]] = {}
+    for f in fields:
+        by_page.setdefault(f["page_id"], {})[f["name"]] = f
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(["page_id", "source", "page_number", "page_status", "page_error"]
+               + [c for n in names for c in (n, f"{n}_status")])
+    for p in pages:
+        row = [p["id"], p["source"], p["page_number"], p["status"], p["error"] or ""]
+        mine = by_page.get(p["id"], {})
+        for n in names:
+            f = mine.get(n)
+            if f is None:
+                row += ["", ""]
+            else:
+                v = field_value(f)
+                row += ["" if v is None else v, field_status(f)]
+        w.writerow(row)
+    return buf.getvalue()
+
+
+def fields_jsonl(ledger: Ledger) -> str:
+    """``fields.jsonl`` text: one JSON record per field, with its top alternatives and their probabilities."""
+    lines = []
+    for f in ledger.field_rows():
+        rec = {
+            "page_id": f["page_id"], "source": f["source"], "page_number": f["page_number"],
+            "field": f["name"], "kind": f["kind"], "reading": f["reading"], "confidence": f["confidence"],
+            "decision": f["decision"], "reason": f["reason"], "rules": f["rules"],
+            "alternatives": f["alternatives"], "value": field_value(f), "status": field_status(f),
+            "image": f["image_path"],
+        }
+        lines.append(json.dumps(rec, ensure_ascii=False))
+    return "".join(line + "\n" for line in lines)
+
+
+def write_outputs(ledger: Ledger) -> dict[str, Path]:
+    """Rebuild ``readings.csv`` and ``fields.jsonl`` in the ledger's folder (each atomically).
+
+    Returns
+    -------
+    dict
+        ``{"readings": path, "fields": path}``.
+    """
+    out = {"readings": ledger.outdir / READINGS_CSV, "fields": ledger.outdir / FIELDS_JSONL}
+    atomic_write(out["readings"], readings_csv(ledger).encode("utf-8"))
+    atomic_write(out["fields"], fields_jsonl(ledger).encode("utf-8"))
+    return out
