@@ -1,6 +1,10 @@
-"""Convolution and pooling kernels on (N, C, H, W) arrays: im2col with BLAS matmuls.
+"""Convolution and pooling kernels in the internal batch-innermost layout.
 
-Loops run only over kernel offsets (k * k of them), never over pixels or images.
+Internally, image batches are stored as (C, H, W, N): the batch is the innermost axis, so every
+shifted copy of a window is a copy of long contiguous runs and a convolution is a single matmul
+W (O, C*k*k) @ cols (C*k*k, Ho*Wo*N) whose result is already in the (O, Ho, Wo, N) layout. Loops run
+only over kernel offsets (k * k of them), never over pixels or images. Large scratch arrays live in
+a per-layer ``Scratch`` so a training loop does not allocate them again on every batch.
 """
 
 from __future__ import annotations
@@ -9,91 +13,134 @@ import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
 
-def _out_size(n: int, k: int, s: int) -> int:
-    return (n - k) // s + 1
+class Scratch:
+    """Reusable work arrays, keyed by purpose; reallocated only when shape or dtype changes."""
+
+    def __init__(self):
+        self._arrays: dict[str, np.ndarray] = {}
+
+    def get(self, key: str, shape: tuple, dtype, zero: bool = False) -> np.ndarray:
+        a = self._arrays.get(key)
+        if a is None or a.shape != shape or a.dtype != dtype:
+            a = np.zeros(shape, dtype=dtype)
+            self._arrays[key] = a
+        elif zero:
+            a.fill(0)
+        return a
+
+    def clear(self) -> None:
+        self._arrays.clear()
 
 
-def _windows(x: np.ndarray, k: int, s: int) -> np.ndarray:
-    """View of shape (N, C, Ho, Wo, k, k) on the k x k windows of x at stride s."""
-    ho, wo = _out_size(x.shape[2], k, s), _out_size(x.shape[3], k, s)
-    win = sliding_window_view(x, (k, k), axis=(2, 3))
-    return win[:, :, : (ho - 1) * s + 1 : s, : (wo - 1) * s + 1 : s]
+def out_size(n: int, k: int, s: int, p: int = 0) -> int:
+    """Output length of a window of size k at stride s over n values padded by p on each side."""
+    return (n + 2 * p - k) // s + 1
 
 
-def conv_forward(x, w, b, stride, padding):
-    """x (N, C, H, W), w (O, C, k, k), b (O,) -> y (N, O, Ho, Wo) and a cache for the backward pass."""
-    n, c, h, wd = x.shape
+def _slab(i: int, j: int, ho: int, wo: int, s: int):
+    """Index of the (ho, wo) strided positions at kernel offset (i, j) in a (C, H, W, N) array."""
+    return (slice(None), slice(i, i + s * (ho - 1) + 1, s), slice(j, j + s * (wo - 1) + 1, s))
+
+
+def conv_forward(x, w, b, s, p, scratch: Scratch):
+    """x (C, H, W, N), w (O, C, k, k), b (O,) -> y (O, Ho, Wo, N) and the cols (C*k*k, Ho*Wo*N)."""
+    c, h, wd, n = x.shape
     o, _, k, _ = w.shape
-    if padding:
-        xp = np.zeros((n, c, h + 2 * padding, wd + 2 * padding), dtype=x.dtype)
-        xp[:, :, padding:padding + h, padding:padding + wd] = x
+    if p:
+        xp = scratch.get("xpad", (c, h + 2 * p, wd + 2 * p, n), x.dtype)
+        xp[:, p:p + h, p:p + wd, :] = x  # borders stay zero between calls
     else:
         xp = x
-    check = xp.shape[2] >= k and xp.shape[3] >= k
-    if not check:
-        from formread.errors import check_param
-        check_param(False, "x", f"at least {k}x{k} after padding", x.shape)
-    win = _windows(xp, k, stride)
-    ho, wo = win.shape[2], win.shape[3]
-    cols = np.ascontiguousarray(win.transpose(0, 2, 3, 1, 4, 5)).reshape(n * ho * wo, c * k * k)
-    y = cols @ w.reshape(o, -1).T
-    y += b
-    y = np.ascontiguousarray(y.reshape(n, ho, wo, o).transpose(0, 3, 1, 2))
-    return y, (cols, x.shape, xp.shape, stride, padding, ho, wo)
+    ho, wo = out_size(h, k, s, p), out_size(wd, k, s, p)
+    cols = scratch.get("cols", (c, k, k, ho, wo, n), x.dtype)
+    win = sliding_window_view(xp, (k, k), axis=(1, 2))  # (C, H', W', N, k, k)
+    win = win[:, : s * (ho - 1) + 1 : s, : s * (wo - 1) + 1 : s]
+    np.copyto(cols, win.transpose(0, 4, 5, 1, 2, 3))
+    cols2 = cols.reshape(c * k * k, ho * wo * n)
+    y = np.matmul(w.reshape(o, c * k * k), cols2)
+    y += b[:, None]
+    return y.reshape(o, ho, wo, n), cols2
 
 
-def conv_backward(dy, w, cache):
-    """dy (N, O, Ho, Wo) -> dx (N, C, H, W), dw (O, C, k, k), db (O,)."""
-    cols, xshape, xpshape, s, p, ho, wo = cache
-    n, c, h, wd = xshape
+def conv_backward(dy, w, cols2, xshape, s, p, scratch: Scratch, need_dx: bool = True):
+    """dy (O, Ho, Wo, N) -> (dx (C, H, W, N) or None, dw (O, C, k, k), db (O,))."""
+    c, h, wd, n = xshape
     o, _, k, _ = w.shape
-    dy2 = np.ascontiguousarray(dy.transpose(0, 2, 3, 1)).reshape(-1, o)
-    dw = (dy2.T @ cols).reshape(w.shape)
-    db = dy2.sum(axis=0)
-    dcols = (dy2 @ w.reshape(o, -1)).reshape(n, ho, wo, c, k, k).transpose(0, 3, 1, 2, 4, 5)
-    dxp = np.zeros(xpshape, dtype=dy.dtype)
+    _, ho, wo, _ = dy.shape
+    dy2 = dy.reshape(o, ho * wo * n)
+    dw = np.matmul(dy2, cols2.T).reshape(w.shape)
+    db = dy2.sum(axis=1)
+    if not need_dx:
+        return None, dw, db
+    dcols = scratch.get("dcols", (c * k * k, ho * wo * n), dy.dtype)
+    np.matmul(w.reshape(o, c * k * k).T, dy2, out=dcols)
+    dcols = dcols.reshape(c, k, k, ho, wo, n)
+    if p == 0 and s == 1 and k == 1:
+        return dcols[:, 0, 0].copy(), dw, db
+    dxp = np.zeros((c, h + 2 * p, wd + 2 * p, n), dtype=dy.dtype)
     for i in range(k):
         for j in range(k):
-            dxp[:, :, i:i + s * (ho - 1) + 1:s, j:j + s * (wo - 1) + 1:s] += dcols[..., i, j]
-    dx = dxp[:, :, p:p + h, p:p + wd] if p else dxp
-    return np.ascontiguousarray(dx), dw, db
+            dxp[_slab(i, j, ho, wo, s)] += dcols[:, i, j]
+    dx = dxp[:, p:p + h, p:p + wd, :] if p else dxp
+    return dx, dw, db
 
 
 def maxpool_forward(x, k, s):
-    """x (N, C, H, W) -> y (N, C, Ho, Wo) maximum over each window, and a cache."""
-    win = _windows(x, k, s)
-    n, c, ho, wo = win.shape[:4]
-    flat = win.reshape(n, c, ho, wo, k * k)
-    idx = flat.argmax(axis=-1)
-    y = np.take_along_axis(flat, idx[..., None], axis=-1)[..., 0]
-    return y, (idx, x.shape, k, s)
+    """x (C, H, W, N) -> y (C, Ho, Wo, N) maximum of each window, and the argmax (C, Ho, Wo, N) uint8
+    (offset i * k + j of the first maximum in the window)."""
+    c, h, wd, n = x.shape
+    ho, wo = out_size(h, k, s), out_size(wd, k, s)
+    y = x[_slab(0, 0, ho, wo, s)].copy()
+    arg = np.zeros(y.shape, dtype=np.uint8)
+    for q in range(1, k * k):
+        v = x[_slab(q // k, q % k, ho, wo, s)]
+        better = v > y
+        np.copyto(arg, np.uint8(q), where=better)
+        np.maximum(y, v, out=y)
+    return y, arg
 
 
-def maxpool_backward(dy, cache):
-    """dy (N, C, Ho, Wo) -> dx (N, C, H, W): gradient routed to the (first) maximum of each window."""
-    idx, xshape, k, s = cache
-    ho, wo = dy.shape[2], dy.shape[3]
+def maxpool_backward(dy, arg, xshape, k, s):
+    """dy (C, Ho, Wo, N) -> dx (C, H, W, N): each window's gradient goes to its first maximum."""
+    _, ho, wo, _ = dy.shape
+    zero = dy.dtype.type(0)
+    if s == k:
+        dx = np.empty(xshape, dtype=dy.dtype)
+        h, wd = xshape[1], xshape[2]
+        if h != ho * k or wd != wo * k:
+            dx.fill(0)
+        for q in range(k * k):
+            np.copyto(dx[_slab(q // k, q % k, ho, wo, s)], np.where(arg == q, dy, zero))
+        return dx
     dx = np.zeros(xshape, dtype=dy.dtype)
     for q in range(k * k):
-        i, j = divmod(q, k)
-        dx[:, :, i:i + s * (ho - 1) + 1:s, j:j + s * (wo - 1) + 1:s] += np.where(idx == q, dy, 0)
+        dx[_slab(q // k, q % k, ho, wo, s)] += np.where(arg == q, dy, zero)
     return dx
 
 
 def avgpool_forward(x, k, s):
-    """x (N, C, H, W) -> y (N, C, Ho, Wo) mean over each window, and a cache."""
-    win = _windows(x, k, s)
-    y = win.mean(axis=(-2, -1), dtype=x.dtype)
-    return y.astype(x.dtype, copy=False), (x.shape, k, s)
+    """x (C, H, W, N) -> y (C, Ho, Wo, N) mean of each window."""
+    c, h, wd, n = x.shape
+    ho, wo = out_size(h, k, s), out_size(wd, k, s)
+    y = x[_slab(0, 0, ho, wo, s)].copy()
+    for q in range(1, k * k):
+        y += x[_slab(q // k, q % k, ho, wo, s)]
+    y *= y.dtype.type(1.0 / (k * k))
+    return y
 
 
-def avgpool_backward(dy, cache):
-    """dy (N, C, Ho, Wo) -> dx (N, C, H, W): gradient spread evenly over each window."""
-    xshape, k, s = cache
-    ho, wo = dy.shape[2], dy.shape[3]
-    dx = np.zeros(xshape, dtype=dy.dtype)
+def avgpool_backward(dy, xshape, k, s):
+    """dy (C, Ho, Wo, N) -> dx (C, H, W, N): each window's gradient spread evenly over it."""
+    _, ho, wo, _ = dy.shape
     share = dy * dy.dtype.type(1.0 / (k * k))
-    for i in range(k):
-        for j in range(k):
-            dx[:, :, i:i + s * (ho - 1) + 1:s, j:j + s * (wo - 1) + 1:s] += share
+    if s == k:
+        dx = np.empty(xshape, dtype=dy.dtype)
+        if xshape[1] != ho * k or xshape[2] != wo * k:
+            dx.fill(0)
+        for q in range(k * k):
+            dx[_slab(q // k, q % k, ho, wo, s)] = share
+        return dx
+    dx = np.zeros(xshape, dtype=dy.dtype)
+    for q in range(k * k):
+        dx[_slab(q // k, q % k, ho, wo, s)] += share
     return dx

@@ -31,15 +31,35 @@ class Param:
         return f"Param({self.name!r}, shape={self.value.shape}, dtype={self.value.dtype})"
 
 
+def to_internal(x: np.ndarray) -> np.ndarray:
+    """Public layout (N, ...) -> internal batch-innermost layout (..., N) (a view)."""
+    return np.moveaxis(x, 0, -1)
+
+
+def to_public(x: np.ndarray) -> np.ndarray:
+    """Internal layout (..., N) -> public layout (N, ...), as a new C-contiguous array."""
+    return np.ascontiguousarray(np.moveaxis(x, -1, 0))
+
+
 class Layer:
-    """Base layer: no parameters, identity spec."""
+    """Base layer. Subclasses implement ``_fwd``/``_bwd`` on the internal batch-innermost layout
+    ((C, H, W, N) for images, (F, N) for features); the public ``forward``/``backward`` take and
+    return the usual (N, C, H, W) / (N, F) arrays."""
 
     kind = "layer"
 
     def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
-        raise NotImplementedError
+        """x (N, ...) -> y (N, ...), same dtype. ``train`` enables dropout."""
+        return to_public(self._fwd(to_internal(np.asarray(x)), train))
 
     def backward(self, dy: np.ndarray) -> np.ndarray:
+        """dy (N, ...) like the last output -> dx (N, ...) like the last input; fills ``.grad``."""
+        return to_public(self._bwd(to_internal(np.asarray(dy)), True))
+
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        raise NotImplementedError
+
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
         raise NotImplementedError
 
     def params(self) -> list[Param]:
@@ -88,6 +108,7 @@ class Conv2D(Layer):
         w = rng.uniform(-bound, bound, size=(out_ch, in_ch, kernel, kernel)).astype(dtype)
         self.weight = Param(w, "weight")
         self.bias = Param(np.zeros(out_ch, dtype=dtype), "bias")
+        self._scratch = _conv.Scratch()
         self._cache = None
 
     def params(self) -> list[Param]:
@@ -97,15 +118,20 @@ class Conv2D(Layer):
         return {"type": self.kind, "in": self.in_ch, "out": self.out_ch, "kernel": self.kernel,
                 "stride": self.stride, "padding": self.padding}
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
-        check_param(x.ndim == 4 and x.shape[1] == self.in_ch, "x", f"of shape (N, {self.in_ch}, H, W)",
-                    x.shape)
-        y, self._cache = _conv.conv_forward(x, self.weight.value, self.bias.value, self.stride,
-                                            self.padding)
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        k, p = self.kernel, self.padding
+        check_param(x.ndim == 4 and x.shape[0] == self.in_ch and min(x.shape[1:3]) + 2 * p >= k,
+                    "x", f"of shape (N, {self.in_ch}, H, W) with H, W >= {k - 2 * p}",
+                    (x.shape[-1],) + x.shape[:-1])
+        y, cols = _conv.conv_forward(x, self.weight.value, self.bias.value, self.stride, p,
+                                     self._scratch)
+        self._cache = (cols, x.shape)
         return y
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
-        dx, dw, db = _conv.conv_backward(dy, self.weight.value, self._cache)
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        cols, xshape = self._cache
+        dx, dw, db = _conv.conv_backward(dy, self.weight.value, cols, xshape, self.stride,
+                                         self.padding, self._scratch, need_dx)
         self.weight.grad = dw
         self.bias.grad = db
         return dx
@@ -127,12 +153,14 @@ class MaxPool2D(_Pool):
 
     kind = "maxpool"
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
-        y, self._cache = _conv.maxpool_forward(x, self.size, self.stride)
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        y, arg = _conv.maxpool_forward(x, self.size, self.stride)
+        self._cache = (arg, x.shape)
         return y
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
-        return _conv.maxpool_backward(dy, self._cache)
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        arg, xshape = self._cache
+        return _conv.maxpool_backward(dy, arg, xshape, self.size, self.stride)
 
 
 class AvgPool2D(_Pool):
@@ -140,12 +168,12 @@ class AvgPool2D(_Pool):
 
     kind = "avgpool"
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
-        y, self._cache = _conv.avgpool_forward(x, self.size, self.stride)
-        return y
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        self._cache = x.shape
+        return _conv.avgpool_forward(x, self.size, self.stride)
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
-        return _conv.avgpool_backward(dy, self._cache)
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        return _conv.avgpool_backward(dy, self._cache, self.size, self.stride)
 
 
 class Dense(Layer):
@@ -172,18 +200,18 @@ class Dense(Layer):
     def spec(self) -> dict:
         return {"type": self.kind, "in": self.in_features, "out": self.out_features}
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
-        check_param(x.ndim == 2 and x.shape[1] == self.in_features, "x",
-                    f"of shape (N, {self.in_features})", x.shape)
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        check_param(x.ndim == 2 and x.shape[0] == self.in_features, "x",
+                    f"of shape (N, {self.in_features})", x.shape[::-1])
         self._x = x
-        y = x @ self.weight.value
-        y += self.bias.value
+        y = np.matmul(self.weight.value.T, x)  # (out, N)
+        y += self.bias.value[:, None]
         return y
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
-        self.weight.grad = self._x.T @ dy
-        self.bias.grad = dy.sum(axis=0)
-        return dy @ self.weight.value.T
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        self.weight.grad = np.matmul(self._x, dy.T)
+        self.bias.grad = dy.sum(axis=1)
+        return np.matmul(self.weight.value, dy) if need_dx else None
 
 
 class ReLU(Layer):
@@ -191,12 +219,12 @@ class ReLU(Layer):
 
     kind = "relu"
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
-        self._mask = x > 0
-        return np.maximum(x, 0)
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        self._y = np.maximum(x, x.dtype.type(0))
+        return self._y
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
-        return dy * self._mask
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        return np.where(self._y > 0, dy, dy.dtype.type(0))
 
 
 class Tanh(Layer):
@@ -204,11 +232,11 @@ class Tanh(Layer):
 
     kind = "tanh"
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         self._y = np.tanh(x)
         return self._y
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
         return dy * (1 - self._y * self._y)
 
 
@@ -217,12 +245,13 @@ class Sigmoid(Layer):
 
     kind = "sigmoid"
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         # 0.5 * (1 + tanh(x / 2)) equals the logistic function and never overflows.
-        self._y = 0.5 * (1 + np.tanh(0.5 * x))
+        half = x.dtype.type(0.5)
+        self._y = half * (1 + np.tanh(half * x))
         return self._y
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
         return dy * self._y * (1 - self._y)
 
 
@@ -241,26 +270,27 @@ class Dropout(Layer):
     def spec(self) -> dict:
         return {"type": self.kind, "p": self.p}
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         if not train or self.p == 0.0:
             self._mask = None
             return x
+        # the mask is drawn in the internal (F, N) layout; the same seed gives the same masks
         keep = self.rng.random(x.shape, dtype=np.float32) >= self.p
         self._mask = keep.astype(x.dtype) * x.dtype.type(1.0 / (1.0 - self.p))
         return x * self._mask
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
         return dy if self._mask is None else dy * self._mask
 
 
 class Flatten(Layer):
-    """(N, C, H, W) -> (N, C * H * W) in C order."""
+    """(N, C, H, W) -> (N, C * H * W) in C order (internally (C, H, W, N) -> (C*H*W, N))."""
 
     kind = "flatten"
 
-    def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         self._shape = x.shape
-        return x.reshape(x.shape[0], -1)
+        return x.reshape(-1, x.shape[-1])
 
-    def backward(self, dy: np.ndarray) -> np.ndarray:
+    def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
         return dy.reshape(self._shape)

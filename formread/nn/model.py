@@ -8,7 +8,7 @@ import numpy as np
 
 from formread.errors import check_param
 from formread.nn import layers as L
-from formread.nn.losses import softmax
+from formread.nn.losses import softmax, softmax_cross_entropy
 
 __all__ = ["Sequential", "build_model", "ARCHITECTURES"]
 
@@ -84,20 +84,40 @@ class Sequential:
         return ps[0].value.dtype if ps else np.dtype(np.float32)
 
     def forward(self, x: np.ndarray, train: bool = False) -> np.ndarray:
-        """x (N, C, H, W) -> logits (N, classes), in the model's dtype. ``train`` enables dropout."""
+        """x (N, C, H, W) -> logits (N, classes), in the model's dtype. ``train`` enables dropout.
+
+        Runs in the internal batch-innermost layout; converts once on the way in and out.
+        """
         x = np.asarray(x)
         if x.dtype != self.dtype:
             x = x.astype(self.dtype)
+        h = L.to_internal(x)
         for layer in self.layers:
-            x = layer.forward(x, train=train)
-        return x
+            h = layer._fwd(h, train)
+        return L.to_public(h)
 
-    def backward(self, dlogits: np.ndarray) -> np.ndarray:
-        """dlogits (N, classes) -> dx (N, C, H, W); fills every parameter's ``.grad``."""
-        d = np.asarray(dlogits, dtype=self.dtype)
-        for layer in reversed(self.layers):
-            d = layer.backward(d)
-        return d
+    def backward(self, dlogits: np.ndarray, input_grad: bool = True) -> np.ndarray | None:
+        """dlogits (N, classes) -> dx (N, C, H, W); fills every parameter's ``.grad``.
+
+        With ``input_grad=False`` the gradient for the input is not computed (saves the first
+        layer's backward-to-input work during training) and None is returned.
+        """
+        d = L.to_internal(np.asarray(dlogits, dtype=self.dtype))
+        last = len(self.layers) - 1
+        for i, layer in enumerate(reversed(self.layers)):
+            d = layer._bwd(d, input_grad or i < last)
+        return None if d is None else L.to_public(d)
+
+    def grad_step(self, x: np.ndarray, y: np.ndarray, smoothing: float = 0.0) -> tuple[float, int]:
+        """One training pass: forward (train=True), mean softmax cross-entropy, backward.
+
+        x : (N, C, H, W) float; y : (N,) int labels. Fills every ``.grad`` (gradient of the mean
+        loss over the batch) and returns (loss, number of correct argmax predictions).
+        """
+        logits = self.forward(x, train=True)
+        loss, d = softmax_cross_entropy(logits, y, smoothing)
+        self.backward(d, input_grad=False)
+        return loss, int((logits.argmax(axis=1) == y).sum())
 
     def predict_proba(self, x: np.ndarray, batch_size: int = 256, temperature: float = 1.0
                       ) -> np.ndarray:

@@ -130,7 +130,8 @@ def test_whole_model_gradient():
         return softmax_cross_entropy(model.forward(x), y)[0]
 
     _, d = softmax_cross_entropy(model.forward(x), y)
-    model.backward(d)
+    dx = model.backward(d)
+    np.testing.assert_allclose(dx, numeric_grad(f, x), rtol=1e-5, atol=1e-8)
     for p in model.parameters():
         g = p.grad.copy()
         np.testing.assert_allclose(g, numeric_grad(f, p.value), rtol=1e-5, atol=1e-8)

@@ -105,7 +105,7 @@ def test_dropout_only_when_training_and_reproducible():
     x = np.ones((50, 40), dtype=np.float32)
     a = L.Dropout(0.5, rng=np.random.default_rng(3))
     b = L.Dropout(0.5, rng=np.random.default_rng(3))
-    assert a.forward(x) is x
+    np.testing.assert_array_equal(a.forward(x), x)
     ya, yb = a.forward(x, train=True), b.forward(x, train=True)
     np.testing.assert_array_equal(ya, yb)
     assert 0.4 < (ya == 0).mean() < 0.6
@@ -190,3 +190,24 @@ def test_sequential_of_given_layers():
     model = Sequential([L.Flatten(), L.Dense(4, 2, rng=rng)])
     assert model.forward(np.ones((3, 1, 2, 2), dtype=np.float32)).shape == (3, 2)
     assert [p.name for p in model.parameters()] == ["1.dense.weight", "1.dense.bias"]
+
+
+def test_model_matches_layer_by_layer_and_grad_step():
+    """Sequential's single-conversion path equals chaining the public layer calls."""
+    model = build_model("lenet5", np.random.default_rng(0), dtype=np.float64)
+    x = np.random.default_rng(1).random((6, 1, 28, 28))
+    y = np.array([0, 1, 2, 3, 4, 5])
+    h = x
+    for layer in model.layers:
+        h = layer.forward(h)
+    np.testing.assert_allclose(model.forward(x), h, rtol=1e-12)
+    from formread.nn.losses import softmax_cross_entropy
+    loss, d = softmax_cross_entropy(model.forward(x, train=True), y)
+    dx = model.backward(d)
+    assert dx.shape == x.shape
+    grads = [p.grad.copy() for p in model.parameters()]
+    loss2, correct = model.grad_step(x, y)
+    assert loss2 == pytest.approx(loss) and 0 <= correct <= 6
+    for p, g in zip(model.parameters(), grads):
+        np.testing.assert_allclose(p.grad, g, rtol=1e-12)
+    assert model.backward(d, input_grad=False) is None
