@@ -1,0 +1,174 @@
+"""Write the final values of a ledger: a CSV (one row per page) and JSON Lines (one record per field).
+
+Each field says how its value came about (``how``):
+
+* ``auto``        accepted by the reader and not touched by a clerk
+* ``confirmed``   flagged, and a clerk kept the proposed reading
+* ``corrected``   flagged, and a clerk typed another value
+* ``unreadable``  a clerk could not read it (value empty)
+* ``empty``       a clerk saw the field blank on paper (value empty)
+* ``pending``     still waiting for review (value empty)
+
+Files are written atomically (a temporary file in the same folder, then ``os.replace``), so a
+reader of the export never sees half a file and an interrupted export leaves the old one intact.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import tempfile
+from dataclasses import dataclass
+from pathlib import Path
+
+from ..errors import LedgerError
+from .actions import connect
+
+__all__ = ["HOW", "CSV_NAME", "JSONL_NAME", "ExportResult", "final_records", "export_final", "atomic_write"]
+
+HOW = ("auto", "confirmed", "corrected", "unreadable", "empty", "pending")
+CSV_NAME = "final_values.csv"
+JSONL_NAME = "final_values.jsonl"
+
+
+@dataclass
+class ExportResult:
+    """Where the export went and what it holds (``counts``: fields per ``how``)."""
+
+    csv_path: Path
+    jsonl_path: Path
+    pages: int
+    fields: int
+    counts: dict
+
+
+def _how(decision: str, final_status: str | None) -> str:
+    if final_status in ("confirmed", "corrected", "unreadable", "empty"):
+        return final_status
+    if decision == "accepted":
+        return "auto"
+    return "pending"
+
+
+def _value(how: str, reading: str | None, final_value: str | None) -> str:
+    if how == "auto":
+        return final_value if final_value is not None else (reading or "")
+    if how in ("confirmed", "corrected"):
+        return final_value or ""
+    return ""
+
+
+_RECORDS_SQL = (
+    "SELECT f.id, f.page_id, f.name, f.reading, f.confidence, f.reason, f.decision, f.final_value, "
+    "f.final_status, p.source, p.page_number, p.status AS page_status, r.model_sha256, r.threshold, "
+    "(SELECT v.reviewer FROM reviews v WHERE v.field_id = f.id ORDER BY v.id DESC LIMIT 1) AS reviewer, "
+    "(SELECT v.at FROM reviews v WHERE v.field_id = f.id ORDER BY v.id DESC LIMIT 1) AS reviewed_at "
+    "FROM fields f JOIN pages p ON p.id = f.page_id JOIN runs r ON r.id = p.run_id "
+    "ORDER BY p.id, f.id")
+
+
+def _snapshot(outdir: str | Path) -> tuple[list[dict], list[dict]]:
+    """(pages, field records) read in one transaction, so they agree with each other."""
+    conn = connect(outdir)
+    try:
+        conn.execute("BEGIN")
+        pages = [dict(r) for r in conn.execute(
+            "SELECT id AS page_id, source, page_number, status AS page_status FROM pages ORDER BY id")]
+        rows = conn.execute(_RECORDS_SQL).fetchall()
+        conn.execute("COMMIT")
+    finally:
+        conn.close()
+    records = []
+    for r in rows:
+        how = _how(r["decision"], r["final_status"])
+        records.append({
+            "page_id": r["page_id"], "source": r["source"], "page_number": r["page_number"],
+            "page_status": r["page_status"], "field": r["name"], "value": _value(how, r["reading"], r["final_value"]),
+            "how": how, "reading": r["reading"], "confidence": r["confidence"], "reason": r["reason"],
+            "reviewer": r["reviewer"], "reviewed_at": r["reviewed_at"],
+            "model_sha256": r["model_sha256"], "threshold": r["threshold"],
+        })
+    return pages, records
+
+
+def final_records(outdir: str | Path) -> list[dict]:
+    """One dict per field, in page then field order (the JSON Lines records).
+
+    Keys: ``page_id, source, page_number, page_status, field, value, how, reading, confidence,
+    reason, reviewer, reviewed_at, model_sha256, threshold`` (reviewer/reviewed_at from the last
+    review, None when untouched; model and threshold from the run that read the page).
+    """
+    return _snapshot(outdir)[1]
+
+
+def _cell(text) -> str:
+    """A CSV cell that a spreadsheet will not run as a formula (common practice: prefix ')."""
+    s = "" if text is None else str(text)
+    return "'" + s if s[:1] in ("=", "+", "-", "@", "\t", "\r") else s
+
+
+def atomic_write(path: Path, text: str) -> None:
+    """Write ``text`` (UTF-8) to ``path`` through a temporary file and ``os.replace``."""
+    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as f:
+            f.write(text)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            os.unlink(tmp)
+        except OSError:
+            pass
+        raise
+
+
+def export_final(outdir: str | Path, out_dir: str | Path | None = None) -> ExportResult:
+    """Write ``final_values.csv`` and ``final_values.jsonl`` into ``out_dir`` (default: ``outdir``).
+
+    The CSV has one row per page (failed pages too, with no values): ``page_id, source, page_number, page_status``, then for each
+    field name (in the order first met) a value column ``<name>`` and a ``<name>_how`` column.
+
+    Raises
+    ------
+    LedgerError
+        No ledger in ``outdir``, or ``out_dir`` cannot be created or written.
+    """
+    page_rows, records = _snapshot(outdir)
+    out = Path(out_dir) if out_dir is not None else Path(outdir)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise LedgerError(f"{out}: cannot create the export folder ({e.strerror})") from None
+
+    names: list[str] = []
+    pages = {p["page_id"]: dict(p, source=_cell(p["source"])) for p in page_rows}
+    counts = {h: 0 for h in HOW}
+    for rec in records:
+        if rec["field"] not in names:
+            names.append(rec["field"])
+        page = pages[rec["page_id"]]
+        page[rec["field"]] = rec["value"]
+        page[rec["field"] + "_how"] = rec["how"]
+        counts[rec["how"]] += 1
+
+    buf = io.StringIO()
+    header = ["page_id", "source", "page_number", "page_status"]
+    for n in names:
+        header += [n, n + "_how"]
+    w = csv.DictWriter(buf, fieldnames=header, restval="", lineterminator="\n")
+    w.writeheader()
+    for page in pages.values():
+        w.writerow(page)
+    lines = "".join(json.dumps(rec, ensure_ascii=False) + "\n" for rec in records)
+
+    csv_path, jsonl_path = out / CSV_NAME, out / JSONL_NAME
+    try:
+        atomic_write(csv_path, buf.getvalue())
+        atomic_write(jsonl_path, lines)
+    except OSError as e:
+        raise LedgerError(f"{out}: cannot write the export ({e.strerror or e})") from None
+    return ExportResult(csv_path, jsonl_path, len(pages), len(records), counts)
