@@ -1,0 +1,152 @@
+"""Ink or paper: Otsu's global threshold, Sauvola's local threshold, and the rule that picks one.
+
+Images are ``(H, W) uint8`` with 0 = ink and 255 = paper; masks are ``(H, W) bool`` with True = ink.
+Otsu (1979) suits evenly lit scans; Sauvola & Pietikainen (2000) follows uneven lighting and shadows.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..errors import check_param
+
+__all__ = ["threshold_otsu", "threshold_sauvola", "binarize", "background", "is_uneven",
+           "UNEVEN_SPREAD"]
+
+#: ``auto`` picks Sauvola when the paper's brightness varies by more than this share of its level.
+UNEVEN_SPREAD = 0.15
+
+
+def threshold_otsu(gray: np.ndarray) -> float:
+    """Otsu's threshold: the grey level that maximises the between-class variance.
+
+    gray : ndarray of shape (H, W), uint8 (or any integer/float dtype)
+    Returns a level t; ink (dark) is ``gray <= t``. Same histogram and tie rule as scikit-image's
+    ``threshold_otsu``: integer images use one bin per grey level from min to max; a constant image
+    returns its value.
+    """
+    a = np.asarray(gray)
+    check_param(a.ndim == 2 and a.size > 0, "gray", "a non-empty 2-D image", a.shape)
+    flat = a.ravel()
+    lo, hi = flat.min(), flat.max()
+    if lo == hi:
+        return float(lo)
+    if np.issubdtype(a.dtype, np.integer):
+        counts = np.bincount((flat.astype(np.int64) - int(lo)))
+        centers = np.arange(int(lo), int(hi) + 1, dtype=np.float64)
+    else:
+        counts, edges = np.histogram(flat, bins=256, range=(float(lo), float(hi)))
+        centers = (edges[:-1] + edges[1:]) / 2
+    counts = counts.astype(np.float64)
+    w1 = np.cumsum(counts)
+    w2 = np.cumsum(counts[::-1])[::-1]
+    m1 = np.cumsum(counts * centers) / np.maximum(w1, 1e-300)
+    m2 = (np.cumsum((counts * centers)[::-1]) / np.maximum(w2[::-1], 1e-300))[::-1]
+    between = w1[:-1] * w2[1:] * (m1[:-1] - m2[1:]) ** 2
+    return float(centers[int(np.argmax(between))])
+
+
+def _box_sum_rows(a: np.ndarray, r: int) -> np.ndarray:
+    """Sum over rows i-r..i+r (clipped at the borders) from one running sum (1-D integral image).
+
+    a : ndarray of shape (H, W), float64. Returns ndarray of shape (H, W), float64.
+    """
+    H = a.shape[0]
+    c = np.empty((H + 1,) + a.shape[1:], dtype=np.float64)
+    c[0] = 0.0
+    np.cumsum(a, axis=0, out=c[1:])
+    s = np.empty_like(c[1:])
+    n_hi = max(H - r, 0)                  # rows whose window ends inside the image
+    s[:n_hi] = c[r + 1:H + 1]
+    s[n_hi:] = c[H]
+    if r < H:
+        s[r:] -= c[:H - r]                # rows whose window starts inside the image
+    return s
+
+
+def _box_mean(a: np.ndarray, window: int) -> np.ndarray:
+    """Mean over a ``window`` x ``window`` box around each pixel (clipped at the borders), from
+    integral images (running sums along rows then columns): O(1) per pixel whatever the window.
+
+    a : ndarray of shape (H, W), float64. Returns ndarray of shape (H, W), float64.
+    """
+    H, W = a.shape
+    r = window // 2
+    s = _box_sum_rows(_box_sum_rows(a, r).T, r).T
+    rows = np.minimum(np.arange(H) + r + 1, H) - np.maximum(np.arange(H) - r, 0)
+    cols = np.minimum(np.arange(W) + r + 1, W) - np.maximum(np.arange(W) - r, 0)
+    s /= rows[:, None].astype(np.float64)
+    s /= cols[None, :].astype(np.float64)
+    return s
+
+
+def threshold_sauvola(gray: np.ndarray, window: int = 31, k: float = 0.2, r: float = 128.0) -> np.ndarray:
+    """Sauvola's local threshold T = m * (1 + k * (s / R - 1)) from the mean m and standard deviation s
+    of a ``window`` x ``window`` neighbourhood (integral images; the window is clipped at the borders).
+
+    gray : ndarray of shape (H, W), uint8 (or float)
+    window : odd side of the neighbourhood in pixels
+    k, r : Sauvola's k and dynamic range R
+    Returns ndarray of shape (H, W), float64; ink is ``gray <= T``.
+    """
+    a = np.asarray(gray)
+    check_param(a.ndim == 2 and a.size > 0, "gray", "a non-empty 2-D image", a.shape)
+    check_param(isinstance(window, (int, np.integer)) and window >= 3 and window % 2 == 1,
+                "window", "an odd whole number >= 3", window)
+    check_param(r > 0, "r", "> 0", r)
+    a = a.astype(np.float64)
+    m = _box_mean(a, window)
+    m2 = _box_mean(a * a, window)
+    s = np.sqrt(np.maximum(m2 - m * m, 0.0))
+    return m * (1.0 + k * (s / r - 1.0))
+
+
+def background(gray: np.ndarray, block: int) -> np.ndarray:
+    """The paper's brightness in blocks of ``block`` x ``block`` pixels (a high percentile per block,
+    so ink does not pull it down).
+
+    gray : ndarray of shape (H, W), uint8
+    Returns ndarray of shape (ceil(H / block), ceil(W / block)), float64.
+    """
+    a = np.asarray(gray)
+    H, W = a.shape
+    bh, bw = -(-H // block), -(-W // block)
+    pad = np.pad(a, ((0, bh * block - H), (0, bw * block - W)), mode="edge")
+    blocks = pad.reshape(bh, block, bw, block).transpose(0, 2, 1, 3).reshape(bh, bw, -1)
+    return np.percentile(blocks, 90, axis=2)
+
+
+def is_uneven(gray: np.ndarray, dpi: float = 300.0) -> bool:
+    """True when the paper's brightness, estimated in 10 mm blocks (90th percentile of each), spreads
+    (5th to 95th percentile across blocks) by more than ``UNEVEN_SPREAD`` of its level: shadows,
+    a curled page or uneven lighting. This is ``binarize``'s ``auto`` rule."""
+    a = np.asarray(gray)
+    block = max(4, int(round(10.0 * dpi / 25.4)))
+    step = max(1, block // 16)  # a sparse sample of each block is plenty for a percentile
+    bg = background(a[::step, ::step], max(2, block // step))
+    lo, hi = np.percentile(bg, [5, 95])
+    return bool(hi > 0 and (hi - lo) / hi > UNEVEN_SPREAD)
+
+
+def binarize(gray: np.ndarray, method: str = "auto", *, dpi: float = 300.0, window_mm: float = 8.0,
+             k: float = 0.2, r: float = 128.0, min_contrast: float = 0.2) -> np.ndarray:
+    """The ink mask of a grey page.
+
+    gray : ndarray of shape (H, W), uint8, 0 = ink
+    method : "otsu" (global), "sauvola" (local, window ``window_mm`` at ``dpi``), or "auto":
+        Sauvola when ``is_uneven`` says the background is uneven, else Otsu
+    min_contrast : with Otsu, ink must also be this share darker than the paper (the 99th percentile),
+        so a blank page's noise does not turn into ink
+    Returns ndarray of shape (H, W), bool, True = ink.
+    """
+    check_param(method in ("auto", "otsu", "sauvola"), "method", "'auto', 'otsu' or 'sauvola'", method)
+    a = np.asarray(gray)
+    check_param(a.ndim == 2 and a.size > 0, "gray", "a non-empty 2-D image", a.shape)
+    if method == "auto":
+        method = "sauvola" if is_uneven(a, dpi) else "otsu"
+    if method == "sauvola":
+        window = max(3, int(round(window_mm * dpi / 25.4)) | 1)
+        return a <= threshold_sauvola(a, window=window, k=k, r=r)
+    t = threshold_otsu(a)
+    paper = float(np.percentile(a[:: max(1, a.shape[0] // 512), :: max(1, a.shape[1] // 512)], 99))
+    return (a <= t) & (a < paper * (1.0 - min_contrast))

@@ -1,0 +1,354 @@
+"""Synthetic scanned forms for tests: a printed form (marks, header, boxed and open fields) with
+stroke-drawn digits, moved and degraded like a scan, and the exact truth of where everything landed.
+
+Main entry points::
+
+    layout = example_layout()                       # or any formread Layout
+    gray, truth = render_page(layout, 200, {"member": "1234"}, rng,
+                              Transform(rotation_deg=2, scale=1.02, shift_mm=(5, -3), noise=8,
+                                        blur_px=0.8, jpeg_quality=70, upside_down=True))
+    corners = corners_px(truth, layout.field("member").region)   # (4, 2) pixels (x, y)
+
+``gray`` is (H, W) uint8 (0 = ink); ``truth.matrix`` maps layout mm (x, y) to pixels (x = col,
+y = row, centre of pixel (0, 0) at (0, 0)) of the page turned the right way up (what a correct
+``Registration.image`` is); ``truth.scan_matrix`` maps into ``gray`` as returned.
+
+Printed parts (marks, borders, cell dividers, header) are axis-aligned rectangles rendered with exact
+area coverage (anti-aliased), so their geometry is known to a small fraction of a pixel; the scan
+transform is a bilinear affine warp by Pillow. Digits are simple polylines (a seven-segment-like
+hand) with a little random jitter: enough for geometry and segmentation tests, not for training.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from dataclasses import dataclass, field
+
+import numpy as np
+from PIL import Image, ImageDraw, ImageFilter
+
+from formread.imaging.layout import Layout, Region, parse_layout
+
+__all__ = ["EXAMPLE_TOML", "example_layout", "Transform", "Truth", "render_page", "render_form",
+           "warp", "degrade", "corners_px", "to_pixels", "DIGIT_STROKES"]
+
+EXAMPLE_TOML = """
+[form]
+name = "Synthetic test card"
+width_mm = {W}
+height_mm = {H}
+binarize = "auto"
+
+[form.header]
+x = 25.0
+y = 6.0
+w = {HW}
+h = 12.0
+
+[[marks]]
+x = 9.0
+y = 9.0
+size = 6.0
+[[marks]]
+x = {XR}
+y = 9.0
+size = 6.0
+[[marks]]
+x = 9.0
+y = {YB}
+size = 6.0
+[[marks]]
+x = {XR}
+y = {YB}
+size = 6.0
+
+[[fields]]
+name = "member"
+kind = "boxed"
+x = 20.0
+y = 30.0
+w = 40.0
+h = 8.0
+cells = 8
+
+[[fields]]
+name = "day"
+kind = "boxed"
+x = 20.0
+y = 48.0
+w = 10.0
+h = 8.0
+cells = 2
+
+[[fields]]
+name = "reading"
+kind = "open"
+x = 40.0
+y = 48.0
+w = 50.0
+h = 10.0
+max_digits = 6
+
+[[fields]]
+name = "litres"
+kind = "boxed"
+x = 20.0
+y = {YF}
+w = 30.0
+h = 8.0
+cells = 6
+optional = true
+"""
+
+
+def example_layout(width_mm: float = 148.0, height_mm: float = 210.0) -> Layout:
+    """A test form (default A5 portrait): four 6 mm corner marks 9 mm in from the corners, a header,
+    boxed fields ``member`` (8 cells), ``day`` (2), ``litres`` (6, near the bottom) and an open
+    field ``reading`` (up to 6 digits)."""
+    text = EXAMPLE_TOML.format(W=float(width_mm), H=float(height_mm), HW=float(width_mm - 50),
+                               XR=float(width_mm - 9), YB=float(height_mm - 9), YF=float(height_mm - 40))
+    return parse_layout(text, "<example layout>")
+
+
+# Seven-segment-like strokes in a unit box (x right, y down), one list of polylines per digit.
+DIGIT_STROKES = {
+    "0": [[(0, 0), (1, 0), (1, 1), (0, 1), (0, 0)]],
+    "1": [[(0.3, 0.2), (0.6, 0), (0.6, 1)]],
+    "2": [[(0, 0), (1, 0), (1, 0.5), (0, 0.5), (0, 1), (1, 1)]],
+    "3": [[(0, 0), (1, 0), (1, 1), (0, 1)], [(0.2, 0.5), (1, 0.5)]],
+    "4": [[(0, 0), (0, 0.55), (1, 0.55)], [(0.8, 0.2), (0.8, 1)]],
+    "5": [[(1, 0), (0, 0), (0, 0.5), (1, 0.5), (1, 1), (0, 1)]],
+    "6": [[(1, 0), (0, 0), (0, 1), (1, 1), (1, 0.5), (0, 0.5)]],
+    "7": [[(0, 0), (1, 0), (0.35, 1)]],
+    "8": [[(0, 0), (1, 0), (1, 1), (0, 1), (0, 0)], [(0, 0.5), (1, 0.5)]],
+    "9": [[(1, 0.5), (0, 0.5), (0, 0), (1, 0), (1, 1), (0, 1)]],
+}
+
+
+@dataclass(frozen=True)
+class Transform:
+    """How the simulated scan differs from the printed layout.
+
+    rotation_deg : content turned counter-clockwise on screen (Pillow's convention), about the page centre
+    scale : size change about the page centre
+    shift_mm : (dx, dy) move of the page content, mm (x right, y down)
+    upside_down : the sheet went through the scanner the other way round (image turned 180 degrees)
+    noise : standard deviation of added Gaussian grey noise (grey levels)
+    blur_px : Gaussian blur radius in pixels
+    jpeg_quality : JPEG-compress at this quality (None: no compression)
+    shadow : darken one side of the page by this share (0..1), a smooth gradient (uneven lighting)
+    cover_marks : indices of layout marks left unprinted (as if covered by a sticker)
+    margin_mm : scanner bed beyond the paper on every side: the image is that much larger and the
+        paper (before ``shift_mm``) sits centred in it
+    """
+    rotation_deg: float = 0.0
+    scale: float = 1.0
+    shift_mm: tuple[float, float] = (0.0, 0.0)
+    upside_down: bool = False
+    noise: float = 0.0
+    blur_px: float = 0.0
+    jpeg_quality: int | None = None
+    shadow: float = 0.0
+    cover_marks: tuple[int, ...] = ()
+    margin_mm: float = 0.0
+
+
+@dataclass(frozen=True, eq=False)
+class Truth:
+    """What the renderer knows about a page.
+
+    matrix : (2, 3) float64, layout mm -> pixels (x, y) of the page turned the right way up
+    scan_matrix : (2, 3) float64, layout mm -> pixels (x, y) of the image as returned
+    rotated_180 : the returned image is upside down
+    skew_deg : rotation of the content in the upright page (counter-clockwise positive)
+    dpi : resolution
+    digits : what was written in each field
+    digit_boxes : per field, list of (x0, y0, x1, y1) mm boxes of the drawn digits
+    """
+    matrix: np.ndarray
+    scan_matrix: np.ndarray
+    rotated_180: bool
+    skew_deg: float
+    dpi: float
+    digits: dict = field(default_factory=dict)
+    digit_boxes: dict = field(default_factory=dict)
+
+
+def to_pixels(matrix: np.ndarray, points_mm) -> np.ndarray:
+    """(N, 2) mm points (x, y) through a (2, 3) matrix -> (N, 2) pixels (x, y)."""
+    p = np.asarray(points_mm, dtype=np.float64).reshape(-1, 2)
+    return p @ matrix[:, :2].T + matrix[:, 2]
+
+
+def corners_px(truth: Truth, region: Region, *, upright: bool = True) -> np.ndarray:
+    """The four corners of a mm region (top-left, top-right, bottom-right, bottom-left) in pixels (x, y):
+    of the upright page (``upright=True``, compare with a Registration) or of the returned image."""
+    return to_pixels(truth.matrix if upright else truth.scan_matrix, region.corners())
+
+
+# ---------------------------------------------------------------------------------------- drawing
+
+def _coverage(a: float, b: float, n: int) -> tuple[int, np.ndarray]:
+    """Share of each pixel [i, i + 1) covered by the interval [a, b) (continuous coordinates):
+    first index and the coverage of pixels first..last."""
+    i0 = max(0, int(math.floor(a)))
+    i1 = min(n, int(math.ceil(b)))
+    if i1 <= i0:
+        return i0, np.zeros(0)
+    idx = np.arange(i0, i1, dtype=np.float64)
+    return i0, np.clip(np.minimum(idx + 1, b) - np.maximum(idx, a), 0.0, 1.0)
+
+
+def _paint(img: np.ndarray, k: float, x0: float, y0: float, x1: float, y1: float, ink: float = 0.92) -> None:
+    """Darken the mm rectangle [x0, x1) x [y0, y1) by ``ink`` with exact area coverage (in place)."""
+    H, W = img.shape
+    c0, cx = _coverage(x0 * k, x1 * k, W)
+    r0, cy = _coverage(y0 * k, y1 * k, H)
+    if cx.size and cy.size:
+        img[r0:r0 + cy.size, c0:c0 + cx.size] *= 1.0 - ink * np.outer(cy, cx).astype(np.float32)
+
+
+def render_form(layout: Layout, dpi: float, digits: dict | None = None, rng: np.random.Generator | None = None,
+                cover_marks=(), line_mm: float = 0.3, pen_mm: float = 0.5) -> tuple[np.ndarray, dict]:
+    """The printed and filled-in form, upright and exactly placed: (H, W) uint8 and the digits' mm boxes.
+
+    digits : field name -> string of digits to write in that field (boxed: one per cell from the left)
+    """
+    rng = rng if rng is not None else np.random.default_rng(0)
+    k = dpi / 25.4
+    W, H = int(round(layout.width_mm * k)), int(round(layout.height_mm * k))
+    img = np.ones((H, W), dtype=np.float32)
+    for i, m in enumerate(layout.marks):
+        if i not in cover_marks:
+            _paint(img, k, m.x - m.size / 2, m.y - m.size / 2, m.x + m.size / 2, m.y + m.size / 2, ink=0.95)
+    t = line_mm
+    for f in layout.fields:
+        _paint(img, k, f.x - t / 2, f.y - t / 2, f.x + f.w + t / 2, f.y + t / 2)
+        _paint(img, k, f.x - t / 2, f.y + f.h - t / 2, f.x + f.w + t / 2, f.y + f.h + t / 2)
+        _paint(img, k, f.x - t / 2, f.y + t / 2, f.x + t / 2, f.y + f.h - t / 2)
+        _paint(img, k, f.x + f.w - t / 2, f.y + t / 2, f.x + f.w + t / 2, f.y + f.h - t / 2)
+        for c in f.cell_regions()[1:]:
+            _paint(img, k, c.x - t / 2, f.y + t / 2, c.x + t / 2, f.y + f.h - t / 2)
+    if layout.header is not None:  # a title line of block "letters" and a rule under it
+        hd = layout.header
+        x = hd.x + 1.0
+        pattern = [3, 2, 4, 0, 3, 3, 1, 4, 0, 2, 5, 3, 0, 4, 2, 3, 1]
+        j = 0
+        while x < hd.x + hd.w - 3.0:
+            n = pattern[j % len(pattern)]
+            j += 1
+            if n == 0:
+                x += 2.0
+                continue
+            top = hd.y + 1.5 + (0.0 if n % 2 else 1.5)
+            _paint(img, k, x, top, x + 0.7, hd.y + hd.h - 4.0)
+            _paint(img, k, x, top, x + 1.6, top + 0.6)
+            x += 2.2
+        _paint(img, k, hd.x + 1.0, hd.y + hd.h - 2.0, hd.x + hd.w - 1.0, hd.y + hd.h - 1.2)
+    gray = np.clip(np.rint(img * 255.0), 0, 255).astype(np.uint8)
+    boxes = _write_digits(gray, layout, k, digits or {}, rng, pen_mm)
+    return gray, boxes
+
+
+def _write_digits(gray: np.ndarray, layout: Layout, k: float, digits: dict, rng: np.random.Generator,
+                  pen_mm: float) -> dict:
+    """Draw the digit strings into the fields (in place); return each field's digit boxes in mm."""
+    im = Image.fromarray(gray)
+    draw = ImageDraw.Draw(im)
+    width = max(1, int(round(pen_mm * k)))
+    boxes = {}
+    for name, text in digits.items():
+        f = layout.field(name)
+        out = []
+        if f.kind == "boxed":
+            slots = [(c.x + 0.22 * c.w, c.y + 0.18 * c.h, 0.56 * c.w, 0.64 * c.h) for c in f.cell_regions()]
+        else:
+            dw = min(4.0, f.w / max(1, len(text)) * 0.7)
+            slots = [(f.x + 2.0 + i * dw * 1.35, f.y + 0.2 * f.h, dw, 0.6 * f.h) for i in range(len(text))]
+        for ch, (x, y, w, h) in zip(text, slots):
+            if ch == " ":
+                continue
+            jx, jy = rng.uniform(-0.08, 0.08, 2) * (w, h)
+            for line in DIGIT_STROKES[ch]:
+                pts = [((x + jx + px * w + rng.uniform(-0.04, 0.04) * w) * k - 0.5,
+                        (y + jy + py * h + rng.uniform(-0.03, 0.03) * h) * k - 0.5) for px, py in line]
+                draw.line(pts, fill=25, width=width, joint="curve")
+            out.append((x + jx, y + jy, x + jx + w, y + jy + h))
+        boxes[name] = out
+    gray[...] = np.asarray(im)
+    return boxes
+
+
+# ------------------------------------------------------------------------------------ scan effects
+
+def _scan_map(layout: Layout, dpi: float, tr: Transform) -> np.ndarray:
+    """(2, 3) forward map in continuous pixel coordinates: upright form -> moved content."""
+    k = dpi / 25.4
+    cx, cy = layout.width_mm * k / 2, layout.height_mm * k / 2
+    a = math.radians(tr.rotation_deg)
+    rot = np.array([[math.cos(a), math.sin(a)], [-math.sin(a), math.cos(a)]]) * tr.scale
+    t = np.array([cx, cy]) - rot @ np.array([cx, cy]) + (np.array(tr.shift_mm) + tr.margin_mm) * k
+    return np.hstack([rot, t[:, None]])
+
+
+def warp(gray: np.ndarray, forward: np.ndarray, size: tuple[int, int] | None = None) -> np.ndarray:
+    """Move the image content by the (2, 3) forward map (continuous pixel coordinates), bilinear,
+    paper-filled. gray: (H, W) uint8 -> ``size`` (H', W') uint8 (default: same size)."""
+    inv = np.linalg.inv(np.vstack([forward, [0, 0, 1]]))[:2]
+    H, W = size if size is not None else gray.shape
+    out = Image.fromarray(gray).transform((W, H), Image.Transform.AFFINE, data=tuple(inv.ravel()),
+                                          resample=Image.Resampling.BILINEAR, fillcolor=255)
+    return np.asarray(out)
+
+
+def degrade(gray: np.ndarray, rng: np.random.Generator, *, noise: float = 0.0, blur_px: float = 0.0,
+            jpeg_quality: int | None = None, shadow: float = 0.0) -> np.ndarray:
+    """Scan-like damage: a lighting gradient, Gaussian blur, grey noise, JPEG compression.
+    gray: (H, W) uint8 -> (H, W) uint8."""
+    out = gray
+    if shadow > 0:
+        H, W = gray.shape
+        ramp = 1.0 - shadow * np.clip(np.linspace(1.2, -0.2, W), 0, 1) ** 1.5
+        out = (out.astype(np.float32) * ramp[None, :].astype(np.float32)).astype(np.uint8)
+    if blur_px > 0:
+        out = np.asarray(Image.fromarray(out).filter(ImageFilter.GaussianBlur(blur_px)))
+    if noise > 0:
+        n = rng.standard_normal(out.shape, dtype=np.float32) * np.float32(noise)
+        out = np.clip(out.astype(np.float32) + n, 0, 255).astype(np.uint8)
+    if jpeg_quality is not None:
+        buf = io.BytesIO()
+        Image.fromarray(out).save(buf, format="JPEG", quality=int(jpeg_quality))
+        out = np.asarray(Image.open(io.BytesIO(buf.getvalue())).convert("L"))
+    return np.ascontiguousarray(out)
+
+
+def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.random.Generator | None = None,
+                transform: Transform | None = None) -> tuple[np.ndarray, Truth]:
+    """A simulated scan of the filled-in form: (H, W) uint8 (0 = ink) and its ``Truth``.
+
+    The image has the size of the layout's page at ``dpi`` (plus ``transform.margin_mm`` on every side);
+    content moved off it is lost, as on a scanner.
+    """
+    rng = rng if rng is not None else np.random.default_rng(0)
+    tr = transform or Transform()
+    form, boxes = render_form(layout, dpi, digits, rng, cover_marks=tr.cover_marks)
+    fwd = _scan_map(layout, dpi, tr)
+    pad = int(round(tr.margin_mm * dpi / 25.4))
+    size = (form.shape[0] + 2 * pad, form.shape[1] + 2 * pad)
+    moved = warp(form, fwd, size) if not np.allclose(fwd, [[1, 0, 0], [0, 1, 0]]) else form
+    gray = degrade(moved, rng, noise=tr.noise, blur_px=tr.blur_px, jpeg_quality=tr.jpeg_quality, shadow=tr.shadow)
+    k = dpi / 25.4
+    # mm -> continuous (x k) -> moved continuous (fwd) -> pixel index (- 0.5)
+    m = fwd[:, :2] * k
+    t = fwd[:, 2] - 0.5
+    matrix = np.hstack([m, t[:, None]])
+    H, W = gray.shape
+    scan = matrix.copy()
+    if tr.upside_down:
+        gray = np.ascontiguousarray(gray[::-1, ::-1])
+        scan = np.vstack([-matrix[0], -matrix[1]])
+        scan[:, 2] += [W - 1, H - 1]
+    truth = Truth(matrix=matrix, scan_matrix=scan, rotated_180=tr.upside_down, skew_deg=tr.rotation_deg,
+                  dpi=float(dpi), digits=dict(digits or {}), digit_boxes=boxes)
+    return gray, truth
