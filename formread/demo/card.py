@@ -1,0 +1,168 @@
+"""The blank demo card: read the demo layout and print it as a clean page image.
+
+The layout file is the single source of geometry (marks, header, fields); this module
+adds only the printed words around them (title, labels, hints, footer).  All names on
+the card are invented.
+"""
+
+from __future__ import annotations
+
+import tomllib
+from dataclasses import dataclass
+from functools import lru_cache
+from pathlib import Path
+
+import numpy as np
+from PIL import Image, ImageDraw, ImageFont
+
+from ..errors import LayoutError
+
+__all__ = ["LAYOUT_PATH", "CardField", "CardLayout", "read_card_layout", "render_card", "mm_to_px",
+           "TITLE", "SUBTITLE", "PRINT_GREY"]
+
+LAYOUT_PATH = Path(__file__).with_name("layout.toml")
+TITLE = "Larkspur Lane Allotment Cooperative"
+SUBTITLE = "Water Meter Card - monthly reading"
+PRINT_GREY = 25
+"""Grey level of printed ink (0 = black): laser toner is near black."""
+
+_LABELS = {
+    "plot_number": ("Plot number", "(1 to 240)"),
+    "member_number": ("Member number", "(8 digits, see your membership card)"),
+    "reading_date": ("Date of reading", None),
+    "previous_reading": ("Previous meter reading", "litres"),
+    "current_reading": ("Current meter reading", "litres"),
+    "litres_used": ("Litres used", "(current minus previous)"),
+}
+
+
+@dataclass(frozen=True)
+class CardField:
+    """One field of the card, in mm from the top-left corner (x right, y down)."""
+
+    name: str
+    kind: str
+    x: float
+    y: float
+    w: float
+    h: float
+    cells: int | None
+    max_digits: int | None
+    optional: bool
+
+
+@dataclass(frozen=True)
+class CardLayout:
+    """The parts of the demo layout the card printer and writer need (mm, x right, y down)."""
+
+    width_mm: float
+    height_mm: float
+    marks: tuple[tuple[float, float, float], ...]   # (x centre, y centre, side)
+    header: tuple[float, float, float, float]        # (x, y, w, h)
+    fields: tuple[CardField, ...]
+
+    def field(self, name: str) -> CardField:
+        for f in self.fields:
+            if f.name == name:
+                return f
+        raise LayoutError(f"{LAYOUT_PATH}: no field {name!r}")
+
+
+def read_card_layout(path: Path = LAYOUT_PATH) -> CardLayout:
+    """Read the geometry of the demo layout (a file in the DEVELOPERS.md layout format)."""
+    try:
+        doc = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+        form = doc["form"]
+        head = form["header"]
+        marks = tuple((float(m["x"]), float(m["y"]), float(m["size"])) for m in doc["marks"])
+        fields = tuple(
+            CardField(
+                name=f["name"], kind=f["kind"], x=float(f["x"]), y=float(f["y"]), w=float(f["w"]),
+                h=float(f["h"]), cells=f.get("cells"), max_digits=f.get("max_digits"),
+                optional=bool(f.get("optional", False)),
+            )
+            for f in doc["fields"]
+        )
+        return CardLayout(float(form["width_mm"]), float(form["height_mm"]), marks,
+                          (float(head["x"]), float(head["y"]), float(head["w"]), float(head["h"])), fields)
+    except (OSError, tomllib.TOMLDecodeError, KeyError, TypeError, ValueError) as e:
+        raise LayoutError(f"{path}: not a readable demo layout ({e.__class__.__name__}: {e})") from None
+
+
+def mm_to_px(v: float, dpi: float) -> float:
+    """Millimetres to pixels at ``dpi``."""
+    return v * dpi / 25.4
+
+
+def _font(size_mm: float, dpi: float) -> ImageFont.FreeTypeFont:
+    # Pillow's built-in font (>= 10.1) scales without any system font installed.
+    return ImageFont.load_default(size=max(6, round(mm_to_px(size_mm, dpi))))
+
+
+def _rect(d: ImageDraw.ImageDraw, x: float, y: float, w: float, h: float, dpi: float, lw: int,
+          fill: int | None = None) -> None:
+    p = lambda v: round(mm_to_px(v, dpi))  # noqa: E731
+    d.rectangle([p(x), p(y), p(x + w), p(y + h)], outline=PRINT_GREY, width=lw, fill=fill)
+
+
+def _text(d: ImageDraw.ImageDraw, x: float, y: float, s: str, size_mm: float, dpi: float,
+          anchor: str = "lm") -> None:
+    d.text((mm_to_px(x, dpi), mm_to_px(y, dpi)), s, fill=PRINT_GREY, font=_font(size_mm, dpi), anchor=anchor)
+
+
+@lru_cache(maxsize=4)
+def _render(layout: CardLayout, dpi: int) -> bytes:
+    w_px, h_px = round(mm_to_px(layout.width_mm, dpi)), round(mm_to_px(layout.height_mm, dpi))
+    im = Image.new("L", (w_px, h_px), 255)
+    d = ImageDraw.Draw(im)
+    thin = max(1, round(mm_to_px(0.3, dpi)))
+    p = lambda v: round(mm_to_px(v, dpi))  # noqa: E731
+
+    for x, y, s in layout.marks:
+        d.rectangle([p(x - s / 2), p(y - s / 2), p(x + s / 2) - 1, p(y + s / 2) - 1], fill=0)
+
+    hx, hy, hw, hh = layout.header
+    _text(d, hx + hw / 2, hy + hh * 0.32, TITLE, 6.5, dpi, anchor="mm")
+    _text(d, hx + hw / 2, hy + hh * 0.80, SUBTITLE, 4.2, dpi, anchor="mm")
+    d.line([p(20), p(hy + hh + 2), p(190), p(hy + hh + 2)], fill=PRINT_GREY, width=thin * 2)
+    _text(d, 20, hy + hh + 7, "Write in dark ink, one digit per box. Keep your numbers inside the boxes.", 3.2, dpi)
+
+    for f in layout.fields:
+        label, hint = _LABELS.get(f.name, (f.name.replace("_", " ").capitalize(), None))
+        _text(d, 20, f.y + f.h / 2, label, 3.8, dpi)
+        _rect(d, f.x, f.y, f.w, f.h, dpi, thin)
+        if f.kind == "boxed" and f.cells:
+            cw = f.w / f.cells
+            for k in range(1, f.cells):
+                xx = p(f.x + k * cw)
+                d.line([xx, p(f.y), xx, p(f.y + f.h)], fill=PRINT_GREY, width=thin)
+        if f.name == "reading_date" and f.cells == 8:
+            cw = f.w / 8
+            for k, c in enumerate("DDMMYYYY"):
+                _text(d, f.x + (k + 0.5) * cw, f.y + f.h + 2.2, c, 2.6, dpi, anchor="mm")
+        if hint:
+            _text(d, f.x + f.w + 4, f.y + f.h / 2, hint, 3.0, dpi)
+
+    # lower part of the card: remarks, office box, signature, footer (nothing written there)
+    _text(d, 20, 178, "Remarks", 3.8, dpi)
+    for yy in (190, 200, 210):
+        d.line([p(20), p(yy), p(190), p(yy)], fill=PRINT_GREY, width=thin)
+    _text(d, 20, 238, "Signature of plot holder", 3.4, dpi)
+    d.line([p(80), p(241), p(125), p(241)], fill=PRINT_GREY, width=thin)
+    _rect(d, 138, 222, 52, 22, dpi, thin)
+    _text(d, 141, 226, "Office use only", 2.8, dpi)
+    _text(d, 141, 236, "Checked:", 2.8, dpi)
+    _text(d, 105, 284, "Return this card to the plot office by the 5th of each month.  Card WM-2 (2026)",
+          2.6, dpi, anchor="mm")
+    return np.asarray(im, dtype=np.uint8).tobytes()
+
+
+def render_card(layout: CardLayout, dpi: int) -> np.ndarray:
+    """Print the blank card at ``dpi``.
+
+    Returns
+    -------
+    page : ndarray of shape (H, W), uint8, 0 = ink, 255 = paper; H, W = page size in mm * dpi / 25.4
+    """
+    w_px, h_px = round(mm_to_px(layout.width_mm, dpi)), round(mm_to_px(layout.height_mm, dpi))
+    return np.frombuffer(_render(layout, int(dpi)), dtype=np.uint8).reshape(h_px, w_px).copy()
