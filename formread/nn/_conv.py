@@ -43,7 +43,8 @@ def _slab(i: int, j: int, ho: int, wo: int, s: int):
 
 
 def conv_forward(x, w, b, s, p, scratch: Scratch):
-    """x (C, H, W, N), w (O, C, k, k), b (O,) -> y (O, Ho, Wo, N) and the cols (C*k*k, Ho*Wo*N)."""
+    """x (C, H, W, N), w (O, C, k, k), b (O,) or None -> y (O, Ho, Wo, N) and the cols
+    (C*k*k, Ho*Wo*N). With b None the bias is left out (added later by a fused block)."""
     c, h, wd, n = x.shape
     o, _, k, _ = w.shape
     if p:
@@ -58,18 +59,21 @@ def conv_forward(x, w, b, s, p, scratch: Scratch):
     np.copyto(cols, win.transpose(0, 4, 5, 1, 2, 3))
     cols2 = cols.reshape(c * k * k, ho * wo * n)
     y = np.matmul(w.reshape(o, c * k * k), cols2)
-    y += b[:, None]
+    if b is not None:
+        y += b[:, None]
     return y.reshape(o, ho, wo, n), cols2
 
 
-def conv_backward(dy, w, cols2, xshape, s, p, scratch: Scratch, need_dx: bool = True):
-    """dy (O, Ho, Wo, N) -> (dx (C, H, W, N) or None, dw (O, C, k, k), db (O,))."""
+def conv_backward(dy, w, cols2, xshape, s, p, scratch: Scratch, need_dx: bool = True,
+                  need_db: bool = True):
+    """dy (O, Ho, Wo, N) -> (dx (C, H, W, N) or None, dw (O, C, k, k), db (O,) or None)."""
     c, h, wd, n = xshape
     o, _, k, _ = w.shape
     _, ho, wo, _ = dy.shape
     dy2 = dy.reshape(o, ho * wo * n)
-    dw = np.matmul(dy2, cols2.T).reshape(w.shape)
-    db = dy2.sum(axis=1)
+    # weight gradient as cols @ dY^T: the long Ho*Wo*N axis is the contraction
+    dw = np.matmul(cols2, dy2.T).T.reshape(w.shape)
+    db = dy2.sum(axis=1) if need_db else None
     if not need_dx:
         return None, dw, db
     dcols = scratch.get("dcols", (c * k * k, ho * wo * n), dy.dtype)
@@ -83,6 +87,58 @@ def conv_backward(dy, w, cols2, xshape, s, p, scratch: Scratch, need_dx: bool = 
             dxp[_slab(i, j, ho, wo, s)] += dcols[:, i, j]
     dx = dxp[:, p:p + h, p:p + wd, :] if p else dxp
     return dx, dw, db
+
+
+def _pick(views, out_shape, dtype):
+    """Running maximum over a list of equally shaped arrays: (max, index of the first max).
+    The index is bool for two arrays (True = the second), else uint8."""
+    if len(views) == 2:
+        a, b = views
+        arg = b > a
+        return np.maximum(a, b), arg
+    m = views[0].copy()
+    arg = np.zeros(out_shape, dtype=np.uint8)
+    for q in range(1, len(views)):
+        better = views[q] > m
+        np.copyto(arg, np.uint8(q), where=better)
+        np.maximum(m, views[q], out=m)
+    return m, arg
+
+
+def _route(d, arg, outs):
+    """Write d into outs[q] where arg selects q and zero elsewhere (inverse of ``_pick``)."""
+    if len(outs) == 2:
+        np.multiply(d, arg, out=outs[1])
+        np.subtract(d, outs[1], out=outs[0])
+        return
+    for q, out in enumerate(outs):
+        np.multiply(d, arg == q, out=out)
+
+
+def maxpool_tiled_forward(x, k):
+    """Non-overlapping max pooling (stride = size = k) in two passes, first along W then along H:
+    x (C, H, W, N) -> y (C, H // k, W // k, N) and the two argmax arrays for the backward pass.
+    The result and the chosen position equal those of the first maximum in row-major window order."""
+    c, h, wd, n = x.shape
+    ho, wo = h // k, wd // k
+    v = x[:, : ho * k, : wo * k, :].reshape(c, ho, k, wo, k, n)
+    rows, argj = _pick([v[:, :, :, :, j, :] for j in range(k)], (c, ho, k, wo, n), x.dtype)
+    y, argi = _pick([rows[:, :, i] for i in range(k)], (c, ho, wo, n), x.dtype)
+    return y, (argi, argj)
+
+
+def maxpool_tiled_backward(dy, args, xshape, k):
+    """dy (C, Ho, Wo, N) -> dx (C, H, W, N) for ``maxpool_tiled_forward``."""
+    argi, argj = args
+    c, ho, wo, n = dy.shape
+    dx = np.empty(xshape, dtype=dy.dtype)
+    if xshape[1] != ho * k or xshape[2] != wo * k:
+        dx.fill(0)
+    v = dx[:, : ho * k, : wo * k, :].reshape(c, ho, k, wo, k, n)
+    drows = np.empty((c, ho, k, wo, n), dtype=dy.dtype)
+    _route(dy, argi, [drows[:, :, i] for i in range(k)])
+    _route(drows, argj, [v[:, :, :, :, j, :] for j in range(k)])
+    return dx
 
 
 def maxpool_forward(x, k, s):

@@ -154,12 +154,17 @@ class MaxPool2D(_Pool):
     kind = "maxpool"
 
     def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
-        y, arg = _conv.maxpool_forward(x, self.size, self.stride)
+        if self.size == self.stride:
+            y, arg = _conv.maxpool_tiled_forward(x, self.size)
+        else:
+            y, arg = _conv.maxpool_forward(x, self.size, self.stride)
         self._cache = (arg, x.shape)
         return y
 
     def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
         arg, xshape = self._cache
+        if self.size == self.stride:
+            return _conv.maxpool_tiled_backward(dy, arg, xshape, self.size)
         return _conv.maxpool_backward(dy, arg, xshape, self.size, self.stride)
 
 

@@ -7,6 +7,7 @@ import copy
 import numpy as np
 
 from formread.errors import check_param
+from formread.nn import _conv
 from formread.nn import layers as L
 from formread.nn.losses import softmax, softmax_cross_entropy
 
@@ -62,6 +63,54 @@ ARCHITECTURES: dict[str, list[dict]] = {
 }
 
 
+class _ConvReluPool:
+    """Conv2D -> ReLU -> non-overlapping MaxPool2D computed as pool, then bias, then ReLU.
+
+    Adding the bias and taking max(., 0) are non-decreasing maps, so they commute with the window
+    maximum: pooling first gives the same output and the same gradients while the bias and the ReLU
+    touch a k*k times smaller array. Uses the parameters of the three given layers.
+    """
+
+    def __init__(self, conv: L.Conv2D, relu: L.ReLU, pool: L.MaxPool2D):
+        self.conv, self.relu, self.pool = conv, relu, pool
+
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        conv, k = self.conv, self.pool.size
+        z, cols = _conv.conv_forward(x, conv.weight.value, None, conv.stride, conv.padding,
+                                     conv._scratch)
+        a, args = _conv.maxpool_tiled_forward(z, k)
+        a += conv.bias.value[:, None, None, None]
+        np.maximum(a, a.dtype.type(0), out=a)
+        self._cache = (x.shape, cols, z.shape, args, a)
+        return a
+
+    def _bwd(self, da: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        conv = self.conv
+        xshape, cols, zshape, args, a = self._cache
+        dp = np.multiply(da, a > 0)
+        conv.bias.grad = dp.reshape(dp.shape[0], -1).sum(axis=1)
+        dz = _conv.maxpool_tiled_backward(dp, args, zshape, self.pool.size)
+        dx, conv.weight.grad, _ = _conv.conv_backward(
+            dz, conv.weight.value, cols, xshape, conv.stride, conv.padding, conv._scratch,
+            need_dx, need_db=False)
+        return dx
+
+
+def _blocks(layers: list[L.Layer]) -> list:
+    """The layers grouped for execution: Conv2D, ReLU, MaxPool2D(size == stride) run fused."""
+    out, i = [], 0
+    while i < len(layers):
+        a, b, c = (layers[i:i + 3] + [None, None])[:3]
+        if (isinstance(a, L.Conv2D) and isinstance(b, L.ReLU) and isinstance(c, L.MaxPool2D)
+                and c.size == c.stride):
+            out.append(_ConvReluPool(a, b, c))
+            i += 3
+        else:
+            out.append(a)
+            i += 1
+    return out
+
+
 class Sequential:
     """Layers applied in order. Input (N, C, H, W) float32 (or float64) -> logits (N, classes).
 
@@ -70,6 +119,7 @@ class Sequential:
 
     def __init__(self, layers: list[L.Layer]):
         self.layers = list(layers)
+        self._blocks = _blocks(self.layers)
         for i, layer in enumerate(self.layers):
             for p in layer.params():
                 p.name = f"{i}.{layer.kind}.{p.name.rsplit('.', 1)[-1]}"
@@ -92,8 +142,8 @@ class Sequential:
         if x.dtype != self.dtype:
             x = x.astype(self.dtype)
         h = L.to_internal(x)
-        for layer in self.layers:
-            h = layer._fwd(h, train)
+        for block in self._blocks:
+            h = block._fwd(h, train)
         return L.to_public(h)
 
     def backward(self, dlogits: np.ndarray, input_grad: bool = True) -> np.ndarray | None:
@@ -103,9 +153,9 @@ class Sequential:
         layer's backward-to-input work during training) and None is returned.
         """
         d = L.to_internal(np.asarray(dlogits, dtype=self.dtype))
-        last = len(self.layers) - 1
-        for i, layer in enumerate(reversed(self.layers)):
-            d = layer._bwd(d, input_grad or i < last)
+        last = len(self._blocks) - 1
+        for i, block in enumerate(reversed(self._blocks)):
+            d = block._bwd(d, input_grad or i < last)
         return None if d is None else L.to_public(d)
 
     def grad_step(self, x: np.ndarray, y: np.ndarray, smoothing: float = 0.0) -> tuple[float, int]:

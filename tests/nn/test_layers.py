@@ -211,3 +211,45 @@ def test_model_matches_layer_by_layer_and_grad_step():
     for p, g in zip(model.parameters(), grads):
         np.testing.assert_allclose(p.grad, g, rtol=1e-12)
     assert model.backward(d, input_grad=False) is None
+
+
+@pytest.mark.parametrize("size,stride", [(2, None), (3, 1), (3, None)])
+def test_maxpool_ties_go_to_first_maximum(size, stride):
+    """Windows of equal values (blank paper) send the whole gradient to their first position."""
+    x = np.zeros((1, 1, 6, 7))
+    x[0, 0, 3:, 4:] = np.random.default_rng(0).random((3, 3))
+    layer = L.MaxPool2D(size, stride)
+    y = layer.forward(x)
+    dx = layer.backward(np.ones_like(y))
+    s = stride or size
+    expect = np.zeros_like(x)
+    for i in range(y.shape[2]):
+        for j in range(y.shape[3]):
+            win = x[0, 0, i * s:i * s + size, j * s:j * s + size]
+            a, b = np.unravel_index(np.argmax(win), win.shape)  # numpy's argmax: first maximum
+            expect[0, 0, i * s + a, j * s + b] += 1
+    np.testing.assert_array_equal(dx, expect)
+
+
+def test_fused_conv_relu_pool_equals_separate_layers():
+    """The model fuses conv -> relu -> maxpool; the separate layers give the same values and grads."""
+    model = build_model("lenet5", np.random.default_rng(0), dtype=np.float64)
+    for p in model.parameters():
+        if p.name.endswith("bias"):
+            p.value[:] = np.random.default_rng(2).standard_normal(p.value.shape)
+    x = np.zeros((4, 1, 28, 28))  # blank borders: many exact ties
+    x[:, :, 8:20, 6:22] = np.random.default_rng(1).random((4, 1, 12, 16))
+    d = np.random.default_rng(3).standard_normal((4, 10))
+    z = model.forward(x)
+    dx = model.backward(d)
+    fused = [p.grad.copy() for p in model.parameters()]
+    h = x
+    for layer in model.layers:
+        h = layer.forward(h)
+    np.testing.assert_allclose(h, z, rtol=1e-12)
+    g = d
+    for layer in reversed(model.layers):
+        g = layer.backward(g)
+    np.testing.assert_allclose(g, dx, rtol=1e-10, atol=1e-14)
+    for p, f in zip(model.parameters(), fused):
+        np.testing.assert_allclose(p.grad, f, rtol=1e-10, atol=1e-14)
