@@ -14,9 +14,9 @@ probabilities ``probs[k]``; blank cells (boxed fields) contribute no digit.  So
 ``P(s) = sum_c w_c * prod_k probs_c[k, s_k]`` over the segmentations ``c`` that
 produce string ``s``; over *all* strings of all segmentations this sums to 1.
 
-Field stage: for every candidate, the k most probable strings are enumerated
-best-first (a heap over the top ``top_per_position`` digits of each position, up
-to ``max_strings`` strings).  The reading is the most probable enumerated string
+Field stage: for every candidate, its ``max_strings`` most probable strings are
+enumerated exactly (a beam over positions, trying the top ``top_per_position``
+digits of each position).  The reading is the most probable enumerated string
 that satisfies the field's own rules (length, range, date, check digit); when none
 does, the most probable string is kept and the field goes to review.
 
@@ -48,7 +48,6 @@ of :data:`REASONS`.
 
 from __future__ import annotations
 
-import heapq
 import itertools
 import math
 from dataclasses import dataclass, field
@@ -176,7 +175,11 @@ class FieldReading:
 
 def kbest_strings(logp: np.ndarray, *, top: int = TOP_PER_POSITION, limit: int = MAX_STRINGS
                   ) -> list[tuple[str, float]]:
-    """The most probable digit strings, best first, by best-first search over a heap.
+    """The most probable digit strings, best first.
+
+    A beam over positions keeping the ``limit`` best prefixes is exact here: the
+    score is a sum over positions, so every prefix of one of the ``limit`` best
+    strings is itself among the ``limit`` best prefixes.
 
     Parameters
     ----------
@@ -192,33 +195,36 @@ def kbest_strings(logp: np.ndarray, *, top: int = TOP_PER_POSITION, limit: int =
     list of (str, float)
         Strings of length K and their log probabilities, in decreasing order.
     """
-    k = logp.shape[0]
     top = min(top, 10)
     order = np.argsort(-logp, axis=1, kind="stable")[:, :top]          # (K, top)
     vals = np.take_along_axis(logp, order, axis=1)                      # (K, top)
-    start = (0,) * k
-    heap = [(-float(vals[:, 0].sum()), start)]
-    seen = {start}
-    out = []
-    while heap and len(out) < limit:
-        neg, idx = heapq.heappop(heap)
-        out.append(("".join(str(order[i, j]) for i, j in enumerate(idx)), -neg))
-        for i in range(k):
-            j = idx[i] + 1
-            if j < top:
-                nxt = idx[:i] + (j,) + idx[i + 1:]
-                if nxt not in seen:
-                    seen.add(nxt)
-                    heapq.heappush(heap, (neg + float(vals[i, j - 1] - vals[i, j]), nxt))
-    return out
+    scores = vals[0].copy()                                             # (B,)
+    digits = order[0][:, None]                                          # (B, i)
+    for i in range(1, logp.shape[0]):
+        cand = (scores[:, None] + vals[i][None, :]).reshape(-1)         # (B * top,)
+        keep = np.argsort(-cand, kind="stable")[:limit]
+        digits = np.concatenate([digits[keep // top], order[i][keep % top][:, None]], axis=1)
+        scores = cand[keep]
+    keep = np.argsort(-scores, kind="stable")[:limit]
+    text = (digits[keep].astype(np.uint8) + 48).tobytes().decode("ascii")
+    k = digits.shape[1]
+    return [(text[j * k:(j + 1) * k], float(v)) for j, v in enumerate(scores[keep].tolist())]
 
 
-@dataclass
 class _Option:
-    string: str
-    prob: float
-    candidate: int
-    rules: dict[str, bool]
+    """One string considered for a field; its rules are checked only when asked (most never are)."""
+
+    __slots__ = ("string", "prob", "candidate", "_field_rules", "_rules")
+
+    def __init__(self, string: str, prob: float, candidate: int, field_rules: FieldRules):
+        self.string, self.prob, self.candidate = string, prob, candidate
+        self._field_rules, self._rules = field_rules, None
+
+    @property
+    def rules(self) -> dict[str, bool]:
+        if self._rules is None:
+            self._rules = check_value(self._field_rules, self.string)
+        return self._rules
 
     @property
     def ok(self) -> bool:
@@ -299,7 +305,7 @@ def _field_state(ev: FieldEvidence | None, fr: FieldRules, *, top: int, limit: i
             mass[s] = mass.get(s, 0.0) + m
             if s not in best_from or m > best_from[s][0]:
                 best_from[s] = (m, i)
-    options = [_Option(s, m, best_from[s][1], check_value(fr, s))
+    options = [_Option(s, m, best_from[s][1], fr)
                for s, m in sorted(mass.items(), key=lambda kv: (-kv[1], kv[0]))]
     chosen = next((o for o in options if o.ok), options[0])
     reading = FieldReading(name, chosen.string, 0.0, detail=ev.reason,
@@ -356,7 +362,7 @@ def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, rela
         offers = []
         for f in fields:
             st = states[f]
-            ok = [o for o in st.options if o.ok and o.string][:n]
+            ok = list(itertools.islice((o for o in st.options if o.string and o.ok), n))
             offers.append(ok or [st.chosen])
         best, best_p = None, -1.0
         sat_mass = [dict() for _ in fields]

@@ -7,6 +7,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from formread.errors import ParameterError
 from formread.read.checkdigits import luhn_compute, luhn_valid
@@ -272,3 +274,36 @@ def test_no_threshold_anywhere_uses_the_default():
     r = decode_page({"a": ev("a", table({3: 0.9}))}, compile_rules(lay), lay)["a"]
     assert r.threshold == 0.9 and r.decision == "accepted"
     assert unregistered_page(lay)["a"].threshold == 0.9
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(0, 2 ** 32 - 1), st.floats(0.05, 1.0))
+def test_decisions_are_consistent_on_random_pages(seed, thr):
+    rng = np.random.default_rng(seed)
+    lay = FakeLayout([FakeField("a", cells=4, rules={"check": "luhn"}),
+                      FakeField("b", cells=3, optional=True, rules={"range": [0, 500]}),
+                      FakeField("c", kind="open", cells=None, max_digits=4, rules={"length": [1, 4]}),
+                      FakeField("d", cells=2)],
+                     relations=["c = a - b", "d <= 50"])
+    c = compile_rules(lay)
+    evidence = {
+        "a": ev("a", rng.dirichlet(np.full(10, 0.3), size=4)),
+        "b": ev("b", CandidateEvidence(rng.dirichlet(np.full(10, 0.3), size=3), blank=rng.uniform(size=3) < 0.3)),
+        "c": ev("c", *[CandidateEvidence(rng.dirichlet(np.full(10, 0.3), size=int(rng.integers(0, 5))),
+                                         cost=float(rng.uniform(0, 3))) for _ in range(3)]),
+        "d": ev("d", rng.dirichlet(np.full(10, 0.3), size=2), doubtful=bool(rng.uniform() < 0.2)),
+    }
+    out = decode_page(evidence, c, lay, threshold=thr)
+    for r in out.values():
+        assert 0.0 <= r.confidence <= 1.0
+        probs = [p for _, p in r.alternatives]
+        assert probs == sorted(probs, reverse=True) and sum(probs) <= 1.0 + 1e-9
+        assert len(r.digit_probs) == len(r.reading) == len(r.positions)
+        if r.decision == "accepted":
+            assert r.reason is None and r.confidence >= r.threshold and all(r.rules.values())
+        else:
+            assert r.reason in ("missing", "segmentation_doubtful", "low_confidence") or \
+                r.reason.startswith("rule_failed:")
+    for rel in c.relations:      # every relation reported as holding does hold on the final readings
+        if all(out[f].rules.get("relation") for f in rel.fields):
+            assert rel.holds({f: int(out[f].reading) for f in rel.fields})
