@@ -38,6 +38,7 @@ __all__ = ["Registration", "register_page", "fit_affine", "apply_affine", "WORK_
 log = logging.getLogger(__name__)
 
 WORK_DPI = 75.0          # resolution of the reduced copy the marks are searched on
+_MAX_BLOBS = 60          # mark-like squares considered at most
 _MIN_CONTENT_GAP = 0.02  # orientation scores closer than this cannot decide; upright is kept
 
 
@@ -103,14 +104,15 @@ def _reduce(gray: np.ndarray, f: int) -> np.ndarray:
         return gray.astype(np.float32)
     H, W = gray.shape
     h, w = H // f, W // f
-    # Sum f rows (every f-th row, offset k) then f columns: no large temporaries.
-    rows = np.zeros((h, W), dtype=np.float32)
+    acc = np.uint16 if f * f * 255 <= 65535 else np.uint32
+    # Sum f rows (every f-th row, offset k) then f columns: integer sums, no large temporaries.
+    rows = np.zeros((h, W), dtype=acc)
     for k in range(f):
         rows += gray[k:h * f:f, :]
-    out = np.zeros((h, w), dtype=np.float32)
+    out = np.zeros((h, w), dtype=acc)
     for k in range(f):
         out += rows[:, k:w * f:f]
-    return out / (f * f)
+    return out.astype(np.float32) / np.float32(f * f)
 
 
 def _darkness(small: np.ndarray, block: int) -> np.ndarray:
@@ -266,13 +268,17 @@ def _content_score(layout: Layout, dark: np.ndarray, f: int, matrix: np.ndarray)
                 np.column_stack([np.full(n, fs.x + fs.w), fs.y + t * fs.h])]
     score = 0.0
     h, w = dark.shape
-    peak = ndimage.maximum_filter(dark, size=3)
 
     def sample(p):
+        """Darkest of the 3 x 3 reduced pixels around each point (tolerates a pixel of misplacement)."""
         q = (apply_affine(matrix, p) + 0.5) / f - 0.5
-        c = np.clip(np.rint(q[:, 0]).astype(int), 0, w - 1)
-        r = np.clip(np.rint(q[:, 1]).astype(int), 0, h - 1)
-        return peak[r, c]
+        c = np.rint(q[:, 0]).astype(int)
+        r = np.rint(q[:, 1]).astype(int)
+        best = np.zeros(len(q))
+        for dr in (-1, 0, 1):
+            for dc in (-1, 0, 1):
+                best = np.maximum(best, dark[np.clip(r + dr, 0, h - 1), np.clip(c + dc, 0, w - 1)])
+        return best
 
     if pts:
         score += float(sample(np.vstack(pts)).mean())
@@ -314,8 +320,11 @@ def _refine(gray: np.ndarray, x: float, y: float, side: float) -> tuple[float, f
         k = lab[cr, cc]
     else:
         k = big[int(np.argmax(sizes[big]))]
-    if not (0.5 * side * side <= sizes[k] <= 1.6 * side * side):
+    if not (0.7 * side * side <= sizes[k] <= 1.4 * side * side):
         return None
+    rows, cols = ndimage.find_objects((lab == k).astype(np.int32))[0]
+    if rows.start == 0 or cols.start == 0 or rows.stop == lab.shape[0] or cols.stop == lab.shape[1]:
+        return None  # cut by the image edge, or joined to other ink: its centre cannot be trusted
     region = ndimage.binary_dilation(lab == k, iterations=max(2, int(round(side * 0.08))))
     wts = np.clip((paper - crop) / (paper - ink), 0.0, 1.0) * region
     total = wts.sum()
@@ -358,12 +367,18 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
             raise RegistrationError(f"{where}: no registration marks found (the page looks blank)")
         raise RegistrationError(f"{where}: no registration marks found (no solid squares of "
                                 f"{min(m.size for m in layout.marks):g} mm)")
+    if len(blobs) > _MAX_BLOBS:  # a page full of squares: keep those closest to a mark's size
+        want = float(np.median(sizes))
+        blobs = sorted(blobs, key=lambda b: abs(b.side - want))[:_MAX_BLOBS]
     args = (px_per_mm, max_rotation_deg, max_scale_change, max_residual_mm)
     fits = {flip: _best_fit(layout, blobs, (H, W), flip, *args) for flip in (False, True)}
     cand = {k: v for k, v in fits.items() if v is not None}
     if not cand:
-        raise RegistrationError(f"{where}: registration marks not found: {len(blobs)} square(s) seen, but no "
-                                f"3 of the layout's {len(layout.marks)} marks fit together")
+        if len(blobs) < 3:
+            raise RegistrationError(f"{where}: only {len(blobs)} of the layout's {len(layout.marks)} registration "
+                                    f"marks found (3 are needed; covered, cut off or not printed?)")
+        raise RegistrationError(f"{where}: registration marks not found: {len(blobs)} solid squares seen, but no "
+                                f"3 of them sit where the layout's {len(layout.marks)} marks are (wrong layout?)")
     most = max(len(v.marks) for v in cand.values())
     cand = {k: v for k, v in cand.items() if len(v.marks) == most}
     if len(cand) == 2:
@@ -393,7 +408,8 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
         used.append(i)
     if len(used) < 3:
         raise RegistrationError(f"{where}: only {len(used)} of {len(layout.marks)} registration marks could be "
-                                f"measured (3 are needed)")
+                                f"measured cleanly (3 are needed; a mark cut by the image edge or touching "
+                                f"other ink is not used)")
     src = np.array([[layout.marks[i].x, layout.marks[i].y] for i in used], dtype=np.float64)
     dst = np.array(refined, dtype=np.float64)
     matrix = fit_affine(src, dst)

@@ -31,7 +31,7 @@ from PIL import Image, ImageDraw, ImageFilter
 from formread.imaging.layout import Layout, Region, parse_layout
 
 __all__ = ["EXAMPLE_TOML", "example_layout", "Transform", "Truth", "render_page", "render_form",
-           "warp", "degrade", "corners_px", "to_pixels", "DIGIT_STROKES"]
+           "warp", "degrade", "corners_px", "to_pixels", "truth_matrix", "DIGIT_STROKES"]
 
 EXAMPLE_TOML = """
 [form]
@@ -323,6 +323,12 @@ def degrade(gray: np.ndarray, rng: np.random.Generator, *, noise: float = 0.0, b
     return np.ascontiguousarray(out)
 
 
+def truth_matrix(layout: Layout, dpi: float, transform: Transform | None = None) -> np.ndarray:
+    """(2, 3) layout mm -> pixels (x, y) of the upright scanned page, without rendering it."""
+    fwd = _scan_map(layout, dpi, transform or Transform())
+    return np.hstack([fwd[:, :2] * (dpi / 25.4), (fwd[:, 2] - 0.5)[:, None]])
+
+
 def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.random.Generator | None = None,
                 transform: Transform | None = None) -> tuple[np.ndarray, Truth]:
     """A simulated scan of the filled-in form: (H, W) uint8 (0 = ink) and its ``Truth``.
@@ -338,11 +344,8 @@ def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.
     size = (form.shape[0] + 2 * pad, form.shape[1] + 2 * pad)
     moved = warp(form, fwd, size) if not np.allclose(fwd, [[1, 0, 0], [0, 1, 0]]) else form
     gray = degrade(moved, rng, noise=tr.noise, blur_px=tr.blur_px, jpeg_quality=tr.jpeg_quality, shadow=tr.shadow)
-    k = dpi / 25.4
-    # mm -> continuous (x k) -> moved continuous (fwd) -> pixel index (- 0.5)
-    m = fwd[:, :2] * k
-    t = fwd[:, 2] - 0.5
-    matrix = np.hstack([m, t[:, None]])
+    # mm -> continuous (x dpi / 25.4) -> moved continuous (fwd) -> pixel index (- 0.5)
+    matrix = truth_matrix(layout, dpi, tr)
     H, W = gray.shape
     scan = matrix.copy()
     if tr.upside_down:

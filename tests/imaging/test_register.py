@@ -1,0 +1,187 @@
+"""Registration and deskew on synthetic scans with known transforms (tests/imaging/synth.py).
+
+Pages are rendered here, not downloaded: a test form with four 6 mm corner marks, a printed header,
+boxed and open fields and stroke-drawn digits, then turned (within +-5 degrees), scaled (+-5 %),
+shifted (up to 15 mm), blurred, noised and JPEG-compressed, at 150, 200, 300 and 600 dpi.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from synth import Transform, corners_px, degrade, example_layout, render_page, to_pixels, truth_matrix
+from formread.errors import RegistrationError
+from formread.imaging.binarize import binarize
+from formread.imaging.deskew import estimate_skew, rotate
+from formread.imaging.layout import parse_layout
+from formread.imaging.load import Page
+from formread.imaging.register import Registration, apply_affine, fit_affine, register_page
+
+LAYOUT = example_layout()            # A5 portrait test card
+DIGITS = {"member": "40719385", "day": "27", "reading": "5062", "litres": "318"}
+MARGIN = 20.0                        # scanner bed around the paper, mm
+CORNER_TOL_MM = 0.5
+SKEW_TOL_DEG = 0.2
+
+
+def _marks_inside(layout, dpi, tr, margin_mm) -> bool:
+    """All mark squares land at least 1 mm inside the scanned image."""
+    k = dpi / 25.4
+    m = truth_matrix(layout, dpi, tr)
+    W, H = (layout.width_mm + 2 * margin_mm) * k, (layout.height_mm + 2 * margin_mm) * k
+    for mk in layout.marks:
+        h = mk.size / 2
+        p = to_pixels(m, [[mk.x - h, mk.y - h], [mk.x + h, mk.y - h], [mk.x + h, mk.y + h], [mk.x - h, mk.y + h]])
+        if p.min() < k or (p[:, 0] > W - k).any() or (p[:, 1] > H - k).any():
+            return False
+    return True
+
+
+def _random_cases():
+    """(dpi, Transform) pairs: random rotation, scale, shift and damage, a fixed seed."""
+    rng = np.random.default_rng(20261202)
+    plan = [150] * 6 + [200] * 6 + [300] * 6 + [600] * 2
+    cases = []
+    for i, dpi in enumerate(plan):
+        while True:
+            ang = rng.uniform(0, 2 * math.pi)
+            r = rng.uniform(0, 15.0)
+            tr = Transform(rotation_deg=float(rng.uniform(-5, 5)), scale=float(rng.uniform(0.95, 1.05)),
+                           shift_mm=(float(r * math.cos(ang)), float(r * math.sin(ang))),
+                           upside_down=bool(i % 3 == 1), noise=float(rng.uniform(0, 14)),
+                           blur_px=float(rng.uniform(0, 1.5) * dpi / 200), margin_mm=MARGIN,
+                           jpeg_quality=int(rng.choice([50, 75, 95])) if i % 2 else None,
+                           shadow=0.5 if i % 5 == 3 else 0.0)
+            if _marks_inside(LAYOUT, dpi, tr, MARGIN):
+                break
+        cases.append((dpi, tr))
+    return cases
+
+
+CASES = _random_cases()
+
+
+def _corner_error_mm(reg: Registration, truth, layout=LAYOUT) -> float:
+    """Largest distance (mm) between recovered and true corners of every field and the header."""
+    regions = [f.region for f in layout.fields] + ([layout.header] if layout.header else [])
+    err = max(float(np.hypot(*(reg.to_pixels(r.corners()) - corners_px(truth, r)).T).max()) for r in regions)
+    return err / (truth.dpi / 25.4)
+
+
+@pytest.mark.parametrize("dpi,tr", CASES, ids=[f"{d}dpi-{i}" for i, (d, _) in enumerate(CASES)])
+def test_transformed_page_registers_within_half_a_millimetre(dpi, tr):
+    rng = np.random.default_rng(dpi)
+    gray, truth = render_page(LAYOUT, dpi, DIGITS, rng, tr)
+    reg = register_page(Page(gray, float(dpi), "synthetic.png", 1), LAYOUT)
+    assert reg.rotated_180 == tr.upside_down
+    assert reg.marks_found == 4
+    assert _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+    assert abs(reg.skew_deg - truth.skew_deg) <= SKEW_TOL_DEG
+    assert reg.residual_mm < 0.2
+    # The image is the page turned the right way up: the matrix maps into it.
+    assert reg.image.shape == gray.shape
+    np.testing.assert_array_equal(reg.image, gray[::-1, ::-1] if tr.upside_down else gray)
+
+
+def test_all_four_cases_of_orientation_and_symmetric_marks():
+    # Four identical corner squares: only the header and field borders tell the two ways round apart.
+    for upside_down in (False, True):
+        tr = Transform(rotation_deg=1.0, upside_down=upside_down, margin_mm=5, noise=5)
+        gray, truth = render_page(LAYOUT, 150, DIGITS, np.random.default_rng(1), tr)
+        reg = register_page(Page(gray, 150.0, "card.png", 2), LAYOUT)
+        assert reg.rotated_180 is upside_down
+        assert _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+
+
+def test_three_marks_asymmetric_layout_upside_down():
+    # Only three marks (no bottom-right): the geometry alone tells the orientation.
+    text = LAYOUT.to_toml().replace("[[marks]]\nx = 139.0\ny = 201.0\nsize = 6.0\n", "")
+    three = parse_layout(text, "three.toml")
+    assert len(three.marks) == 3
+    tr = Transform(rotation_deg=-2.0, upside_down=True, margin_mm=5)
+    gray, truth = render_page(three, 150, DIGITS, np.random.default_rng(2), tr)
+    reg = register_page(Page(gray, 150.0, "three.png", 1), three)
+    assert reg.rotated_180 and reg.marks_found == 3
+    assert _corner_error_mm(reg, truth, three) <= CORNER_TOL_MM
+
+
+@pytest.mark.parametrize("covered", [0, 1, 2, 3])
+def test_one_mark_covered_the_other_three_register(covered):
+    tr = Transform(rotation_deg=2.5, scale=1.02, shift_mm=(-4, 6), margin_mm=10, cover_marks=(covered,),
+                   noise=6)
+    gray, truth = render_page(LAYOUT, 150, DIGITS, np.random.default_rng(covered), tr)
+    reg = register_page(Page(gray, 150.0, "covered.png", 1), LAYOUT)
+    assert reg.marks_found == 3 and covered not in reg.mark_index
+    assert reg.residual_mm == 0.0  # three points fix an affine transform exactly
+    assert _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+
+
+@pytest.mark.parametrize("covered", [(0, 3), (1, 2), (2, 3)])
+def test_two_marks_covered_is_refused_with_the_reason(covered):
+    tr = Transform(rotation_deg=-1.0, margin_mm=5, cover_marks=covered)
+    gray, _ = render_page(LAYOUT, 150, DIGITS, np.random.default_rng(3), tr)
+    with pytest.raises(RegistrationError, match=r"^scan\.tif page 4: only 2 of the layout's 4 registration marks found"):
+        register_page(Page(gray, 150.0, "scan.tif", 4), LAYOUT)
+
+
+def test_blank_page_is_refused():
+    gray = degrade(np.full((1300, 900), 240, np.uint8), np.random.default_rng(4), noise=8, jpeg_quality=70)
+    with pytest.raises(RegistrationError, match=r"^blank\.png page 1: no registration marks found \(the page looks blank\)"):
+        register_page(Page(gray, 150.0, "blank.png", 1), LAYOUT)
+
+
+def test_mark_cut_off_by_the_image_edge_is_not_used():
+    # Shifted up-left with no scanner margin: the top marks are cut by the image edge.
+    tr = Transform(shift_mm=(-4, -10))
+    gray, truth = render_page(LAYOUT, 150, DIGITS, np.random.default_rng(5), tr)
+    with pytest.raises(RegistrationError, match=r"registration marks"):
+        register_page(Page(gray, 150.0, "cut.png", 1), LAYOUT)
+
+
+def test_wrong_layout_is_refused_not_misread():
+    # A layout whose right and bottom marks sit 11 mm further in than the printed ones: never a wrong geometry.
+    other = parse_layout(LAYOUT.to_toml().replace("x = 139.0", "x = 128.0").replace("y = 201.0", "y = 190.0"),
+                         "other.toml")
+    gray, _ = render_page(LAYOUT, 150, DIGITS, np.random.default_rng(6), Transform(margin_mm=5))
+    with pytest.raises(RegistrationError, match=r"^other\.png page 1: "):
+        register_page(Page(gray, 150.0, "other.png", 1), other)
+
+
+def test_fit_affine_recovers_a_known_transform_and_residual_is_in_mm():
+    rng = np.random.default_rng(7)
+    m = np.array([[11.7, -0.4, 30.0], [0.5, 11.9, -12.0]])
+    src = rng.uniform(0, 200, (6, 2))
+    np.testing.assert_allclose(fit_affine(src, apply_affine(m, src)), m, atol=1e-9)
+
+
+def test_registration_of_a_shadowed_page_and_of_a_page_with_square_handwriting():
+    # Uneven lighting (one side darkened by 60 %) and noise.
+    tr = Transform(rotation_deg=3.0, shadow=0.6, noise=8, margin_mm=8)
+    gray, truth = render_page(LAYOUT, 200, DIGITS, np.random.default_rng(8), tr)
+    reg = register_page(Page(gray, 200.0, "shadow.png", 1), LAYOUT)
+    assert reg.marks_found == 4 and _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+    # A filled square blot the size of a mark inside a field does not confuse the marks.
+    blotted = gray.copy()
+    c = to_pixels(truth.matrix, [[75.0, 53.0]])[0].astype(int)
+    s = int(6.0 * 200 / 25.4 / 2)
+    blotted[c[1] - s:c[1] + s, c[0] - s:c[0] + s] = 20
+    reg = register_page(Page(blotted, 200.0, "blot.png", 1), LAYOUT)
+    assert reg.marks_found == 4 and _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+
+
+@pytest.mark.parametrize("angle", [-4.3, -1.2, 0.0, 0.7, 2.9, 4.8])
+def test_estimate_skew_from_printed_lines(angle):
+    tr = Transform(rotation_deg=angle, margin_mm=10, noise=5)
+    gray, _ = render_page(LAYOUT, 150, DIGITS, np.random.default_rng(9), tr)
+    est = estimate_skew(binarize(gray, "otsu", dpi=150))
+    assert abs(est - angle) <= SKEW_TOL_DEG
+    # Turning the page back by the estimate leaves (almost) no skew.
+    back = rotate(gray, -est)
+    assert abs(estimate_skew(binarize(back, "otsu", dpi=150))) <= SKEW_TOL_DEG
+
+
+def test_estimate_skew_of_too_little_ink_is_zero():
+    assert estimate_skew(np.zeros((100, 100), bool)) == 0.0
