@@ -96,7 +96,7 @@ class _Parser:
                 raise RuleError(f"parentheses nested deeper than {_MAX_DEPTH} at column {t.col}")
             node = self.sum()
             close = self.take()
-            if close.text != "(" and close.kind == "op" and close.text == ")":
+            if close.kind == "op" and close.text == ")":
                 self.depth -= 1
                 return node
             raise RuleError(f"expected ')' at column {close.col}, found {_show(close)}")
