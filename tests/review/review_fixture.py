@@ -197,7 +197,7 @@ def _probs(reading: str, truth: str, conf: float, rng: np.random.Generator) -> t
 
 def _png(arr: np.ndarray, path: Path) -> None:
     path.parent.mkdir(parents=True, exist_ok=True)
-    Image.fromarray(arr).save(path, optimize=True)
+    Image.fromarray(arr).save(path)
 
 
 def make_ledger(outdir: str | Path, *, seed: int = 7) -> dict:
