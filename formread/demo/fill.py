@@ -71,7 +71,7 @@ def random_writer(rng: np.random.Generator) -> Writer:
         size_open=float(rng.uniform(0.52, 0.68)),
         slant=float(rng.normal(0.08, 0.12)),
         ink=float(rng.uniform(10, 75)),
-        weight=float(rng.uniform(0.18, 0.42)),
+        weight=float(rng.uniform(0.22, 0.45)),
         bias=(float(rng.normal(0, 0.04)), float(rng.normal(0, 0.04))),
         sloppy=float(rng.choice([0.02, 0.06, 0.15], p=[0.5, 0.35, 0.15])),
         touch=float(rng.uniform(0.08, 0.4)),
@@ -84,7 +84,9 @@ def _glyph(bank: DigitBank, digit: int, writer: Writer, height_px: float,
 
     A digit wider than ``max_width_px`` is written smaller, as a writer squeezes it into a box.
     """
-    pos = int(rng.choice(bank.positions(digit)))
+    pool = bank.positions(digit)
+    fresh = pool[~np.isin(bank.indices[pool], writer.used)]    # no image twice on one card
+    pos = int(rng.choice(fresh if fresh.size else pool))
     writer.used.append(int(bank.indices[pos]))
     src = bank.images[pos]
     rows, cols = np.nonzero(src > 0.1)

@@ -63,7 +63,8 @@ def _plan(count: int, rng: np.random.Generator) -> list[_File]:
     n_300 = max(1, round(0.15 * singles)) if singles >= 3 else 0
     for k, fmt in enumerate(kinds):
         # some pages at 300 dpi: the first TIFF, then JPEGs (never PNG: files stay small)
-        dpi = 300 if (k == n_png or (fmt == "jpeg" and k - n_png - n_tiff < n_300 - 1)) else 200
+        first_tiff = fmt == "tiff" and k == n_png
+        dpi = 300 if (first_tiff or (fmt == "jpeg" and k - n_png - n_tiff < n_300 - 1)) else 200
         files.append(_File(fmt, 1, dpi, int(rng.integers(70, 91))))
     rng.shuffle(files)
     if count >= 2:

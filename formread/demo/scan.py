@@ -118,19 +118,22 @@ def random_scan_settings(rng: np.random.Generator, *, dpi: int, page_mm: tuple[f
 
 
 def _lighting(s: ScanSettings, shape: tuple[int, int]) -> np.ndarray:
-    """Illumination of shape (H, W), float32, 1 = full light."""
+    """Illumination times paper brightness, shape (H, W), float32 (1 = full light on white paper)."""
     h, w = shape
     y = np.linspace(0, 1, h, dtype=np.float32)[:, None]
     x = np.linspace(0, 1, w, dtype=np.float32)[None, :]
     t = np.deg2rad(s.gradient_dir_deg)
-    ramp = np.float32(np.cos(t)) * x + np.float32(np.sin(t)) * y
-    ramp = (ramp - ramp.min()) / max(float(ramp.max() - ramp.min()), 1e-6)
-    light = 1.0 - np.float32(s.gradient) * ramp
+    c, n = float(np.cos(t)), float(np.sin(t))
+    lo, hi = min(c, 0) + min(n, 0), max(c, 0) + max(n, 0)   # range of c x + n y over the unit square
+    k = s.gradient / max(hi - lo, 1e-6)
+    # 1 - gradient * (ramp - lo) / (hi - lo), split into a column term and a row term
+    col = np.float32(1 + k * lo) - np.float32(k * c) * x
+    row = -np.float32(k * n) * y
     if s.shadow > 0:
-        width = np.float32(0.04)
         dist = {"left": x, "right": 1 - x, "top": y, "bottom": 1 - y}[s.shadow_edge]
-        light = light * (1.0 - np.float32(s.shadow) * np.exp(-dist / width))
-    return light.astype(np.float32)
+        edge = np.float32(s.paper / 255.0) * (1 - np.float32(s.shadow) * np.exp(-dist / np.float32(0.04)))
+        return ((col + row) * edge).astype(np.float32)
+    return ((col + row) * np.float32(s.paper / 255.0)).astype(np.float32)
 
 
 def simulate_scan(clean: np.ndarray, s: ScanSettings, rng: np.random.Generator) -> np.ndarray:
@@ -159,9 +162,11 @@ def simulate_scan(clean: np.ndarray, s: ScanSettings, rng: np.random.Generator) 
         k = int(rng.integers(1, 4))
         a[r: r + k, c: c + k] = np.minimum(a[r: r + k, c: c + k], float(rng.uniform(40, 160)))
     a = ndimage.gaussian_filter(a, s.blur_px, mode="nearest")
-    a *= _lighting(s, a.shape) * np.float32(s.paper / 255.0)
-    a += rng.standard_normal(a.shape, dtype=np.float32) * np.float32(s.noise)
-    return np.clip(a + 0.5, 0, 255).astype(np.uint8)
+    a *= _lighting(s, a.shape)
+    if s.noise > 0:
+        a += rng.standard_normal(a.shape, dtype=np.float32) * np.float32(s.noise)
+    a += np.float32(0.5)
+    return np.clip(a, 0, 255, out=a).astype(np.uint8)
 
 
 def to_bilevel(scan: np.ndarray, threshold: int = 150) -> Image.Image:

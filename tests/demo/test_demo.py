@@ -110,6 +110,11 @@ def test_handwriting_comes_only_from_the_mnist_test_part(demo):
              "litres_used")
     written = "".join("".join(r["fields"][k] for k in order) for r in truth)
     assert "".join(str(d) for d in labels[used]) == written
+    start = 0
+    for r in truth:                       # no image twice on one card
+        n = sum(len(v) for v in r["fields"].values())
+        assert len(set(used[start: start + n])) == n
+        start += n
 
 
 def test_file_formats(demo):
