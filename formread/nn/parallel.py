@@ -1,0 +1,225 @@
+"""Two-process data-parallel gradients: both CPU cores on one training batch.
+
+Small convolutions keep a single BLAS thread busy but scale poorly across threads, so instead the
+batch is split in two: this process computes the gradient of its half while one worker process
+(a fresh ``python -m formread.nn.parallel``
+process: no fork, no ``if __name__ == "__main__"`` guard needed in the caller) computes the other half on a replica whose weights live in shared memory.
+The two mean gradients are combined weighted by the half sizes, so the result is the gradient of
+the mean loss over the whole batch, as ``Sequential.grad_step`` gives it. BLAS is pinned to one
+thread in both processes while the context is open.
+
+Usage::
+
+    with DataParallel(model) as dp:
+        for xb, yb in batches:
+            loss, correct = dp.grad_step(xb, yb)
+            optimizer.step()
+
+Dropout masks of the worker's half come from the worker's own generator (seeded by ``seed``),
+so a run is reproducible for a given seed but differs from a single-process run.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import weakref
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from formread.errors import check_param
+from formread.nn.model import Sequential, build_model
+
+__all__ = ["DataParallel"]
+
+
+def _layout(dtype, shapes, capacity, in_shape):
+    """Byte offsets of (params, grads, x, y) in the shared file, and its size."""
+    item = np.dtype(dtype).itemsize
+    total = sum(int(np.prod(s)) for s in shapes)
+    img = int(np.prod(in_shape))
+    offs = [0, total * item, 2 * total * item, (2 * total + capacity * img) * item]
+    size = offs[3] + capacity * 8
+    return offs, size
+
+
+def _map(path, dtype, shapes, capacity, in_shape):
+    """Map the shared file: (param views, grad views, x buffer (capacity, *in_shape), y (capacity,))."""
+    offs, size = _layout(dtype, shapes, capacity, in_shape)
+    mm = np.memmap(path, dtype=np.uint8, mode="r+", shape=(size,))
+    total = sum(int(np.prod(s)) for s in shapes)
+
+    def split(off):
+        flat = mm[off:off + total * np.dtype(dtype).itemsize].view(dtype)
+        out, at = [], 0
+        for shape in shapes:
+            k = int(np.prod(shape))
+            out.append(flat[at:at + k].reshape(shape))
+            at += k
+        return out
+    x = mm[offs[2]:offs[3]].view(dtype).reshape((capacity,) + tuple(in_shape))
+    y = mm[offs[3]:size].view(np.int64)
+    return split(offs[0]), split(offs[1]), x, y
+
+
+def _worker_main() -> None:
+    """Worker process: one JSON set-up line on stdin, then "n smoothing" lines; answers on stdout."""
+    inp, out = sys.stdin, sys.stdout
+    cfg = json.loads(inp.readline())
+    dtype = np.dtype(cfg["dtype"])
+    shapes = [tuple(s) for s in cfg["shapes"]]
+    with threadpool_limits(1):
+        model = build_model(cfg["spec"], np.random.default_rng(cfg["seed"]), dtype=dtype)
+        params = model.parameters()
+        pviews, gviews, xbuf, ybuf = _map(cfg["path"], dtype, shapes, cfg["capacity"], cfg["in_shape"])
+        for p, v in zip(params, pviews):
+            p.value = v  # weights are read from the shared file on every pass
+        out.write("ready\n")
+        out.flush()
+        for line in inp:
+            if not line.strip():
+                break
+            n_text, smoothing_text = line.split()
+            n = int(n_text)
+            try:
+                loss, correct = model.grad_step(xbuf[:n], ybuf[:n], float(smoothing_text))
+                for g, p in zip(gviews, params):
+                    np.copyto(g, p.grad)
+                out.write(f"ok {loss!r} {correct}\n")
+            except Exception as e:  # reported to the parent, which raises it
+                out.write("error " + f"{type(e).__name__}: {e}".replace("\n", " ") + "\n")
+            out.flush()
+
+
+def _shutdown(proc, path):
+    try:
+        proc.stdin.close()  # end of input: the worker leaves its loop
+    except OSError:
+        pass
+    try:
+        proc.wait(timeout=10)
+    except subprocess.TimeoutExpired:
+        proc.kill()
+        proc.wait()
+    proc.stdout.close()
+    if os.path.exists(path):
+        os.unlink(path)
+
+
+class DataParallel:
+    """Gradient steps on a batch split over this process and one worker process.
+
+    model : the Sequential whose ``.grad`` fields each ``grad_step`` fills (its weights are sent to
+    the worker at every step, so optimizers update ``model`` as usual). seed : seeds the worker's
+    dropout generator. The worker starts at the first ``grad_step`` and stops on ``close()`` or when
+    the ``with`` block ends; it also stops by itself when this process ends (its input closes).
+    """
+
+    def __init__(self, model: Sequential, seed: int = 0):
+        check_param(isinstance(model, Sequential), "model", "a Sequential", type(model))
+        self.model = model
+        self.seed = int(seed)
+        self._proc = None
+        self._capacity = 0
+        self._in_shape = None
+        self._limits = None
+        self._finalizer = None
+
+    def __enter__(self) -> "DataParallel":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Stop the worker process (waits for it) and restore the BLAS thread count."""
+        self.close_worker()
+        if self._limits is not None:
+            self._limits.restore_original_limits()
+            self._limits = None
+
+    def close_worker(self) -> None:
+        """Stop the worker process only (it restarts at the next ``grad_step``)."""
+        if self._finalizer is not None:
+            self._finalizer()
+            self._finalizer = None
+        self._proc = None
+
+    def _start(self, capacity: int, in_shape: tuple) -> None:
+        self.close_worker()
+        if self._limits is None:
+            self._limits = threadpool_limits(1)
+        dtype = np.dtype(self.model.dtype)
+        shapes = [p.value.shape for p in self.model.parameters()]
+        _, size = _layout(dtype, shapes, capacity, in_shape)
+        folder = "/dev/shm" if os.path.isdir("/dev/shm") and os.access("/dev/shm", os.W_OK) else None
+        fd, path = tempfile.mkstemp(prefix="formread-dp-", suffix=".bin", dir=folder)
+        with os.fdopen(fd, "wb") as f:
+            f.truncate(size)
+        self._pviews, self._gviews, self._xbuf, self._ybuf = _map(path, dtype, shapes, capacity, in_shape)
+        env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1", MKL_NUM_THREADS="1")
+        proc = subprocess.Popen([sys.executable, "-m", "formread.nn.parallel"], stdin=subprocess.PIPE,
+                                stdout=subprocess.PIPE, text=True, bufsize=1, env=env)
+        self._finalizer = weakref.finalize(self, _shutdown, proc, path)
+        cfg = {"path": path, "dtype": dtype.str, "shapes": [list(s) for s in shapes],
+               "spec": self.model.spec, "seed": self.seed, "capacity": capacity,
+               "in_shape": list(in_shape)}
+        proc.stdin.write(json.dumps(cfg) + "\n")
+        proc.stdin.flush()
+        if proc.stdout.readline().strip() != "ready":
+            self.close_worker()
+            raise RuntimeError("data-parallel worker process failed to start")
+        self._proc, self._capacity, self._in_shape = proc, capacity, tuple(in_shape)
+        self._path = path
+
+    def grad_step(self, x: np.ndarray, y: np.ndarray, smoothing: float = 0.0) -> tuple[float, int]:
+        """Like ``Sequential.grad_step`` on the whole batch, computed on two cores.
+
+        x : (N, C, H, W) float; y : (N,) int. Fills ``model``'s gradients (of the mean loss over
+        all N) and returns (mean loss, number of correct predictions).
+        """
+        x = np.asarray(x)
+        y = np.asarray(y)
+        n = len(x)
+        check_param(len(y) == n, "y", f"{n} labels", len(y))
+        classes = self.model.spec_classes()
+        check_param(np.issubdtype(y.dtype, np.integer) and (n == 0 or (y.min() >= 0 and y.max() < classes)),
+                    "y", f"integer labels in [0, {classes})", (str(y.dtype), y.min() if n else None,
+                                                                y.max() if n else None))
+        if n < 2:
+            return self.model.grad_step(x, y, smoothing)
+        n1 = n // 2
+        n2 = n - n1
+        if self._proc is None or n2 > self._capacity or tuple(x.shape[1:]) != self._in_shape:
+            self._start(max(n2, self._capacity), x.shape[1:])
+        for v, p in zip(self._pviews, self.model.parameters()):
+            np.copyto(v, p.value)
+        np.copyto(self._xbuf[:n2], x[n1:], casting="unsafe")
+        self._ybuf[:n2] = y[n1:]
+        try:
+            self._proc.stdin.write(f"{n2} {float(smoothing)!r}\n")
+            self._proc.stdin.flush()
+        except OSError:
+            self.close_worker()
+            raise RuntimeError("data-parallel worker process has stopped") from None
+        try:
+            loss1, c1 = self.model.grad_step(x[:n1], y[:n1], smoothing)
+        finally:  # always collect the worker's answer so the next step stays in step
+            answer = self._proc.stdout.readline().split(" ", 2)
+        if answer[0] != "ok":
+            self.close_worker()
+            raise RuntimeError("data-parallel worker failed: " + (" ".join(answer[1:]).strip() or "stopped"))
+        loss2, c2 = float(answer[1]), int(answer[2])
+        w1, w2 = n1 / n, n2 / n
+        for p, g in zip(self.model.parameters(), self._gviews):
+            p.grad *= p.grad.dtype.type(w1)
+            p.grad += p.grad.dtype.type(w2) * g
+        return w1 * loss1 + w2 * loss2, c1 + c2
+
+
+if __name__ == "__main__":
+    _worker_main()
