@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import typer
 
-from . import demo, layout, read, review, train
+from . import demo, layout, read, retrain, review, train
 
 app = typer.Typer(
     name="formread",
@@ -14,7 +14,7 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
 )
 
-for _group in (train, layout, read, demo, review):
+for _group in (train, layout, read, demo, review, retrain):
     _group.register(app)
 
 

@@ -1,0 +1,217 @@
+"""Fine-tune the model in use on a clerk's local samples, and promote it only when it helps.
+
+Local samples (``DIR/<digit>/*.png``, see :mod:`formread.samples`) are split once, stratified
+and seeded, into a fine-tuning part and a held-out part.  The current model is fine-tuned on
+the fine-tuning part mixed with a sample of its own original training data (so it does not
+forget the writers it knew), with the same augmentation as in training, and its temperature is
+refitted on the run's validation split.  Accuracy is measured before and after on the held-out
+local samples and on the original held-out test parts (the MNIST sample's test part and the
+second half of scikit-learn's digits for the shipped model).
+
+The new model is always written as a new version beside the old one (``<name>-r<N>.npz``);
+the model in use is never overwritten.  It is promoted (``models/in_use.json`` points to it)
+only when held-out local accuracy improves by at least ``min_gain`` and no original test part
+loses more than ``margin`` accuracy.  Samples with wrong labels cannot improve held-out local
+accuracy (their held-out part is wrong in the same random way), so such a model is refused.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import tempfile
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from .datasets import Dataset, load_samples_folder
+from .errors import DataError, check_param
+from .nn.augment import AugmentConfig
+from .nn.model import build_model
+from .nn.modelfile import load_model, save_model
+from .nn.train import TrainConfig, evaluate, held_out_parts, load_named, stratified_split, train
+
+__all__ = ["RetrainReport", "retrain", "next_version_path", "promote", "IN_USE"]
+
+IN_USE = "in_use.json"
+MIN_LOCAL_SAMPLES = 20
+
+
+@dataclass
+class RetrainReport:
+    """Figures and outcome of one retraining.
+
+    Attributes
+    ----------
+    model_before, model_after : str     paths of the model fine-tuned and of the new version
+    n_local_train, n_local_held_out, n_original : int   images used
+    local_before, local_after : float   accuracy on the held-out local samples
+    original_before, original_after : dict[str, float]   accuracy per original test part
+    temperature : float                 refitted temperature of the new version
+    promoted : bool
+    reason : str                        why it was or was not promoted
+    seconds : float
+    """
+
+    model_before: str
+    model_after: str
+    n_local_train: int
+    n_local_held_out: int
+    n_original: int
+    local_before: float
+    local_after: float
+    original_before: dict = field(default_factory=dict)
+    original_after: dict = field(default_factory=dict)
+    temperature: float = 1.0
+    promoted: bool = False
+    reason: str = ""
+    seconds: float = 0.0
+
+    def as_dict(self) -> dict:
+        return asdict(self)
+
+
+def next_version_path(model_path: Path) -> Path:
+    """``default.npz`` -> ``default-r1.npz``; ``default-r1.npz`` -> ``default-r2.npz`` (first free)."""
+    stem = re.sub(r"-r\d+$", "", model_path.stem)
+    n = 1
+    while (model_path.parent / f"{stem}-r{n}.npz").exists():
+        n += 1
+    return model_path.parent / f"{stem}-r{n}.npz"
+
+
+def promote(model_path: Path, models_dir: Path) -> None:
+    """Make ``model_path`` the model in use by writing ``models_dir/in_use.json`` atomically."""
+    models_dir.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=models_dir, prefix=".tmp-", suffix=".json")
+    with os.fdopen(fd, "w") as f:
+        json.dump({"model": model_path.name}, f)
+        f.write("\n")
+    os.replace(tmp, models_dir / IN_USE)
+
+
+def _accuracy(model, x: np.ndarray, y: np.ndarray) -> float:
+    return float(evaluate(model, x, y)["accuracy"]) if len(y) else float("nan")
+
+
+def _training_name(header: dict) -> str:
+    """The dataset name the model was trained on, without its part (e.g. ``default``)."""
+    name = str((header.get("training") or {}).get("dataset") or "default")
+    return name.rsplit(":", 1)[0] if name.split(":", 1)[0] in ("default", "mnist", "digits") else name
+
+
+def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path | None = None,
+            held_out: float = 0.3, epochs: int = 6, lr: float = 5e-4, original_ratio: float = 4.0,
+            margin: float = 0.005, min_gain: float = 0.01, seed: int = 0,
+            original: Dataset | None = None, original_tests: dict[str, Dataset] | None = None,
+            progress: Callable | None = None) -> RetrainReport:
+    """Fine-tune ``model_path`` on local samples; write a new version; promote it if it helps.
+
+    Parameters
+    ----------
+    model_path : path of the model in use (never overwritten)
+    samples_dir : path of ``DIR/<digit>/*.png`` local samples
+    out : path of the new version (default: next ``-r<N>.npz`` beside ``model_path``)
+    held_out : share of each digit's local samples kept for measuring
+    epochs, lr : fine-tuning length and base learning rate (Adam, cosine schedule)
+    original_ratio : original training images drawn per local fine-tuning image
+    margin : most accuracy an original test part may lose for promotion
+    min_gain : least held-out local accuracy gain for promotion
+    seed : seeds the local split, the sample of original data and training
+    original, original_tests : override the original training data and test parts
+        (x of shape (N, 1, 28, 28) float32); default: those named in the model header
+    progress : ``progress(done, total, **figures)`` per epoch
+
+    Returns
+    -------
+    RetrainReport (the new model's path is ``model_after``; ``promoted`` says whether it is in use)
+
+    Raises
+    ------
+    ModelFileError for a bad model file; DataError for too few or unusable samples.
+    """
+    import time
+
+    t0 = time.monotonic()
+    check_param(0 < held_out < 1, "held_out", "a number in (0, 1)", held_out)
+    check_param(isinstance(epochs, int) and epochs >= 1, "epochs", "an integer >= 1", epochs)
+    model_path = Path(model_path)
+    model, header = load_model(model_path)
+    local = load_samples_folder(samples_dir, min_share=0.0)
+    if len(local) < MIN_LOCAL_SAMPLES:
+        raise DataError(f"{samples_dir}: only {len(local)} local samples; retraining needs at least "
+                        f"{MIN_LOCAL_SAMPLES}")
+    rng = np.random.default_rng(seed)
+    tune_idx, hold_idx = stratified_split(local.y, held_out, rng)
+    if len(hold_idx) == 0 or len(tune_idx) == 0:
+        raise DataError(f"{samples_dir}: too few local samples per digit to hold some out")
+    x_hold, y_hold = local.x[hold_idx], local.y[hold_idx]
+
+    name = _training_name(header)
+    if original is None:
+        original = load_named(name, "train")
+    if original_tests is None:
+        original_tests = {p: load_named(*p.split(":")) for p in held_out_parts(name)}
+
+    n_orig = int(min(len(original), max(1000, round(original_ratio * len(tune_idx)))))
+    orig_idx = np.sort(rng.choice(len(original), size=n_orig, replace=False))
+    x_mix = np.concatenate([original.x[orig_idx], local.x[tune_idx]])
+    y_mix = np.concatenate([original.y[orig_idx], local.y[tune_idx]])
+
+    local_before = _accuracy(model, x_hold, y_hold)
+    original_before = {p: _accuracy(model, d.x, d.y) for p, d in original_tests.items()}
+
+    new = build_model(header["architecture"], np.random.default_rng(seed))
+    new.load_state_dict(model.state_dict())
+    base_cfg = (header.get("training") or {}).get("config") or {}
+    aug = AugmentConfig(**base_cfg["augment"]) if isinstance(base_cfg.get("augment"), dict) else AugmentConfig()
+    cfg = TrainConfig(epochs=epochs, lr=lr, optimizer="adam", schedule="cosine", warmup=0,
+                      batch_size=int(base_cfg.get("batch_size", 64)), val_fraction=0.1,
+                      patience=0, augment=aug, seed=seed)
+    result = train(new, x_mix, y_mix, cfg, progress=progress)
+
+    local_after = _accuracy(new, x_hold, y_hold)
+    original_after = {p: _accuracy(new, d.x, d.y) for p, d in original_tests.items()}
+
+    gain = local_after - local_before
+    drops = {p: original_before[p] - original_after[p] for p in original_tests}
+    worst = max(drops.items(), key=lambda kv: kv[1]) if drops else (None, 0.0)
+    if gain < min_gain:
+        promoted, reason = False, (f"held-out local accuracy {local_before:.4f} -> {local_after:.4f} "
+                                   f"did not improve by {min_gain:.3f}")
+    elif worst[0] is not None and worst[1] > margin:
+        promoted, reason = False, (f"{worst[0]} accuracy fell by {worst[1]:.4f}, more than the "
+                                   f"margin {margin:.4f}")
+    else:
+        promoted, reason = True, (f"held-out local accuracy {local_before:.4f} -> {local_after:.4f}; "
+                                  f"original test parts within the margin {margin:.4f}")
+
+    out_path = Path(out) if out is not None else next_version_path(model_path)
+    if out_path.resolve() == model_path.resolve():
+        raise DataError(f"{out_path}: the new version must not overwrite the model in use")
+    metrics = dict(header.get("metrics") or {})
+    for p, acc in original_after.items():
+        metrics[p] = dict(metrics.get(p) or {}, accuracy=acc)
+    metrics["local:held_out"] = {"n": int(len(hold_idx)), "accuracy": local_after, "before": local_before}
+    training = dict(header.get("training") or {})
+    training["retrained"] = {
+        "parent": model_path.name, "parent_sha256": header.get("sha256"),
+        "samples": str(samples_dir), "n_local_train": int(len(tune_idx)),
+        "n_local_held_out": int(len(hold_idx)), "n_original": n_orig,
+        "local_split": f"stratified {held_out:g} of each digit held out (seed {seed})",
+        "config": cfg.as_dict(), "promoted": promoted, "reason": reason,
+    }
+    save_model(out_path, new, {"input": header.get("input"), "labels": header.get("labels"),
+                               "training": training, "seed": seed, "metrics": metrics,
+                               "temperature": result.temperature})
+    if promoted:
+        promote(out_path, out_path.parent)
+    return RetrainReport(
+        model_before=str(model_path), model_after=str(out_path), n_local_train=int(len(tune_idx)),
+        n_local_held_out=int(len(hold_idx)), n_original=n_orig, local_before=local_before,
+        local_after=local_after, original_before=original_before, original_after=original_after,
+        temperature=float(result.temperature), promoted=promoted, reason=reason,
+        seconds=time.monotonic() - t0)
