@@ -38,12 +38,11 @@ confidence becomes the total probability of the satisfying combinations in which
 it has its chosen string, normalised over *all* combinations of all strings of the
 group's fields (again total 1; combinations using strings outside the top ones
 count as not satisfying).  So a relation can fix a reading, and it can only lower
-a confidence, never raise it.  This ``relation_confidence="joint"`` (the default)
-is consistent with the field stage: mass that breaks a rule stays in the
-denominator.  ``relation_confidence="posterior"`` instead normalises over the
-satisfying combinations only, i.e. the probability of the reading *given* that the
-relations hold (higher; right when the true values always satisfy the relations,
-overconfident when writers make arithmetic mistakes).
+a confidence, never raise it.  This is consistent with the field stage: mass that
+breaks a rule stays in the denominator.  (Normalising over the satisfying
+combinations only, the probability *given* that the relations hold, was tried and
+dropped: over the few strings considered it gave confidence near 1 to wrong
+readings whenever the true string lay outside them.)
 
 Decision: ``accepted`` when the confidence reaches the threshold (the field's own
 ``threshold``, else the page threshold) and every rule and relation holds and the
@@ -358,7 +357,7 @@ def _components(relations, names: set[str]) -> list[tuple[list[str], list]]:
 
 
 def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, relation_top: int,
-                     max_combinations: int, posterior: bool) -> None:
+                     max_combinations: int) -> None:
     applicable = [rel for rel in compiled.relations
                   if all(f in states and states[f].reading.reading for f in rel.fields)]
     names = {f for rel in applicable for f in rel.fields}
@@ -381,11 +380,10 @@ def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, rela
             if pj > best_p:
                 best, best_p = combo, pj
         if best is not None:
-            total = sum(sat_mass[0].values()) if posterior else 1.0
             for i, (f, o) in enumerate(zip(fields, best)):
                 st = states[f]
                 st.reading.rules["relation"] = True
-                _set_choice(st, o, sat_mass[i][o.string] / total)
+                _set_choice(st, o, sat_mass[i][o.string])
         else:
             current = {f: int(states[f].chosen.string) for f in fields
                        if states[f].chosen.string.isascii() and states[f].chosen.string.isdigit()}
@@ -429,8 +427,8 @@ def decode_field(evidence: FieldEvidence | None, rules: FieldRules, *, threshold
 def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRules, layout, *,
                 threshold: float | None = None, top_per_position: int = TOP_PER_POSITION,
                 max_strings: int = MAX_STRINGS, relation_top: int = RELATION_TOP,
-                max_combinations: int = MAX_COMBINATIONS, cost_scale: float = 1.0,
-                relation_confidence: str = "joint") -> dict[str, FieldReading]:
+                max_combinations: int = MAX_COMBINATIONS, cost_scale: float = 1.0
+                ) -> dict[str, FieldReading]:
     """Read every field of a registered page.
 
     Parameters
@@ -447,8 +445,6 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
         Page threshold (a field's own ``threshold`` takes precedence).
     top_per_position, max_strings, relation_top, max_combinations, cost_scale
         Search sizes and the scale of segmentation costs (see the module docstring).
-    relation_confidence : {"joint", "posterior"}
-        How a relation group's confidences are normalised (see the module docstring).
 
     Returns
     -------
@@ -461,14 +457,11 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
                 "search sizes", "positive integers",
                 (top_per_position, max_strings, relation_top, max_combinations))
     check_param(cost_scale > 0, "cost_scale", "positive", cost_scale)
-    check_param(relation_confidence in ("joint", "posterior"), "relation_confidence", "'joint' or 'posterior'",
-                relation_confidence)
     states = {}
     for f in layout.fields:
         states[f.name] = _field_state(evidence.get(f.name), compiled_rules.fields[f.name], top=top_per_position,
                                       limit=max_strings, cost_scale=cost_scale)
-    _apply_relations(states, compiled_rules, relation_top=relation_top, max_combinations=max_combinations,
-                     posterior=relation_confidence == "posterior")
+    _apply_relations(states, compiled_rules, relation_top=relation_top, max_combinations=max_combinations)
     for st in states.values():
         _decide(st, float(thr))
     return {name: st.reading for name, st in states.items()}

@@ -149,13 +149,6 @@ def test_relation_fixes_a_misread_litres_field():
     for name in ("previous_reading", "current_reading"):
         assert out[name].rules == {"relation": True}
         assert out[name].confidence <= 0.995 ** 3
-    # the same page with confidence given that the relation holds: "20" is nearly certain
-    post = decode_page(evidence, compile_rules(lay), lay, threshold=0.9, relation_confidence="posterior")
-    assert post["litres_used"].reading == "20" and post["litres_used"].confidence > 0.99
-    assert post["litres_used"].decision == "accepted"
-    assert post["current_reading"].confidence >= out["current_reading"].confidence
-    with pytest.raises(ParameterError):
-        decode_page(evidence, compile_rules(lay), lay, relation_confidence="bayes")
 
 
 def test_relation_that_cannot_hold_sends_its_fields_to_review():
