@@ -16,6 +16,7 @@ Size guard: Pillow's decompression-bomb guard stays on, and any page above ``MAX
 from __future__ import annotations
 
 import logging
+import re
 import struct
 import warnings
 import zlib
@@ -115,7 +116,13 @@ def _image_pages(path: Path, src: str, dpi: float | None) -> Iterator[Page]:
             raise ImageError(f"{src}: cannot be opened ({_why(e)})") from None
         _log_warnings(caught, src)
     with im:
-        n = getattr(im, "n_frames", 1) if im.format == "TIFF" else 1
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            try:  # counting a TIFF's pages walks its directory chain, which may be damaged
+                n = getattr(im, "n_frames", 1) if im.format == "TIFF" else 1
+            except _DECODE_ERRORS as e:
+                raise ImageError(f"{src}: cannot read the list of pages ({_why(e)})") from None
+            _log_warnings(caught, src)
         for i in range(n):
             where = f"{src} page {i + 1}" if n > 1 else src
             with warnings.catch_warnings(record=True) as caught:
@@ -208,7 +215,9 @@ def _log_warnings(caught, where: str) -> None:
 
 
 def _bomb(e: BaseException) -> str:
-    return str(e).split(" pixels exceeds")[0].strip() + " pixels" if " pixels exceeds" in str(e) else str(e)
+    """'N pixels' from Pillow's decompression-bomb message."""
+    m = re.search(r"\((\d+) pixels\)", str(e))
+    return f"{int(m.group(1)):,} pixels" if m else _why(e)
 
 
 def _why(e: BaseException) -> str:
@@ -224,10 +233,15 @@ def _pdf_pages(path: Path, src: str, dpi: float) -> Iterator[Page]:
     try:
         doc = pdfium.PdfDocument(str(path))
     except pdfium.PdfiumError as e:
-        msg = str(e)
-        if "password" in msg.lower():
+        # PDFium's error code is global state and can be stale, so the file itself is checked too.
+        code = getattr(e, "err_code", None)
+        head, tail = _ends(path)
+        if code in (_PDF_ERR_PASSWORD, _PDF_ERR_SECURITY) and (b"/Encrypt" in head or b"/Encrypt" in tail):
             raise ImageError(f"{src}: encrypted PDF (needs a password); save an unprotected copy") from None
-        raise ImageError(f"{src}: damaged or unreadable PDF ({_why(e)})") from None
+        counts = re.findall(rb"/Count\s+(\d+)", head + tail)
+        if counts and all(int(c) == 0 for c in counts):  # PDFium refuses an empty page tree
+            raise ImageError(f"{src}: PDF has no pages") from None
+        raise ImageError(f"{src}: damaged or unreadable PDF") from None
     try:
         n = len(doc)
         if n == 0:
@@ -260,6 +274,20 @@ def _pdf_pages(path: Path, src: str, dpi: float) -> Iterator[Page]:
             yield Page(gray=gray, dpi=dpi, source=src, page_number=i + 1)
     finally:
         doc.close()
+
+
+_PDF_ERR_PASSWORD, _PDF_ERR_SECURITY = 4, 5  # PDFium's FPDF_ERR_PASSWORD and FPDF_ERR_SECURITY
+
+
+def _ends(path: Path) -> tuple[bytes, bytes]:
+    """The first and last megabyte of a file (a PDF's trailer and page-tree root are usually there)."""
+    with open(path, "rb") as fh:
+        head = fh.read(1 << 20)
+        fh.seek(0, 2)
+        size = fh.tell()
+        fh.seek(max(len(head), size - (1 << 20)))
+        tail = fh.read()
+    return head, tail
 
 
 def _bitmap_gray(bitmap) -> np.ndarray:
