@@ -229,7 +229,9 @@ def score_readings(readings, truth, *, strict: bool = False, truth_name: str | N
     for i, rec in enumerate(readings):
         try:
             src, page = str(rec["source"]), int(rec["page_number"])
-            fname = str(rec.get("field", rec.get("name")))
+            fname = rec["field"] if "field" in rec else rec["name"]
+            if not isinstance(fname, str):
+                raise TypeError("'field'")
             reading = rec.get("reading")
             conf = float(rec.get("confidence") or 0.0)
             decision = rec["decision"]
@@ -299,7 +301,7 @@ def _nice_max(v: float) -> float:
 
 def write_curve_png(path, curve: np.ndarray, *, threshold: float | None = None, target: float | None = None,
                     title: str = "Error among accepted fields against review rate",
-                    size: tuple[int, int] = (720, 480)) -> Path:
+                    confidence_level: float = 0.95, size: tuple[int, int] = (720, 480)) -> Path:
     """Draw the error-versus-review curve with Pillow and save it as PNG.
 
     Parameters
@@ -313,6 +315,13 @@ def write_curve_png(path, curve: np.ndarray, *, threshold: float | None = None, 
         A threshold to mark (the point of the curve with the smallest threshold >= it).
     target : float or None
         Target error, drawn as a dashed horizontal line.
+    confidence_level : float
+        Level of the curve's upper bound column, for the legend.
+    size : (width, height) in pixels
+
+    Returns
+    -------
+    Path of the written file.  DataError when it cannot be written.
     """
     from PIL import Image, ImageDraw, ImageFont
 
@@ -367,7 +376,7 @@ def write_curve_png(path, curve: np.ndarray, *, threshold: float | None = None, 
         d.line([(x0 + 8, y0 + 12), (x0 + 28, y0 + 12)], fill=(30, 70, 160), width=2)
         d.text((x0 + 34, y0 + 12), "error", fill="black", font=small, anchor="lm")
         d.line([(x0 + 8, y0 + 28), (x0 + 28, y0 + 28)], fill=(150, 170, 220), width=1)
-        d.text((x0 + 34, y0 + 28), "95% upper bound", fill="black", font=small, anchor="lm")
+        d.text((x0 + 34, y0 + 28), f"{confidence_level:.0%} upper bound", fill="black", font=small, anchor="lm")
         if threshold is not None:
             above = np.flatnonzero(c[:, 0] >= threshold)
             i = int(above[np.argmin(c[above, 0])]) if above.size else len(c) - 1

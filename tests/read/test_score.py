@@ -112,6 +112,8 @@ def test_missing_truth_file_and_ambiguous_names(tmp_path):
         score_readings(r, path)
     with pytest.raises(DataError, match="reading record 1"):
         score_readings([{"source": "a"}], path)
+    with pytest.raises(DataError, match="reading record 1: missing or bad 'name'"):
+        score_readings([{"source": "a", "page_number": 1, "decision": "review"}], path)
 
 
 def test_curve_and_tuning_from_a_report(tmp_path):
