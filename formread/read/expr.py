@@ -146,12 +146,16 @@ class Relation:
     left: tuple
     right: tuple
 
+    def sides(self, values: dict[str, int]) -> tuple[int, int]:
+        """Values of the left and right sides (to show a clerk why a relation fails)."""
+        return _eval(self.left, values), _eval(self.right, values)
+
     def holds(self, values: dict[str, int]) -> bool:
         """True when the comparison holds for these integer field values.
 
         ``values`` must hold every name in :attr:`fields` (KeyError otherwise).
         """
-        return bool(_COMPARE[self.op](_eval(self.left, values), _eval(self.right, values)))
+        return bool(_COMPARE[self.op](*self.sides(values)))
 
 
 def parse_relation(text: str) -> Relation:

@@ -30,7 +30,7 @@ from formread.errors import RuleError
 from formread.read.checkdigits import SCHEMES
 from formread.read.expr import Relation, parse_relation
 
-__all__ = ["FieldRules", "CompiledRules", "compile_rules", "check_field", "check_value",
+__all__ = ["FieldRules", "CompiledRules", "compile_rules", "check_field", "check_value", "check_relations",
            "CHECKS", "DATE_PATTERNS", "RULE_NAMES"]
 
 CHECKS = tuple(SCHEMES)
@@ -200,3 +200,27 @@ def check_field(compiled: CompiledRules, name: str, value: str) -> dict[str, boo
     if name not in compiled.fields:
         raise RuleError(f"{compiled.source}: field {name!r}: not in the layout")
     return check_value(compiled.fields[name], value)
+
+
+def check_relations(compiled: CompiledRules, values: dict[str, str | None]) -> dict[str, bool | None]:
+    """Evaluate every relation on a page's field values (e.g. after a clerk's correction).
+
+    Parameters
+    ----------
+    values : dict of field name to str or None
+        Digit strings; '' or None = no value.
+
+    Returns
+    -------
+    dict of relation text to bool or None
+        None when a field of the relation has no value or is not a plain digit string
+        (the relation cannot be evaluated).
+    """
+    out: dict[str, bool | None] = {}
+    for rel in compiled.relations:
+        vals = [values.get(f) for f in rel.fields]
+        if all(isinstance(v, str) and v and v.isascii() and v.isdigit() for v in vals):
+            out[rel.text] = rel.holds({f: int(v) for f, v in zip(rel.fields, vals)})
+        else:
+            out[rel.text] = None
+    return out

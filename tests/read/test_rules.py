@@ -197,3 +197,17 @@ rule = "current >= previous"
     bad = text.replace("lenght", "length").replace("current >= previous", "current >= previus")
     with pytest.raises(RuleError, match="^meter.toml: relation 'current >= previus': unknown field 'previus'$"):
         compile_rules(parse_layout(bad, "meter.toml"))
+
+
+def test_check_relations_on_corrected_values():
+    from formread.read.rules import check_relations
+    lay = layout(previous={}, current={}, litres={})
+    lay.relations = ["litres = current - previous", "current >= previous"]
+    c = compile_rules(lay)
+    assert check_relations(c, {"previous": "100", "current": "120", "litres": "20"}) == {
+        "litres = current - previous": True, "current >= previous": True}
+    assert check_relations(c, {"previous": "100", "current": "120", "litres": "26"})[
+        "litres = current - previous"] is False
+    assert check_relations(c, {"previous": "100", "current": "120", "litres": ""}) == {
+        "litres = current - previous": None, "current >= previous": True}
+    assert c.relations[0].sides({"previous": 100, "current": 120, "litres": 26}) == (26, 20)
