@@ -49,11 +49,21 @@ def utc_now() -> str:
 
 
 def atomic_write(path: Path, data: bytes) -> None:
-    """Write ``data`` to ``path`` so that readers see the old file or the whole new one, never a part."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    """Write ``data`` to ``path`` so that readers see the old file or the whole new one, never a part.
+
+    The temp file sits beside the target (same file system) and is named after
+    this process, so a killed writer leaves at most one stale temp file per
+    target, which its next write replaces.
+    """
+    path = Path(path)
+    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
     try:
-        with os.fdopen(fd, "wb") as f:
+        f = open(tmp, "wb")
+    except FileNotFoundError:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        f = open(tmp, "wb")
+    try:
+        with f:
             f.write(data)
         os.replace(tmp, path)
     except BaseException:

@@ -1,0 +1,466 @@
+"""The batch job: scans in, one ledger row per page, every field read, checked and decided.
+
+How it runs: the scan files are streamed, page by page, through the imaging
+step (register, cut, segment), in worker processes when ``workers > 1`` (each
+pinned to one BLAS thread); the main process takes the pages back in input
+order, runs the network on all the digits of a page in one call, decodes each
+field with its rules, and writes the page (row, fields, image files) to the
+ledger in ONE transaction.  A page already in the ledger (same hash of the
+decoded pixels) is skipped, so re-running the same command resumes a stopped
+batch; a page that cannot be read is recorded with its reason and the batch
+goes on.  ``readings.csv`` and ``fields.jsonl`` are rebuilt from the ledger at
+the end (also after Ctrl-C).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import io
+import logging
+import multiprocessing
+import time
+from collections import deque
+from collections.abc import Callable, Iterable
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from PIL import Image
+
+from ..errors import FormreadError, ImageError, RegistrationError, check_param
+from ..imaging.layout import load_layout
+from ..imaging.load import iter_pages
+from ..imaging.pipeline import process_page
+from ..nn.modelfile import load_model
+from ..paths import default_model_path
+from .decode import decode_page, unregistered_page
+from .ledger import FieldRow, Ledger, PageRow, open_ledger, page_hash
+from .outputs import write_outputs
+from .recognise import recognise_page
+from .rules import compile_rules
+
+__all__ = ["SCAN_SUFFIXES", "DEFAULT_THRESHOLD", "PAGE_DPI", "BatchReport", "list_scans", "read_batch"]
+
+log = logging.getLogger(__name__)
+
+SCAN_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".pdf")
+"""File suffixes taken as scans when a folder is given (case-insensitive)."""
+DEFAULT_THRESHOLD = 0.9
+"""Acceptance threshold when neither the command line nor the layout gives one."""
+PAGE_DPI = 100.0
+"""Resolution of the stored page images (review view)."""
+
+
+@dataclass
+class BatchReport:
+    """What a run did. Times are wall-clock seconds; ``imaging_seconds`` sums the workers' time."""
+
+    run_id: int
+    outdir: Path
+    pages: int = 0                 # pages met in the inputs (files that failed count as one page)
+    read: int = 0                  # newly read (status 'read')
+    skipped: int = 0               # already in the ledger (or a duplicate of a page of this run)
+    unregistered: int = 0          # newly recorded as 'unregistered'
+    failed: int = 0                # newly recorded as 'failed'
+    fields: int = 0
+    accepted: int = 0
+    review: int = 0
+    problems: list = field(default_factory=list)   # [(source, page_number, status, error)] incl. skipped ones
+    seconds: float = 0.0
+    imaging_seconds: float = 0.0
+    recognition_seconds: float = 0.0
+    writing_seconds: float = 0.0
+    stages: dict = field(default_factory=dict)     # imaging stage -> seconds, as reported by process_page
+
+    @property
+    def pages_per_second(self) -> float:
+        return self.pages / self.seconds if self.seconds > 0 else 0.0
+
+    @property
+    def all_read(self) -> bool:
+        """True when no page of the inputs is failed or unregistered (in this run or before)."""
+        return not self.problems
+
+
+# ------------------------------------------------------------------------------------------ inputs
+def list_scans(inputs: Iterable) -> list[tuple[str, str | None]]:
+    """Expand the inputs into scan files, in order.
+
+    Parameters
+    ----------
+    inputs : paths of files or folders (a folder gives its files with a scan suffix, sorted by name)
+
+    Returns
+    -------
+    list of ``(source, refusal)``: ``refusal`` is None for a file to read, or the reason
+    a file found in a folder is not read (e.g. "not a scan").
+
+    Raises
+    ------
+    ImageError
+        An input path does not exist.
+    """
+    out: list[tuple[str, str | None]] = []
+    for p in inputs:
+        path = Path(p)
+        if path.is_dir():
+            for child in sorted(path.iterdir(), key=lambda c: c.name):
+                if child.name.startswith(".") or child.is_dir():
+                    continue
+                if child.suffix.lower() in SCAN_SUFFIXES:
+                    out.append((str(child), None))
+                else:
+                    out.append((str(child), f"not a scan (suffix {child.suffix or 'none'!r}; "
+                                            f"expected one of {', '.join(SCAN_SUFFIXES)})"))
+        elif path.exists():
+            out.append((str(path), None))
+        else:
+            raise ImageError(f"{path}: no such file or folder")
+    return out
+
+
+def _file_failure_hash(source: str) -> str:
+    """Key of a whole-file failure: one row per source file, replaced when the file is tried again."""
+    return "failed:" + hashlib.sha256(source.encode("utf-8", "surrogateescape")).hexdigest()
+
+
+# ------------------------------------------------------------------------------------------ imaging step
+@dataclass
+class _Imaged:
+    """One page after the imaging step, small enough to send between processes."""
+
+    source: str
+    page_number: int
+    content_hash: str
+    status: str                         # 'ok' | 'known' | 'unregistered' | 'failed'
+    error: str | None = None
+    fields: dict | None = None          # name -> FieldDigits
+    page_png: bytes | None = None
+    field_png: dict = field(default_factory=dict)
+    box_px: dict = field(default_factory=dict)
+    residual_mm: float | None = None
+    rotated_180: bool | None = None
+    skew_deg: float | None = None
+    seconds: float = 0.0
+    stages: dict = field(default_factory=dict)
+
+
+_STATE: dict = {}
+
+
+def _init_imaging(layout_path: str, known: frozenset, pin_threads: bool) -> None:
+    """Worker start: load the layout once, remember the pages already read, one BLAS thread."""
+    import signal
+
+    if pin_threads:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)   # Ctrl-C is the main process's business
+        from threadpoolctl import threadpool_limits
+
+        _STATE["limits"] = threadpool_limits(limits=1)
+    _STATE["layout"] = load_layout(layout_path)
+    _STATE["known"] = known
+
+
+def _png(gray: np.ndarray, level: int = 1) -> bytes:
+    buf = io.BytesIO()
+    Image.fromarray(np.ascontiguousarray(gray, dtype=np.uint8)).save(buf, format="PNG", compress_level=level)
+    return buf.getvalue()
+
+
+def _page_png(gray: np.ndarray, dpi: float) -> tuple[bytes, float]:
+    """The page downscaled to about ``PAGE_DPI`` as PNG bytes, and the scale used (stored px per page px)."""
+    img = Image.fromarray(np.ascontiguousarray(gray, dtype=np.uint8))
+    factor = int(float(dpi) // PAGE_DPI) if dpi else 1
+    if factor >= 2:
+        img = img.reduce(factor)                    # box average over factor x factor pixels: fast and clean
+    buf = io.BytesIO()
+    img.save(buf, format="PNG", compress_level=1)
+    return buf.getvalue(), 1.0 / max(1, factor)
+
+
+def _box_px(matrix: np.ndarray, spec, scale: float) -> list[float]:
+    """Bounding box [x0, y0, x1, y1] on the stored page image of a field's rectangle (mm)."""
+    pts = np.array([[spec.x, spec.y, 1.0], [spec.x + spec.w, spec.y, 1.0],
+                    [spec.x, spec.y + spec.h, 1.0], [spec.x + spec.w, spec.y + spec.h, 1.0]])
+    px = pts @ np.asarray(matrix, dtype=np.float64).T * scale
+    return [float(px[:, 0].min()), float(px[:, 1].min()), float(px[:, 0].max()), float(px[:, 1].max())]
+
+
+def _image_one(page, layout, known) -> _Imaged:
+    t0 = time.perf_counter()
+    h = page_hash(page.gray)
+    base = dict(source=page.source, page_number=page.page_number, content_hash=h)
+    if h in known:
+        return _Imaged(status="known", **base)
+    stages: dict = {}
+    try:
+        pd = process_page(page, layout, timings=stages)
+    except RegistrationError as e:
+        png, _ = _page_png(page.gray, page.dpi)
+        return _Imaged(status="unregistered", error=_one_line(e), page_png=png,
+                       seconds=time.perf_counter() - t0, stages=stages, **base)
+    except FormreadError as e:
+        png, _ = _page_png(page.gray, page.dpi)
+        return _Imaged(status="failed", error=_one_line(e), page_png=png,
+                       seconds=time.perf_counter() - t0, stages=stages, **base)
+    reg = pd.registration
+    image = getattr(reg, "image", None)
+    png, scale = _page_png(image if image is not None else page.gray, page.dpi)
+    specs = {f.name: f for f in layout.fields}
+    box = {name: _box_px(reg.matrix, specs[name], scale) for name in pd.fields if name in specs}
+    field_png = {name: _png(fd.image) for name, fd in pd.fields.items() if fd.image is not None}
+    return _Imaged(status="ok", fields=dict(pd.fields), page_png=png, field_png=field_png, box_px=box,
+                   residual_mm=_opt(reg, "residual_mm"), rotated_180=_opt(reg, "rotated_180"),
+                   skew_deg=_opt(reg, "skew_deg"), seconds=time.perf_counter() - t0, stages=stages, **base)
+
+
+def _image_file(source: str, refusal: str | None) -> list[_Imaged]:
+    """Imaging step for every page of one file (runs in a worker process, or inline)."""
+    if refusal is not None:
+        return [_Imaged(source=source, page_number=1, content_hash=_file_failure_hash(source), status="failed",
+                        error=f"{source}: {refusal}")]
+    layout, known = _STATE["layout"], _STATE["known"]
+    out = []
+    t0 = time.perf_counter()
+    try:
+        for page in iter_pages(source):
+            out.append(_image_one(page, layout, known))
+            t0 = time.perf_counter()
+    except ImageError as e:
+        # pages decoded before the failure are kept; the rest of the file is one failed record
+        out.append(_Imaged(source=source, page_number=len(out) + 1, content_hash=_file_failure_hash(source),
+                           status="failed", error=_one_line(e), seconds=time.perf_counter() - t0))
+    return out
+
+
+def _opt(obj, name):
+    v = getattr(obj, name, None)
+    if v is None:
+        return None
+    return bool(v) if isinstance(v, (bool, np.bool_)) else float(v)
+
+
+def _one_line(e: BaseException) -> str:
+    s = str(e).strip()
+    return s.splitlines()[0] if s else e.__class__.__name__
+
+
+# ------------------------------------------------------------------------------------------ reading step
+def _digits_npz(fd, reading) -> bytes | None:
+    """The digit images of the reading, as ``.npz`` bytes: arrays ``digits`` (K, 1, 28, 28) float32
+    (one per character of the reading, in order) and ``positions`` (K,) int64 (rows of the chosen candidate)."""
+    i = getattr(reading, "candidate", None)
+    if not fd.candidates or i is None or not 0 <= i < len(fd.candidates):
+        return None
+    d = np.asarray(fd.candidates[i].digits, dtype=np.float32).reshape(-1, 1, 28, 28)
+    keep = np.asarray([p for p in (reading.positions or []) if 0 <= p < len(d)], dtype=np.int64)
+    buf = io.BytesIO()
+    np.savez_compressed(buf, digits=d[keep], positions=keep.astype(np.int64))
+    return buf.getvalue()
+
+
+def _field_row(name: str, kind: str, r, *, image_png=None, digits_npz=None, box_px=None) -> FieldRow:
+    return FieldRow(
+        name=name, kind=kind, reading=r.reading,
+        confidence=None if r.confidence is None else float(r.confidence),
+        decision=r.decision, reason=r.reason,
+        alternatives=[[str(s), round(float(p), 6)] for s, p in (r.alternatives or [])],
+        digit_probs=_jsonable(r.digit_probs or []),
+        rules={str(k): bool(v) for k, v in (r.rules or {}).items()},
+        box_px=box_px, image_png=image_png, digits_npz=digits_npz)
+
+
+def _jsonable(v):
+    if isinstance(v, np.ndarray):
+        return _jsonable(v.tolist())
+    if isinstance(v, (list, tuple)):
+        return [_jsonable(x) for x in v]
+    if isinstance(v, dict):
+        return {str(k): _jsonable(x) for k, x in v.items()}
+    if isinstance(v, (np.integer,)):
+        return int(v)
+    if isinstance(v, (np.floating, float)):
+        return round(float(v), 6)
+    return v
+
+
+class _Reader:
+    """The main process's half: network, decoding, ledger rows."""
+
+    def __init__(self, layout, compiled, model, temperature: float, threshold: float):
+        # the run's threshold stands in for the layout's (decode falls back on the layout's own)
+        self.layout, self.compiled = dataclasses.replace(layout, threshold=threshold), compiled
+        self.model, self.temperature, self.threshold = model, temperature, threshold
+        self.kinds = {f.name: f.kind for f in layout.fields}
+
+    def page_row(self, im: _Imaged, report: BatchReport) -> PageRow:
+        row = PageRow(content_hash=im.content_hash, source=im.source, page_number=im.page_number,
+                      status="read", error=im.error, residual_mm=im.residual_mm, rotated_180=im.rotated_180,
+                      skew_deg=im.skew_deg, image_png=im.page_png)
+        if im.status == "failed":
+            row.status = "failed"
+            return row
+        if im.status == "unregistered":
+            row.status = "unregistered"
+            readings = unregistered_page(self.layout)
+            row.fields = [_field_row(n, self.kinds.get(n, "open"), r) for n, r in readings.items()]
+            return row
+        t0 = time.perf_counter()
+        evidence = recognise_page(im.fields, self.model, temperature=self.temperature)
+        readings = decode_page(evidence, self.compiled, self.layout, threshold=self.threshold)
+        report.recognition_seconds += time.perf_counter() - t0
+        for name, r in readings.items():
+            fd = im.fields.get(name)
+            row.fields.append(_field_row(
+                name, self.kinds.get(name, getattr(fd, "kind", "open")), r,
+                image_png=im.field_png.get(name),
+                digits_npz=None if fd is None else _digits_npz(fd, r),
+                box_px=im.box_px.get(name)))
+        return row
+
+
+# ------------------------------------------------------------------------------------------ the job
+def _sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for chunk in iter(lambda: f.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def read_batch(inputs: Iterable, layout_path, outdir, *, model_path=None, threshold: float | None = None,
+               workers: int = 2, progress: Callable | None = None, command: str = "formread read"
+               ) -> BatchReport:
+    """Read scanned forms into the ledger of ``outdir``.
+
+    Parameters
+    ----------
+    inputs : paths of scan files or folders of scans
+    layout_path : the form's layout TOML
+    outdir : output folder (made when missing): ``ledger.sqlite``, ``pages/``, ``fields/``, ``digits/``,
+        ``readings.csv``, ``fields.jsonl``
+    model_path : model file; the shipped model by default
+    threshold : acceptance threshold; else the layout's ``threshold``, else 0.9
+    workers : processes for the imaging step (1 = all in this process)
+    progress : ``progress(done, total, **figures)`` called after every page
+    command : the command line, recorded in ``runs``
+
+    Returns
+    -------
+    BatchReport
+
+    Raises
+    ------
+    LedgerError, LayoutError, RuleError, ModelFileError, ImageError
+        Before any page is read: unusable output folder, layout, rules or model, or a missing input.
+    """
+    check_param(isinstance(workers, int) and workers >= 1, "workers", "an integer >= 1", workers)
+    check_param(threshold is None or (isinstance(threshold, (int, float)) and 0.0 < threshold <= 1.0),
+                "threshold", "a number in (0, 1]", threshold)
+    t_start = time.perf_counter()
+    layout_path = Path(layout_path)
+    layout = load_layout(layout_path)
+    compiled = compile_rules(layout)
+    model_path = Path(model_path) if model_path is not None else default_model_path()
+    model, header = load_model(model_path)
+    temperature = float(header.get("temperature", 1.0))
+    if threshold is None:
+        threshold = layout.threshold if layout.threshold is not None else DEFAULT_THRESHOLD
+    scans = list_scans(inputs)
+    ledger = open_ledger(outdir)
+    try:
+        run_id = ledger.start_run(layout_path=str(layout_path), layout_sha256=_sha256_file(layout_path),
+                                  model_path=str(model_path), model_sha256=str(header.get("sha256", "")),
+                                  threshold=float(threshold), command=command)
+        report = BatchReport(run_id=run_id, outdir=Path(outdir))
+        reader = _Reader(layout, compiled, model, temperature, float(threshold))
+        try:
+            _run(scans, layout_path, ledger, reader, report, workers, progress, t_start)
+            ledger.finish_run(run_id)
+        finally:
+            write_outputs(ledger)
+            report.seconds = time.perf_counter() - t_start
+    finally:
+        ledger.close()
+    return report
+
+
+def _run(scans, layout_path: Path, ledger: Ledger, reader: _Reader, report: BatchReport, workers: int,
+         progress, t_start: float) -> None:
+    known = ledger.known_pages()
+    done_hashes = {h for h, s in known.items() if s != "failed"}
+    total = len(scans)
+    seen_files = 0
+    pin = workers > 1
+    if not pin:
+        _init_imaging(str(layout_path), frozenset(done_hashes), False)
+        results = (_image_file(s, r) for s, r in scans)
+        pool = None
+    else:
+        ctx = multiprocessing.get_context("spawn")
+        pool = ProcessPoolExecutor(max_workers=min(workers, max(1, len(scans))), mp_context=ctx,
+                                   initializer=_init_imaging,
+                                   initargs=(str(layout_path), frozenset(done_hashes), True))
+        results = _ordered(pool, scans, window=4 * workers)
+    try:
+        for pages in results:
+            seen_files += 1
+            total += len(pages) - 1
+            for im in pages:
+                _one_page(im, known, ledger, reader, report)
+                if progress is not None:
+                    el = time.perf_counter() - t_start
+                    progress(report.pages, max(total, report.pages),
+                             pages_per_second=report.pages / el if el > 0 else 0.0,
+                             review=report.review, failed=len(report.problems))
+    finally:
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _ordered(pool: ProcessPoolExecutor, scans, window: int):
+    """Submit files to the pool at most ``window`` ahead; yield their results in input order."""
+    it = iter(scans)
+    pending: deque = deque()
+    for s, r in it:
+        pending.append(pool.submit(_image_file, s, r))
+        if len(pending) >= window:
+            break
+    while pending:
+        fut = pending.popleft()
+        res = fut.result()
+        nxt = next(it, None)
+        if nxt is not None:
+            pending.append(pool.submit(_image_file, *nxt))
+        yield res
+
+
+def _one_page(im: _Imaged, known: dict, ledger: Ledger, reader: _Reader, report: BatchReport) -> None:
+    report.pages += 1
+    report.imaging_seconds += im.seconds
+    for k, v in im.stages.items():
+        report.stages[k] = report.stages.get(k, 0.0) + float(v)
+    prior = known.get(im.content_hash)
+    if im.status == "known" or (prior is not None and prior != "failed"):
+        report.skipped += 1
+        if prior == "unregistered":
+            report.problems.append((im.source, im.page_number, prior, ledger.page_error(im.content_hash)))
+        return
+    row = reader.page_row(im, report)
+    t0 = time.perf_counter()
+    ledger.write_page(report.run_id, row)
+    report.writing_seconds += time.perf_counter() - t0
+    known[im.content_hash] = row.status
+    if row.status == "read":
+        report.read += 1
+    elif row.status == "unregistered":
+        report.unregistered += 1
+    else:
+        report.failed += 1
+    if row.status != "read":
+        report.problems.append((im.source, im.page_number, row.status, row.error))
+    report.fields += len(row.fields)
+    report.accepted += sum(f.decision == "accepted" for f in row.fields)
+    report.review += sum(f.decision != "accepted" for f in row.fields)

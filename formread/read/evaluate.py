@@ -1,0 +1,156 @@
+"""The ledger against known answers: scoring and threshold tuning of a read run.
+
+Ground truth is a ``truth.jsonl`` file (format and page matching in
+:mod:`formread.read.score`), or, for tuning, the fields a clerk has already
+reviewed (their final value of confirmed / corrected / empty fields).
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+
+from ..errors import DataError, LayoutError
+from .ledger import atomic_write, open_ledger
+from .score import score_readings, write_curve_png
+from .tune import choose_threshold
+
+__all__ = ["ledger_readings", "score_ledger", "tune_ledger", "store_threshold", "ELIGIBLE_REASONS",
+           "SUMMARY_KEYS"]
+
+ELIGIBLE_REASONS = (None, "low_confidence")
+"""Reasons under which a field's decision depends on the threshold alone (rules hold, segmentation sure)."""
+
+SUMMARY_KEYS = ("pages", "fields", "accepted", "review", "wrong_accepted", "error_among_accepted", "review_rate",
+                "field_accuracy_before_review", "digit_accuracy")
+"""Keys of the summary shared by ``formread score --json`` and ``formread demo --json``."""
+
+
+def ledger_readings(outdir) -> tuple[list[dict], dict | None]:
+    """Every field of the ledger as a reading record for :func:`formread.read.score.score_readings`.
+
+    Returns
+    -------
+    (records, last_run): records with ``source``, ``page_number``, ``field``, ``reading``,
+    ``confidence``, ``decision``, ``reason``, ``final_value``, ``final_status``; and the latest run row.
+
+    Raises
+    ------
+    LedgerError
+        No ledger in ``outdir``.
+    """
+    with open_ledger(outdir, create=False) as led:
+        rows = led.field_rows()
+        run = led.last_run()
+    recs = [{"source": r["source"], "page_number": r["page_number"], "field": r["name"], "reading": r["reading"],
+             "confidence": float(r["confidence"] or 0.0), "decision": r["decision"], "reason": r["reason"],
+             "final_value": r["final_value"], "final_status": r["final_status"]} for r in rows]
+    return recs, run
+
+
+def score_ledger(outdir, truth_path, *, curve_png=None, target: float = 0.005) -> dict:
+    """Score a read run (before any review) against a truth file.
+
+    Pages on one side only are recorded in the summary (``truth_pages_not_read``,
+    ``pages_not_in_truth``, ...), not errors; no page in common is a DataError.
+
+    Returns
+    -------
+    dict: ``ScoreReport.summary()`` (``pages``, ``fields``, ``accepted``, ``review``, ``wrong_accepted``,
+    ``error_among_accepted``, ``review_rate``, ``field_accuracy_before_review``, ``digit_accuracy``,
+    ``per_field``, ...) plus ``ledger`` and ``threshold`` (of the latest run).
+    """
+    recs, run = ledger_readings(outdir)
+    if not recs:
+        raise DataError(f"{outdir}: the ledger holds no field to score")
+    report = score_readings(recs, truth_path)
+    summary = report.summary()
+    summary["ledger"] = str(Path(outdir) / "ledger.sqlite")
+    summary["threshold"] = None if run is None else float(run["threshold"])
+    if curve_png is not None:
+        write_curve_png(curve_png, report.curve(), threshold=summary["threshold"], target=target)
+        summary["curve"] = str(curve_png)
+    return summary
+
+
+def tune_ledger(outdir, truth_path=None, *, target: float = 0.005, criterion: str = "estimate") -> dict:
+    """Choose the acceptance threshold of a read run from known answers.
+
+    With ``truth_path`` every field of the pages in the truth is used; without it, the
+    fields a clerk has confirmed, corrected or marked empty (truth = their final value).
+
+    Returns
+    -------
+    dict with ``threshold``, ``review_rate``, ``error_among_accepted``, ``error_upper_95``
+    (one-sided Clopper-Pearson), ``accepted``, ``wrong_accepted``, ``fields``, ``target``,
+    ``target_met``, ``truth_source``, ``truth_pages_not_read``.
+
+    Raises
+    ------
+    DataError
+        No field with a known answer.
+    """
+    recs, _ = ledger_readings(outdir)
+    missing = 0
+    if truth_path is not None:
+        report = score_readings(recs, truth_path)
+        res = report.tune(target=target, criterion=criterion)
+        source = str(truth_path)
+        missing = len(report.truth_pages_not_read)
+    else:
+        done = [r for r in recs if r["final_status"] in ("confirmed", "corrected", "empty")]
+        if not done:
+            raise DataError(f"{outdir}: no reviewed field to tune on (confirm or correct fields first, "
+                            "or give --truth)")
+        res = choose_threshold([r["confidence"] for r in done],
+                               [r["reading"] is not None and r["reading"] == (r["final_value"] or "") for r in done],
+                               [r["decision"] == "accepted" or r["reason"] in ELIGIBLE_REASONS for r in done],
+                               target=target, criterion=criterion)
+        source = "the clerk's reviewed fields"
+    return {"threshold": float(res.threshold), "review_rate": float(res.review_rate),
+            "error_among_accepted": float(res.error_among_accepted), "error_upper_95": float(res.upper_bound),
+            "accepted": int(res.accepted), "wrong_accepted": int(res.wrong_accepted), "fields": int(res.fields),
+            "target": float(target), "target_met": bool(res.met), "truth_source": source,
+            "truth_pages_not_read": missing}
+
+
+_TABLE = re.compile(r"^\s*\[")
+_THRESHOLD = re.compile(r"^(\s*)threshold\s*=.*$")
+
+
+def store_threshold(layout_path, threshold: float) -> None:
+    """Set ``[form] threshold`` in a layout file, keeping everything else (comments too); atomic.
+
+    Raises
+    ------
+    LayoutError
+        The file cannot be read, has no ``[form]`` table, or would no longer parse.
+    """
+    from ..imaging.layout import parse_layout
+
+    path = Path(layout_path)
+    try:
+        lines = path.read_text(encoding="utf-8").splitlines()
+    except OSError as e:
+        raise LayoutError(f"{path}: cannot be read ({e.strerror or e})") from None
+    start = next((i for i, s in enumerate(lines) if s.strip() == "[form]"), None)
+    if start is None:
+        raise LayoutError(f"{path}: no [form] table to store the threshold in")
+    end = next((i for i in range(start + 1, len(lines)) if _TABLE.match(lines[i])), len(lines))
+    threshold = min(1.0, float(threshold))
+    value = f"threshold = {round(threshold, 6)!r}"
+    for i in range(start + 1, end):
+        m = _THRESHOLD.match(lines[i])
+        if m:
+            lines[i] = m.group(1) + value + "    # chosen by formread tune"
+            break
+    else:
+        last = end
+        while last > start + 1 and not lines[last - 1].strip():
+            last -= 1
+        lines.insert(last, value + "    # chosen by formread tune")
+    text = "\n".join(lines) + "\n"
+    layout = parse_layout(text, str(path))
+    if layout.threshold is None or abs(layout.threshold - float(threshold)) > 1e-6:
+        raise LayoutError(f"{path}: the threshold could not be stored")
+    atomic_write(path, text.encode("utf-8"))
