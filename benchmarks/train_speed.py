@@ -1,0 +1,204 @@
+"""Training and inference speed of the pure-numpy network ("lenet5" on 28x28 inputs).
+
+Prints images per second for training (batch 32, 64, 128; forward, loss, backward and an SGD
+momentum step), inference (batch 256) and single-image latency; FLOPs per image and the share of
+the machine's measured float32 matmul peak. When PyTorch is importable, the same architecture,
+batch and thread count in PyTorch, and the ratio numpy / PyTorch.
+
+Each figure is the best of several short timing windows, so that other work on the machine
+disturbs it less. ``--json`` prints one JSON object:
+{"numpy": {...}, "pytorch": {...} or null, "ratio": {"train_b64", "train_b128", "infer_b256"},
+ "peak_gflops": g}.
+
+Usage: python benchmarks/train_speed.py [--json] [--seconds S] [--threads T]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+
+import numpy as np
+from threadpoolctl import threadpool_limits
+
+from formread.nn.model import ARCHITECTURES, build_model
+from formread.nn.optim import SGD
+from formread.nn.parallel import DataParallel
+
+ARCH = "lenet5"
+TRAIN_BATCHES = (32, 64, 128)
+INFER_BATCH = 256
+
+
+def best_rate(step, images_per_call: int, seconds: float, windows: int = 5) -> float:
+    """Best images/s over ``windows`` timing windows of seconds / windows each (after a warm-up)."""
+    step()
+    best = 0.0
+    for _ in range(windows):
+        t0 = time.perf_counter()
+        calls = 0
+        while True:
+            step()
+            calls += 1
+            dt = time.perf_counter() - t0
+            if dt >= seconds / windows:
+                break
+        best = max(best, calls * images_per_call / dt)
+    return best
+
+
+def median_ms(fn, repeats: int = 200) -> float:
+    fn()
+    times = []
+    for _ in range(repeats):
+        t0 = time.perf_counter()
+        fn()
+        times.append(time.perf_counter() - t0)
+    return float(np.median(times) * 1e3)
+
+
+def flops_per_image(spec: list[dict], size: int = 28) -> tuple[float, float]:
+    """(forward FLOPs, training FLOPs) per image: 2 per multiply-add in conv and dense layers.
+    Training adds the weight gradient (same as forward) and the input gradient (same as forward)
+    of every weighted layer but the first, whose input gradient is not needed."""
+    h = w = size
+    fwd, train, first = 0.0, 0.0, True
+    for e in spec:
+        t = e["type"]
+        if t == "conv2d":
+            k, s, p = e["kernel"], e.get("stride", 1), e.get("padding", 0)
+            h, w = (h + 2 * p - k) // s + 1, (w + 2 * p - k) // s + 1
+            f = 2.0 * e["out"] * e["in"] * k * k * h * w
+        elif t == "dense":
+            f = 2.0 * e["in"] * e["out"]
+        else:
+            if t in ("maxpool", "avgpool"):
+                k, s = e.get("size", 2), e.get("stride") or e.get("size", 2)
+                h, w = (h - k) // s + 1, (w - k) // s + 1
+            continue
+        fwd += f
+        train += f * (2 if first else 3)
+        first = False
+    return fwd, train
+
+
+def peak_gflops(threads: int, seconds: float) -> float:
+    """Measured float32 matmul rate (GFLOP/s) of a 2048 x 2048 product with ``threads`` BLAS threads."""
+    a = np.random.default_rng(0).random((2048, 2048), dtype=np.float32)
+    out = np.empty_like(a)
+    with threadpool_limits(threads):
+        rate = best_rate(lambda: np.matmul(a, a, out=out), 1, seconds, windows=5)
+    return rate * 2 * 2048 ** 3 / 1e9
+
+
+def bench_numpy(threads: int, seconds: float) -> dict:
+    rng = np.random.default_rng(0)
+    model = build_model(ARCH, rng)
+    opt = SGD(model.parameters(), lr=0.01, momentum=0.9)
+    res = {}
+    for b in TRAIN_BATCHES:
+        x = rng.random((b, 1, 28, 28), dtype=np.float32)
+        y = rng.integers(0, 10, b)
+
+        def step():
+            model.grad_step(x, y)
+            opt.step()
+        with threadpool_limits(threads):
+            res[f"train_1proc_b{b}"] = best_rate(step, b, seconds)
+        if threads >= 2:
+            with DataParallel(model) as dp:
+                def pstep():
+                    dp.grad_step(x, y)
+                    opt.step()
+                res[f"train_2proc_b{b}"] = best_rate(pstep, b, seconds)
+        res[f"train_b{b}"] = max(res[f"train_1proc_b{b}"], res.get(f"train_2proc_b{b}", 0.0))
+    x = rng.random((INFER_BATCH, 1, 28, 28), dtype=np.float32)
+    x1 = x[:1].copy()
+    for t in sorted({1, threads}):
+        with threadpool_limits(t):
+            res[f"infer_b{INFER_BATCH}_{t}thread"] = best_rate(
+                lambda: model.predict_proba(x, batch_size=INFER_BATCH), INFER_BATCH, seconds)
+    res[f"infer_b{INFER_BATCH}"] = max(res[f"infer_b{INFER_BATCH}_{t}thread"] for t in {1, threads})
+    with threadpool_limits(1):
+        res["latency_ms"] = median_ms(lambda: model.predict_proba(x1))
+    return res
+
+
+def bench_torch(threads: int, seconds: float) -> dict | None:
+    try:
+        import torch
+    except ImportError:
+        return None
+    torch.set_num_threads(threads)
+    torch.manual_seed(0)
+    nn = torch.nn
+    model = nn.Sequential(
+        nn.Conv2d(1, 6, 5, padding=2), nn.ReLU(), nn.MaxPool2d(2),
+        nn.Conv2d(6, 16, 5), nn.ReLU(), nn.MaxPool2d(2), nn.Flatten(),
+        nn.Linear(400, 120), nn.ReLU(), nn.Linear(120, 84), nn.ReLU(), nn.Linear(84, 10))
+    opt = torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9)
+    res = {"version": torch.__version__, "threads": threads}
+    for b in TRAIN_BATCHES:
+        x = torch.rand(b, 1, 28, 28)
+        y = torch.randint(0, 10, (b,))
+
+        def step():
+            opt.zero_grad()
+            torch.nn.functional.cross_entropy(model(x), y).backward()
+            opt.step()
+        res[f"train_b{b}"] = best_rate(step, b, seconds)
+    x = torch.rand(INFER_BATCH, 1, 28, 28)
+    x1 = x[:1].clone()
+    with torch.inference_mode():
+        res[f"infer_b{INFER_BATCH}"] = best_rate(lambda: torch.softmax(model(x), 1), INFER_BATCH, seconds)
+        res["latency_ms"] = median_ms(lambda: torch.softmax(model(x1), 1))
+    return res
+
+
+def main(argv=None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--json", action="store_true", help="print one JSON object")
+    ap.add_argument("--seconds", type=float, default=2.0, help="timing time per figure")
+    ap.add_argument("--threads", type=int, default=min(os.cpu_count() or 1, 2),
+                    help="cores to use (numpy: processes/BLAS threads; PyTorch: set_num_threads)")
+    args = ap.parse_args(argv)
+    peak = peak_gflops(args.threads, args.seconds)
+    res_np = bench_numpy(args.threads, args.seconds)
+    res_t = bench_torch(args.threads, args.seconds)
+    fwd, train = flops_per_image(ARCHITECTURES[ARCH])
+    res_np["flops_per_image_forward"] = fwd
+    res_np["flops_per_image_train"] = train
+    res_np["peak_fraction_train_b128"] = res_np["train_b128"] * train / (peak * 1e9)
+    res_np["peak_fraction_infer_b256"] = res_np["infer_b256"] * fwd / (peak * 1e9)
+    keys = ("train_b64", "train_b128", f"infer_b{INFER_BATCH}")
+    ratio = {k: (res_np[k] / res_t[k] if res_t else None) for k in keys}
+    out = {"numpy": res_np, "pytorch": res_t, "ratio": ratio, "peak_gflops": peak,
+           "architecture": ARCH, "threads": args.threads}
+    if args.json:
+        print(json.dumps(out))
+        return 0
+    print(f"architecture {ARCH}, 28x28 inputs, {args.threads} core(s); best of 5 timing windows")
+    print(f"matmul peak (float32, 2048^3, {args.threads} threads): {peak:.1f} GFLOP/s")
+    print(f"FLOPs per image: forward {fwd / 1e6:.3f} M, training {train / 1e6:.3f} M")
+    print(f"{'':24}{'numpy':>12}{'pytorch':>12}{'ratio':>8}")
+    for k in [f"train_b{b}" for b in TRAIN_BATCHES] + [f"infer_b{INFER_BATCH}", "latency_ms"]:
+        t = res_t[k] if res_t else None
+        r = "" if not t else f"{res_np[k] / t:8.2f}" if k != "latency_ms" else f"{t / res_np[k]:8.2f}"
+        unit = "ms" if k == "latency_ms" else "img/s"
+        print(f"{k + ' (' + unit + ')':24}{res_np[k]:12.1f}{(t if t else float('nan')):12.1f}{r}")
+    for b in TRAIN_BATCHES:
+        if f"train_2proc_b{b}" in res_np:
+            print(f"  numpy train_b{b}: 1 process {res_np[f'train_1proc_b{b}']:.0f}, "
+                  f"2 processes {res_np[f'train_2proc_b{b}']:.0f} img/s")
+    print(f"numpy share of matmul peak: training b128 {res_np['peak_fraction_train_b128']:.2f}, "
+          f"inference b256 {res_np['peak_fraction_infer_b256']:.2f}")
+    if res_t is None:
+        print("PyTorch not importable: no comparison")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())
