@@ -100,9 +100,9 @@
     fillSelect($("f-name"), r.data.filters.names, "all fields", null);
     fillSelect($("f-reason"), r.data.filters.reasons, "all reasons", reasonWords);
     const filtered = $("f-name").value || $("f-reason").value;
-    let text = state.ids.length + (state.ids.length === 1 ? " field" : " fields") + " left to check";
+    let text = state.ids.length + " left to check";
     if (filtered) text += " (" + r.data.filters.total + " in all)";
-    text += " · " + state.saved + " saved in this session";
+    text += " · " + state.saved + " saved";
     $("left").textContent = text;
     return true;
   }
