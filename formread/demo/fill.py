@@ -73,8 +73,8 @@ def random_writer(rng: np.random.Generator) -> Writer:
         ink=float(rng.uniform(10, 75)),
         weight=float(rng.uniform(0.22, 0.45)),
         bias=(float(rng.normal(0, 0.04)), float(rng.normal(0, 0.04))),
-        sloppy=float(rng.choice([0.02, 0.06, 0.15], p=[0.5, 0.35, 0.15])),
-        touch=float(rng.uniform(0.08, 0.4)),
+        sloppy=float(rng.choice([0.01, 0.04, 0.10], p=[0.5, 0.35, 0.15])),
+        touch=float(rng.uniform(0.05, 0.3)),
     )
 
 
@@ -162,7 +162,7 @@ def write_field(page: np.ndarray, fld: CardField, text: str, writer: Writer, ban
                 if rng.random() < 0.5:
                     size, max_w = rng.uniform(0.92, 1.05), 1.1
                 else:
-                    dx += rng.choice([-1, 1]) * rng.uniform(0.15, 0.3)
+                    dx += rng.choice([-1, 1]) * rng.uniform(0.12, 0.25)
                     dy += rng.choice([-1, 1]) * rng.uniform(0.0, 0.12)
             g = _glyph(bank, int(ch_digit), writer, size * ch, rng, max_width_px=max_w * cw)
             cx = px(fld.x) + (k + 0.5 + dx) * cw
@@ -177,5 +177,5 @@ def write_field(page: np.ndarray, fld: CardField, text: str, writer: Writer, ban
         g = _glyph(bank, int(ch_digit), writer, writer.size_open * fh * (1 + rng.normal(0, 0.04)), rng)
         mid += px(float(rng.normal(0, 0.25)))
         _stamp(page, g, round(mid - g.shape[0] / 2), round(cursor), ink())
-        gap = rng.uniform(-0.7, 0.0) if rng.random() < writer.touch else rng.normal(1.1, 0.35)
+        gap = rng.uniform(-0.4, 0.1) if rng.random() < writer.touch else rng.normal(1.1, 0.35)
         cursor += g.shape[1] + px(float(gap))
