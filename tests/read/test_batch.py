@@ -1,0 +1,150 @@
+"""The batch job on real pages: failures recorded, the rest read, reruns skip, outputs agree with the ledger."""
+
+import csv
+import shutil
+import sqlite3
+
+import numpy as np
+import pytest
+from PIL import Image
+from readkit import demo_layout, readings, tiny_model, write_copies
+
+import formread.read.batch as batch
+from formread.read.batch import list_scans, read_batch
+
+
+@pytest.fixture(scope="module")
+def model(tmp_path_factory):
+    return tiny_model(tmp_path_factory.mktemp("model") / "tiny.npz")
+
+
+def _rows(out, sql):
+    conn = sqlite3.connect(out / "ledger.sqlite")
+    try:
+        return conn.execute(sql).fetchall()
+    finally:
+        conn.close()
+
+
+def test_mixed_folder_failures_recorded_rest_read_then_rerun_skips(tmp_path, model):
+    scans = tmp_path / "scans"
+    write_copies(scans, 3)
+    (scans / "notes.txt").write_text("not a page")
+    (scans / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n" + b"garbage" * 20)
+    Image.fromarray(np.full((600, 420), 255, np.uint8)).save(scans / "white.png", dpi=(50, 50))
+    out = tmp_path / "out"
+    rep = read_batch([scans], demo_layout(), out, model_path=model, workers=1)
+    assert (rep.pages, rep.read, rep.failed, rep.unregistered) == (6, 3, 2, 1)
+    assert not rep.all_read
+    status = dict(_rows(out, "SELECT source, status FROM pages"))
+    assert status[str(scans / "notes.txt")] == "failed"
+    assert status[str(scans / "broken.png")] == "failed"
+    assert status[str(scans / "white.png")] == "unregistered"
+    errors = dict(_rows(out, "SELECT source, error FROM pages WHERE status != 'read'"))
+    assert "not a scan" in errors[str(scans / "notes.txt")]
+    assert errors[str(scans / "broken.png")].startswith(str(scans / "broken.png"))
+    # an unregistered page: every field to review, no reading
+    unreg = _rows(out, "SELECT f.reading, f.decision, f.reason FROM fields f JOIN pages p ON p.id = f.page_id "
+                       "WHERE p.status = 'unregistered'")
+    assert len(unreg) == 6 and set(unreg) == {(None, "review", "page_not_registered")}
+    # every read page has all its fields, its page image and its crops
+    n_fields = _rows(out, "SELECT p.id, count(f.id) FROM pages p LEFT JOIN fields f ON f.page_id = p.id "
+                          "WHERE p.status = 'read' GROUP BY p.id")
+    assert [n for _, n in n_fields] == [6, 6, 6]
+    for (img,) in _rows(out, "SELECT image_path FROM pages WHERE status = 'read'"):
+        assert (out / img).is_file()
+    csv_rows = list(csv.DictReader((out / "readings.csv").read_text().splitlines()))
+    assert len(csv_rows) == 6
+    assert len((out / "fields.jsonl").read_text().splitlines()) == 4 * 6
+
+    before = readings(out)
+    rep2 = read_batch([scans], demo_layout(), out, model_path=model, workers=1)
+    assert (rep2.read, rep2.skipped, rep2.failed, rep2.unregistered) == (0, 4, 2, 0)
+    assert len(rep2.problems) == 3                      # still tells about the unregistered page
+    assert _rows(out, "SELECT count(*) FROM pages") == [(6,)]
+    assert readings(out) == before
+    assert _rows(out, "SELECT count(*) FROM runs WHERE finished IS NOT NULL") == [(2,)]
+
+
+def test_same_pixels_in_two_files_are_read_once(tmp_path, model):
+    scans = tmp_path / "scans"
+    a = write_copies(scans, 1)[0]
+    shutil.copy(a, scans / "zz_copy.png")
+    rep = read_batch([scans], demo_layout(), tmp_path / "out", model_path=model, workers=1)
+    assert (rep.read, rep.skipped) == (1, 1)
+
+
+def test_threshold_from_option_else_layout_else_default(tmp_path, model):
+    scans = write_copies(tmp_path / "scans", 1)
+    read_batch(scans, demo_layout(), tmp_path / "a", model_path=model, threshold=0.42, workers=1)
+    text = demo_layout().read_text()
+    no_thr = tmp_path / "plain.toml"
+    no_thr.write_text("\n".join(line for line in text.splitlines() if not line.startswith("threshold")) + "\n")
+    read_batch(scans, no_thr, tmp_path / "b", model_path=model, workers=1)
+    from formread.imaging.layout import load_layout
+
+    layout_thr = load_layout(demo_layout()).threshold
+    read_batch(scans, demo_layout(), tmp_path / "c", model_path=model, workers=1)
+    assert _rows(tmp_path / "a", "SELECT threshold, model_path FROM runs") == [(0.42, str(model))]
+    assert _rows(tmp_path / "b", "SELECT threshold FROM runs") == [(0.9,)]
+    assert _rows(tmp_path / "c", "SELECT threshold FROM runs") == [(layout_thr,)]
+
+
+def test_digit_images_follow_the_reading(tmp_path, model):
+    scans = write_copies(tmp_path / "scans", 1)
+    out = tmp_path / "out"
+    read_batch(scans, demo_layout(), out, model_path=model, workers=1)
+    rows = _rows(out, "SELECT reading, digits_path, image_path, box_px FROM fields")
+    assert rows
+    for reading, digits_path, image_path, box in rows:
+        assert (out / image_path).is_file() and box is not None
+        if reading:
+            with np.load(out / digits_path, allow_pickle=False) as z:
+                assert z["digits"].shape == (len(reading), 1, 28, 28)
+                assert z["digits"].dtype == np.float32
+
+
+def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, model, monkeypatch):
+    scans = write_copies(tmp_path / "scans", 4)
+    out = tmp_path / "out"
+    real = batch.decode_page
+    calls = []
+
+    def flaky(*a, **k):
+        calls.append(1)
+        if len(calls) == 3:
+            raise RuntimeError("injected bug")
+        return real(*a, **k)
+
+    monkeypatch.setattr(batch, "decode_page", flaky)
+    with pytest.raises(RuntimeError, match="injected"):
+        read_batch(scans, demo_layout(), out, model_path=model, workers=1)
+    assert _rows(out, "SELECT count(*) FROM pages") == [(2,)]
+    assert _rows(out, "SELECT count(*) FROM fields") == [(12,)]
+    assert len(list(csv.DictReader((out / "readings.csv").read_text().splitlines()))) == 2
+    monkeypatch.setattr(batch, "decode_page", real)
+    rep = read_batch(scans, demo_layout(), out, model_path=model, workers=1)
+    assert (rep.read, rep.skipped) == (2, 2)
+    assert _rows(out, "SELECT count(*) FROM pages") == [(4,)]
+
+
+def test_worker_processes_read_the_same_as_one_process(tmp_path, model):
+    scans = write_copies(tmp_path / "scans", 4)
+    read_batch(scans, demo_layout(), tmp_path / "one", model_path=model, workers=1)
+    rep = read_batch(scans, demo_layout(), tmp_path / "two", model_path=model, workers=2)
+    assert rep.read == 4 and rep.imaging_seconds > 0
+    assert readings(tmp_path / "one") == readings(tmp_path / "two")
+
+
+def test_list_scans_refuses_missing_inputs_and_sorts_folders(tmp_path):
+    (tmp_path / "b.png").write_bytes(b"")
+    (tmp_path / "a.TIF").write_bytes(b"")
+    (tmp_path / ".hidden").write_bytes(b"")
+    (tmp_path / "c.doc").write_bytes(b"")
+    got = list_scans([tmp_path])
+    assert [(p.rsplit("/", 1)[1], r is None) for p, r in got] == [("a.TIF", True), ("b.png", True),
+                                                                  ("c.doc", False)]
+    from formread.errors import ImageError
+
+    with pytest.raises(ImageError, match="no such file or folder"):
+        list_scans([tmp_path / "nope"])
