@@ -415,13 +415,13 @@ def _final(action: str, value: str | None, reading: str | None, name: str, limit
         return "empty", "", "empty"
     if action == "confirm":
         if reading is None or reading == "":
-            raise InvalidValue(where, f"there is no proposed reading to keep; type the value or mark the field")
+            raise InvalidValue(where, "there is no proposed reading to keep; type the value or mark the field")
         value = reading
     if not isinstance(value, str):
-        raise InvalidValue(where, f"the value must be a string of digits")
+        raise InvalidValue(where, "the value must be a string of digits")
     value = value.strip()
     if value == "":
-        raise InvalidValue(where, f"no value typed; type the digits, or mark the field blank or unreadable")
+        raise InvalidValue(where, "no value typed; type the digits, or mark the field blank or unreadable")
     if not _DIGITS.match(value):
         raise InvalidValue(where, f"field {name!r} holds digits only; got {value[:40]!r}")
     if len(value) > limit:
@@ -452,7 +452,7 @@ def save_decision(conn: sqlite3.Connection, outdir: str | Path, field_id: int, *
     """
     where = f"{ledger_path(outdir)}: field {field_id}"
     if not isinstance(reviewer, str) or not reviewer.strip():
-        raise InvalidValue(where, f"a reviewer name is needed for the audit trail")
+        raise InvalidValue(where, "a reviewer name is needed for the audit trail")
     if isinstance(version, bool) or not isinstance(version, int):
         raise InvalidValue(where, f"version must be an integer; got {version!r}")
     at = at or utc_now()

@@ -146,6 +146,12 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             expect(name).to_have_text("reading_date")
             expect(page.locator("#field-where")).to_contain_text("page 3")
             assert page.evaluate("document.activeElement.id") == "value"
+
+            # the filters narrow the list
+            page.select_option("#f-name", "litres_used")
+            expect(left).to_contain_text("1 left to check (4 in all)")
+            expect(name).to_have_text("litres_used")
+            assert page.evaluate("document.activeElement.id") == "value"
         finally:
             browser.close()
 

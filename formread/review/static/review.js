@@ -128,7 +128,9 @@
     state.current = null;
     $("card").hidden = true;
     $("done").hidden = false;
-    $("done-text").textContent = state.saved + " saved in this session. Press B to go back to the last one.";
+    const filtered = $("f-name").value || $("f-reason").value;
+    $("done-text").textContent = (filtered ? "Nothing left for this choice of field and reason; choose " +
+      "\u201call\u201d to see the rest. " : "") + state.saved + " saved in this session. Press B to go back.";
     renderPage();
   }
 
