@@ -9,26 +9,40 @@ a per-layer ``Scratch`` so a training loop does not allocate them again on every
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
 
 class Scratch:
-    """Reusable work arrays, keyed by purpose; reallocated only when shape or dtype changes."""
+    """Reusable work arrays, keyed by purpose; reallocated only when shape or dtype changes.
+
+    Kept per thread, so that several threads may run inference on one model at the same time.
+    """
 
     def __init__(self):
-        self._arrays: dict[str, np.ndarray] = {}
+        self._local = threading.local()
+
+    @property
+    def _arrays(self) -> dict[str, np.ndarray]:
+        arrays = getattr(self._local, "arrays", None)
+        if arrays is None:
+            arrays = self._local.arrays = {}
+        return arrays
 
     def get(self, key: str, shape: tuple, dtype, zero: bool = False) -> np.ndarray:
-        a = self._arrays.get(key)
+        arrays = self._arrays
+        a = arrays.get(key)
         if a is None or a.shape != shape or a.dtype != dtype:
             a = np.zeros(shape, dtype=dtype)
-            self._arrays[key] = a
+            arrays[key] = a
         elif zero:
             a.fill(0)
         return a
 
     def clear(self) -> None:
+        """Free this thread's work arrays."""
         self._arrays.clear()
 
 

@@ -118,11 +118,16 @@ class Conv2D(Layer):
         return {"type": self.kind, "in": self.in_ch, "out": self.out_ch, "kernel": self.kernel,
                 "stride": self.stride, "padding": self.padding}
 
-    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+    def check_input(self, x: np.ndarray) -> None:
+        """Raise ParameterError unless x (internal layout (C, H, W, N)) fits this layer."""
         k, p = self.kernel, self.padding
         check_param(x.ndim == 4 and x.shape[0] == self.in_ch and min(x.shape[1:3]) + 2 * p >= k,
-                    "x", f"of shape (N, {self.in_ch}, H, W) with H, W >= {k - 2 * p}",
+                    "x", f"of shape (N, {self.in_ch}, H, W) with H, W >= {max(k - 2 * p, 1)}",
                     (x.shape[-1],) + x.shape[:-1])
+
+    def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
+        self.check_input(x)
+        k, p = self.kernel, self.padding
         y, cols = _conv.conv_forward(x, self.weight.value, self.bias.value, self.stride, p,
                                      self._scratch)
         self._cache = (cols, x.shape)
@@ -295,7 +300,7 @@ class Flatten(Layer):
 
     def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         self._shape = x.shape
-        return x.reshape(-1, x.shape[-1])
+        return x.reshape(int(np.prod(x.shape[:-1])), x.shape[-1])
 
     def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
         return dy.reshape(self._shape)

@@ -76,6 +76,7 @@ class _ConvReluPool:
 
     def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         conv, k = self.conv, self.pool.size
+        conv.check_input(x)
         z, cols = _conv.conv_forward(x, conv.weight.value, None, conv.stride, conv.padding,
                                      conv._scratch)
         a, args = _conv.maxpool_tiled_forward(z, k)

@@ -253,3 +253,22 @@ def test_fused_conv_relu_pool_equals_separate_layers():
     np.testing.assert_allclose(g, dx, rtol=1e-10, atol=1e-14)
     for p, f in zip(model.parameters(), fused):
         np.testing.assert_allclose(p.grad, f, rtol=1e-10, atol=1e-14)
+
+
+@pytest.mark.parametrize("shape", [(2, 3, 28, 28), (2, 1, 8, 8), (2, 28, 28), (2, 1, 20, 20)])
+def test_wrong_input_shapes_raise_parameter_error(shape):
+    model = build_model("lenet5", np.random.default_rng(0))
+    with pytest.raises(ParameterError):
+        model.forward(np.zeros(shape, dtype=np.float32))
+
+
+def test_empty_batch_and_threads_share_a_model():
+    from concurrent.futures import ThreadPoolExecutor
+    model = build_model("lenet5", np.random.default_rng(0))
+    assert model.forward(np.zeros((0, 1, 28, 28), dtype=np.float32)).shape == (0, 10)
+    xs = [np.random.default_rng(i).random((40 + i, 1, 28, 28), dtype=np.float32) for i in range(6)]
+    serial = [model.predict_proba(x) for x in xs]
+    with ThreadPoolExecutor(3) as pool:
+        threaded = list(pool.map(model.predict_proba, xs))
+    for a, b in zip(serial, threaded):
+        np.testing.assert_array_equal(a, b)
