@@ -7,6 +7,7 @@ one layout serves scans at any dpi. ``parse_layout`` checks everything it can an
 
 from __future__ import annotations
 
+import itertools
 import json
 import math
 import re
@@ -188,6 +189,7 @@ class _Checker:
 
     def __init__(self, source: str):
         self.source = source
+        self.marks_seen: tuple[Mark, ...] = ()
 
     def fail(self, where: str, problem: str):
         raise LayoutError(f"{self.source}: {where}: {problem}")
@@ -275,6 +277,7 @@ class _Checker:
         header = self.table(form, "header", "[form]", required=False)
         header = None if header is None else self.region(header, "[form.header]", W, H)
         marks = self.marks(doc.get("marks"), W, H)
+        self.marks_seen = marks
         fields = self.fields(doc.get("fields"), W, H)
         relations = self.relations(doc.get("relations"))
         return Layout(name=name, width_mm=W, height_mm=H, marks=marks, fields=fields,
@@ -299,6 +302,16 @@ class _Checker:
             out.append(m)
         if len(out) < 3:
             self.fail("marks", f"at least 3 registration marks are needed; got {len(out)}")
+        for i, m in enumerate(out, 1):
+            for j, n in enumerate(out[:i - 1], 1):
+                if _overlap(_mark_region(m), _mark_region(n)):
+                    self.fail(f"mark {i}", f"overlaps mark {j}")
+        # Three marks on one line cannot fix an affine transform: ask for a spread-out triangle.
+        pts = [(m.x, m.y) for m in out]
+        area = max(abs((b[0] - a[0]) * (c[1] - a[1]) - (c[0] - a[0]) * (b[1] - a[1])) / 2
+                   for a, b, c in itertools.combinations(pts, 3))
+        if area < 0.05 * W * H:
+            self.fail("marks", "the marks lie (nearly) on one line; put them in three or four corners of the page")
         return tuple(out)
 
     def fields(self, v, W: float, H: float) -> tuple[FieldSpec, ...]:
@@ -340,6 +353,9 @@ class _Checker:
             for g in out:
                 if _overlap(f.region, g.region):
                     self.fail(where, f"overlaps field {g.name!r}")
+            for j, m in enumerate(self.marks_seen, 1):
+                if _overlap(f.region, _mark_region(m)):
+                    self.fail(where, f"covers registration mark {j}")
             out.append(f)
         return tuple(out)
 
@@ -352,6 +368,10 @@ class _Checker:
                 self.fail(f"relation {i}", "'rule' is empty")
             out.append(rule)
         return tuple(out)
+
+
+def _mark_region(m: Mark) -> Region:
+    return Region(m.x - m.size / 2, m.y - m.size / 2, m.size, m.size)
 
 
 def _overlap(a: Region, b: Region) -> bool:

@@ -378,7 +378,8 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
             raise RegistrationError(f"{where}: only {len(blobs)} of the layout's {len(layout.marks)} registration "
                                     f"marks found (3 are needed; covered, cut off or not printed?)")
         raise RegistrationError(f"{where}: registration marks not found: {len(blobs)} solid squares seen, but no "
-                                f"3 of them sit where the layout's {len(layout.marks)} marks are (wrong layout?)")
+                                f"3 of them sit where the layout's {len(layout.marks)} marks are (wrong layout, or a "
+                                f"wrong resolution: {page.dpi:g} dpi?)")
     most = max(len(v.marks) for v in cand.values())
     cand = {k: v for k, v in cand.items() if len(v.marks) == most}
     if len(cand) == 2:
