@@ -28,6 +28,7 @@ from .values import MISTAKE_KINDS, card_values
 __all__ = ["make_demo", "demo_layout_path", "TRUTH_NAME", "LAYOUT_NAME"]
 
 TRUTH_NAME = "truth.jsonl"
+PART_NAME = "truth.jsonl.part"
 LAYOUT_NAME = "layout.toml"
 _PDF_DATE = time.struct_time((2026, 1, 1, 0, 0, 0, 3, 1, 0))   # fixed, so the bytes repeat
 _NOISE = {"jpeg": (0.5, 1.5), "pdf": (0.5, 1.5), "png": (0.0, 0.0), "tiff": (1.0, 3.0)}
@@ -79,27 +80,38 @@ def _plan(count: int, rng: np.random.Generator) -> list[_File]:
     return files
 
 
+def _sources(path: Path, *, strict: bool) -> set[str]:
+    """File names listed in a truth file; a partial file (``strict=False``) skips broken lines."""
+    names = set()
+    for line in path.read_text(encoding="utf-8", errors="replace").splitlines():
+        try:
+            names.add(str(json.loads(line)["source"]))
+        except (ValueError, KeyError, TypeError):
+            if strict and line.strip():
+                raise ParameterError(f"{path}: not a demo ground truth; choose a new or empty folder") from None
+    return names
+
+
 def _prepare(outdir: Path) -> None:
-    """Make ``outdir`` ready: new, empty, or a previous demo set (whose files are replaced)."""
+    """Make ``outdir`` ready: new, empty, or a previous (possibly interrupted) demo set whose
+    listed scans and truth are removed.  Other files are never touched."""
     if outdir.exists() and not outdir.is_dir():
         raise ParameterError(f"{outdir}: not a folder")
     outdir.mkdir(parents=True, exist_ok=True)
-    truth = outdir / TRUTH_NAME
-    others = [p for p in outdir.iterdir() if p.name not in (TRUTH_NAME, LAYOUT_NAME, "README.md")]
-    if not truth.is_file():
-        if others:
+    truth, part = outdir / TRUTH_NAME, outdir / PART_NAME
+    if not truth.is_file() and not part.is_file():
+        if any(p.name not in (LAYOUT_NAME, "README.md") for p in outdir.iterdir()):
             raise ParameterError(f"{outdir}: folder is not empty and holds no demo {TRUTH_NAME}; "
                                  "choose a new or empty folder")
         return
-    try:
-        old = {json.loads(line)["source"] for line in truth.read_text(encoding="utf-8").splitlines() if line}
-    except (ValueError, KeyError, TypeError):
-        raise ParameterError(f"{truth}: not a demo ground truth; choose a new or empty folder") from None
+    old = _sources(truth, strict=True) if truth.is_file() else set()
+    old |= _sources(part, strict=False) if part.is_file() else set()
     for name in old:
         p = outdir / name
         if p.parent == outdir and p.is_file():
             p.unlink()
-    truth.unlink()
+    truth.unlink(missing_ok=True)
+    part.unlink(missing_ok=True)
 
 
 def _save(path: Path, f: _File, scans: list[np.ndarray]) -> None:
@@ -161,35 +173,38 @@ def make_demo(outdir: str | Path, *, count: int = 30, seed: int = 7,
     mistakes = {int(p): MISTAKE_KINDS[(first_kind + k) % 2] for k, p in enumerate(sorted(mistake_pages))}
 
     records, used, digits, done = [], [], 0, 0
-    for f in files:
-        scans = []
-        for k in range(f.pages):
-            page_idx = done
-            rng = np.random.default_rng(page_seqs[page_idx])
-            mistake = mistakes.get(page_idx)
-            values = card_values(rng, mistake=mistake, litres_empty=bool(rng.random() < 0.1))
-            writer = random_writer(rng)
-            card = render_card(layout, f.dpi)
-            for fld in layout.fields:
-                write_field(card, fld, values[fld.name], writer, bank, f.dpi, rng)
-            settings = random_scan_settings(
-                rng, dpi=f.dpi, page_mm=(layout.width_mm, layout.height_mm), marks_mm=list(layout.marks),
-                upside_down=f.upside_down, noise=_NOISE[f.fmt])
-            scans.append(simulate_scan(card, settings, rng))
-            used += writer.used
-            digits += len(writer.used)
-            records.append({"source": f.name, "page_number": k + 1, "fields": values,
-                            "scan": settings.as_record(), "writer_mistakes": [mistake] if mistake else []})
-            done += 1
-            if k == f.pages - 1:
-                _save(outdir / f.name, f, scans)
+    shutil.copyfile(LAYOUT_PATH, outdir / LAYOUT_NAME)
+    # the records of a file go to the partial truth BEFORE the file is written, so a run cut
+    # short leaves a folder the next run can clear; the full truth appears only at the end
+    with (outdir / PART_NAME).open("w", encoding="utf-8") as part:
+        for f in files:
+            scans, recs = [], []
+            for k in range(f.pages):
+                rng = np.random.default_rng(page_seqs[done + k])
+                mistake = mistakes.get(done + k)
+                values = card_values(rng, mistake=mistake, litres_empty=bool(rng.random() < 0.1))
+                writer = random_writer(rng)
+                card = render_card(layout, f.dpi)
+                for fld in layout.fields:
+                    write_field(card, fld, values[fld.name], writer, bank, f.dpi, rng)
+                settings = random_scan_settings(
+                    rng, dpi=f.dpi, page_mm=(layout.width_mm, layout.height_mm),
+                    marks_mm=list(layout.marks), upside_down=f.upside_down, noise=_NOISE[f.fmt])
+                scans.append(simulate_scan(card, settings, rng))
+                used += writer.used
+                digits += len(writer.used)
+                recs.append({"source": f.name, "page_number": k + 1, "fields": values,
+                             "scan": settings.as_record(), "writer_mistakes": [mistake] if mistake else []})
+                if progress is not None and k < f.pages - 1:
+                    progress(done + k + 1, count, file=f.name)
+            part.write("".join(json.dumps(r) + "\n" for r in recs))
+            part.flush()
+            _save(outdir / f.name, f, scans)
+            records += recs
+            done += f.pages
             if progress is not None:
                 progress(done, count, file=f.name)
-
-    shutil.copyfile(LAYOUT_PATH, outdir / LAYOUT_NAME)
-    tmp = outdir / (TRUTH_NAME + ".part")
-    tmp.write_text("".join(json.dumps(r, sort_keys=False) + "\n" for r in records), encoding="utf-8")
-    os.replace(tmp, outdir / TRUTH_NAME)
+    os.replace(outdir / PART_NAME, outdir / TRUTH_NAME)
     return {"pages": count, "files": len(files), "fields": sum(len(r["fields"]) for r in records),
             "digits": digits, "mistakes": len(mistakes), "seconds": round(time.perf_counter() - t0, 2),
             "mnist_indices": used}

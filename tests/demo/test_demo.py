@@ -231,3 +231,18 @@ def test_project_loader_reads_every_scan(demo):
         expected = [r for r in truth if r["source"] == name]
         assert [p.page_number for p in pages] == [r["page_number"] for r in expected]
         assert all(abs(p.dpi - r["scan"]["dpi"]) < 0.5 for p, r in zip(pages, expected))
+
+
+def test_a_run_cut_short_can_be_made_again(tmp_path):
+    out = tmp_path / "cut"
+
+    def stop(done, total, **_):
+        if done == 2:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        make_demo(out, count=3, seed=2, progress=stop)
+    assert not (out / "truth.jsonl").exists() and (out / "truth.jsonl.part").exists()
+    make_demo(out, count=1, seed=2)
+    truth = [json.loads(line) for line in (out / "truth.jsonl").read_text().splitlines()]
+    assert sorted(p.name for p in out.iterdir()) == sorted(["layout.toml", "truth.jsonl", truth[0]["source"]])
