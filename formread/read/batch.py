@@ -159,8 +159,25 @@ def _init_imaging(layout_path: str, known: frozenset, pin_threads: bool) -> None
         from threadpoolctl import threadpool_limits
 
         _STATE["limits"] = threadpool_limits(limits=1)
+        _watch_parent()
     _STATE["layout"] = load_layout(layout_path)
     _STATE["known"] = known
+
+
+def _watch_parent() -> None:
+    """End this worker when the reader that started it is gone (killed), instead of lingering idle."""
+    import os
+    import threading
+
+    parent = os.getppid()
+
+    def watch():
+        while True:
+            time.sleep(0.5)
+            if os.getppid() != parent:
+                os._exit(0)
+
+    threading.Thread(target=watch, name="formread-parent-watch", daemon=True).start()
 
 
 def _png(gray: np.ndarray, level: int = 1) -> bytes:
@@ -404,6 +421,10 @@ def _run(scans, layout_path: Path, ledger: Ledger, reader: _Reader, report: Batc
                                    initializer=_init_imaging,
                                    initargs=(str(layout_path), frozenset(done_hashes), True))
         results = _ordered(pool, scans, window=4 * workers)
+    from threadpoolctl import threadpool_limits
+
+    # with workers busy on the other cores, the main process's BLAS keeps to one thread
+    limits = threadpool_limits(limits=1) if pin else None
     try:
         for pages in results:
             seen_files += 1
@@ -416,6 +437,8 @@ def _run(scans, layout_path: Path, ledger: Ledger, reader: _Reader, report: Batc
                              pages_per_second=report.pages / el if el > 0 else 0.0,
                              review=report.review, failed=len(report.problems))
     finally:
+        if limits is not None:
+            limits.restore_original_limits()
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
 
