@@ -246,3 +246,16 @@ def test_a_run_cut_short_can_be_made_again(tmp_path):
     make_demo(out, count=1, seed=2)
     truth = [json.loads(line) for line in (out / "truth.jsonl").read_text().splitlines()]
     assert sorted(p.name for p in out.iterdir()) == sorted(["layout.toml", "truth.jsonl", truth[0]["source"]])
+
+
+def test_file_plan_covers_every_count():
+    from formread.demo.make import _plan
+
+    for count in range(1, 61):
+        files = _plan(count, np.random.default_rng(count))
+        assert sum(f.pages for f in files) == count
+        assert len({f.name for f in files}) == len(files)
+        assert sum(f.upside_down for f in files) == (count >= 2)
+        if count >= 8:
+            assert {(f.fmt, f.pages) for f in files} >= {("tiff", 3), ("pdf", 2), ("png", 1), ("tiff", 1),
+                                                          ("jpeg", 1)}
