@@ -53,7 +53,7 @@ class Registration:
     rotated_180 : the scan was upside down; ``image`` is it turned the right way up
     skew_deg : rotation of the page content, counter-clockwise positive (Pillow's convention)
     image : ndarray of shape (H, W), uint8, the page in the orientation ``matrix`` maps into
-    dpi : the page's resolution
+    dpi : the resolution used: the page's, or the one its size implies when the stated one did not fit
     mark_px : ndarray of shape (marks_found, 2), float64, refined mark centres (x, y) in ``image``
     mark_index : which layout marks those are (0-based, layout order)
     scale : mean pixels per mm of the fit (compare with dpi / 25.4)
@@ -346,15 +346,45 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
     max_rotation_deg, max_scale_change : how far the scan may be turned and scaled (the page may sit
         anywhere in the image: among equally good fits the one nearest the nominal placement wins)
     Returns a ``Registration``; raises ``RegistrationError("<file> page N: <reason>")``.
+
+    When the marks do not fit at the page's stated resolution but the image is the size of the form
+    at another one (a file that states no or a wrong dpi), that resolution is tried once too;
+    ``Registration.dpi`` says which one was used.
     """
     check_param(max_residual_mm > 0, "max_residual_mm", "> 0", max_residual_mm)
+    check_param(0 <= max_scale_change < 0.5, "max_scale_change", "in [0, 0.5)", max_scale_change)
+    check_param(0 <= max_rotation_deg <= 45, "max_rotation_deg", "in [0, 45]", max_rotation_deg)
     where = f"{page.source} page {page.page_number}"
     gray = np.asarray(page.gray)
     if gray.ndim != 2 or gray.dtype != np.uint8:
         raise RegistrationError(f"{where}: page image must be (H, W) uint8; got {gray.shape} {gray.dtype}")
+    if not (page.dpi > 0 and math.isfinite(page.dpi)):
+        raise RegistrationError(f"{where}: page resolution must be a positive number; got {page.dpi!r}")
+    opts = (max_residual_mm, max_rotation_deg, max_scale_change)
+    try:
+        return _register(gray, float(page.dpi), layout, where, *opts)
+    except RegistrationError as first:
+        H, W = gray.shape
+        guesses = [W * 25.4 / layout.width_mm, H * 25.4 / layout.height_mm]
+        guess = float(np.mean(guesses))
+        if (abs(guesses[0] / guesses[1] - 1) > 0.08 or abs(guess / page.dpi - 1) < 2 * max_scale_change + 0.02
+                or not 50 <= guess <= 2400 or "looks blank" in str(first)):
+            raise
+        guess = float(round(guess))
+        try:
+            reg = _register(gray, guess, layout, where, *opts)
+        except RegistrationError:
+            raise first from None
+        log.info("%s: registered at %g dpi from the page size (the file says %g dpi)", where, guess, page.dpi)
+        return reg
+
+
+def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_residual_mm: float,
+              max_rotation_deg: float, max_scale_change: float) -> Registration:
+    """register_page at one assumed resolution."""
     H, W = gray.shape
-    px_per_mm = page.dpi / 25.4
-    f = max(1, int(round(page.dpi / WORK_DPI)))
+    px_per_mm = dpi / 25.4
+    f = max(1, int(round(dpi / WORK_DPI)))
     small = _reduce(gray, f)
     if min(small.shape) < 8:
         raise RegistrationError(f"{where}: page too small to register ({W} x {H} pixels)")
@@ -366,7 +396,7 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
         if float(np.mean(dark > 0.5)) < 0.001:
             raise RegistrationError(f"{where}: no registration marks found (the page looks blank)")
         raise RegistrationError(f"{where}: no registration marks found (no solid squares of "
-                                f"{min(m.size for m in layout.marks):g} mm)")
+                                f"{min(m.size for m in layout.marks):g} mm at {dpi:g} dpi)")
     if len(blobs) > _MAX_BLOBS:  # a page full of squares: keep those closest to a mark's size
         want = float(np.median(sizes))
         blobs = sorted(blobs, key=lambda b: abs(b.side - want))[:_MAX_BLOBS]
@@ -379,7 +409,7 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
                                     f"marks found (3 are needed; covered, cut off or not printed?)")
         raise RegistrationError(f"{where}: registration marks not found: {len(blobs)} solid squares seen, but no "
                                 f"3 of them sit where the layout's {len(layout.marks)} marks are (wrong layout, or a "
-                                f"wrong resolution: {page.dpi:g} dpi?)")
+                                f"wrong resolution: {dpi:g} dpi?)")
     most = max(len(v.marks) for v in cand.values())
     cand = {k: v for k, v in cand.items() if len(v.marks) == most}
     if len(cand) == 2:
@@ -423,5 +453,5 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
     image = np.ascontiguousarray(gray[::-1, ::-1]) if flip else gray
     skew = -math.degrees(math.atan2(matrix[1, 0], matrix[0, 0]))
     return Registration(matrix=matrix, residual_mm=float(residual), marks_found=len(used), rotated_180=flip,
-                        skew_deg=float(skew), image=image, dpi=float(page.dpi), mark_px=dst,
+                        skew_deg=float(skew), image=image, dpi=float(dpi), mark_px=dst,
                         mark_index=tuple(used), scale=float(math.sqrt(abs(np.linalg.det(matrix[:, :2])))))

@@ -150,6 +150,17 @@ def test_wrong_layout_is_refused_not_misread():
         register_page(Page(gray, 150.0, "other.png", 1), other)
 
 
+def test_a_file_with_a_wrong_resolution_registers_at_the_one_its_size_implies():
+    # Scanned at 200 dpi, but the file stated none and the loader assumed 300 (its documented fallback).
+    gray, truth = render_page(LAYOUT, 200, DIGITS, np.random.default_rng(10), Transform(rotation_deg=1.0))
+    reg = register_page(Page(gray, 300.0, "nodpi.png", 1), LAYOUT)
+    assert reg.dpi == 200.0 and _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+    # A crop that is not the form's page size gives no such second chance.
+    with pytest.raises(RegistrationError, match=r"^crop\.png page 1: no registration marks found \(no solid "
+                                                r"squares of 6 mm at 300 dpi\)$"):
+        register_page(Page(gray[:, :1000], 300.0, "crop.png", 1), LAYOUT)
+
+
 def test_fit_affine_recovers_a_known_transform_and_residual_is_in_mm():
     rng = np.random.default_rng(7)
     m = np.array([[11.7, -0.4, 30.0], [0.5, 11.9, -12.0]])
