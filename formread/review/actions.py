@@ -33,7 +33,7 @@ __all__ = [
     "LEDGER_NAME", "ACTIONS", "STATUS_WORDS", "DEFAULT_MAX_DIGITS",
     "UnknownItem", "StaleSave", "InvalidValue",
     "connect", "ledger_path", "resolve_inside", "list_pending", "pending_filters",
-    "field_detail", "page_detail", "image_file", "save_decision", "explain_reason", "field_limit", "field_threshold",
+    "field_detail", "page_detail", "image_file", "save_decision", "explain_reason", "field_limit", "field_threshold", "field_relations",
     "DecidedField", "list_decided", "load_digits", "utc_now",
 ]
 
@@ -213,8 +213,11 @@ _CHECK_SCHEMES = ("luhn", "mod11-2", "mod97-10", "gs1", "verhoeff", "damm", "che
 
 
 def explain_reason(reason: str | None, *, confidence: float | None = None,
-                   threshold: float | None = None) -> list[str]:
-    """Why a field was flagged, in plain words (one sentence per reason; ``;`` separates reasons)."""
+                   threshold: float | None = None, relations: list[str] | None = None) -> list[str]:
+    """Why a field was flagged, in plain words (one sentence per reason; ``;`` separates reasons).
+
+    ``relations``: the cross-field rules naming this field, quoted when ``relation`` failed.
+    """
     if not reason:
         return []
     out = []
@@ -228,7 +231,10 @@ def explain_reason(reason: str | None, *, confidence: float | None = None,
             out.append(s + ".")
         elif part.startswith("rule_failed:"):
             rule = part.split(":", 1)[1]
-            if rule in _RULE_WORDS:
+            if rule == "relation" and relations:
+                out.append("A rule failed (relation): the numbers on this page do not add up: "
+                           + "; ".join(relations) + ".")
+            elif rule in _RULE_WORDS:
                 out.append(f"A rule failed ({rule}): {_RULE_WORDS[rule]}.")
             elif rule in _CHECK_SCHEMES:
                 out.append(f"A rule failed ({rule}): the check digit does not match the other digits.")
@@ -254,7 +260,7 @@ _layout_cache: dict[tuple[str, float], dict] = {}
 
 def _layout_fields(outdir: Path, layout_path: str) -> dict:
     """``{name: (max digits or None, own threshold or None)}`` from the run's layout file (TOML),
-    or {} when it cannot be read."""
+    plus ``"[[relations]]": [rule text, ...]``; {} when the layout cannot be read."""
     cands = [Path(layout_path)]
     if not cands[0].is_absolute():
         cands.append(outdir / layout_path)
@@ -281,6 +287,8 @@ def _layout_fields(outdir: Path, layout_path: str) -> dict:
                 thr = f.get("threshold")
                 thr = float(thr) if isinstance(thr, (int, float)) and not isinstance(thr, bool) else None
                 sizes[f["name"]] = (min(cands_n) if cands_n else None, thr)
+            rels = data.get("relations") if isinstance(data.get("relations"), list) else []
+            sizes["[[relations]]"] = [r["rule"] for r in rels if isinstance(r, dict) and isinstance(r.get("rule"), str)]
             _layout_cache[key] = sizes
         return _layout_cache[key]
     return {}
@@ -303,6 +311,14 @@ def field_threshold(outdir: str | Path, name: str, layout_path: str | None, run_
         if thr is not None:
             return thr
     return run_threshold
+
+
+def field_relations(outdir: str | Path, name: str, layout_path: str | None) -> list[str]:
+    """The layout's cross-field rules that name field ``name`` (rule text as written)."""
+    if not layout_path:
+        return []
+    rels = _layout_fields(Path(outdir), layout_path).get("[[relations]]", [])
+    return [r for r in rels if re.search(rf"(?<![a-z0-9_]){re.escape(name)}(?![a-z0-9_])", r)]
 
 
 # ----------------------------------------------------------------------------- showing
@@ -343,7 +359,8 @@ def field_detail(conn: sqlite3.Connection, outdir: str | Path, field_id: int) ->
         "reading": row["reading"], "confidence": row["confidence"],
         "alternatives": _json(row["alternatives"], []), "digit_probs": _json(row["digit_probs"], []),
         "rules": _json(row["rules"], {}), "decision": row["decision"], "reason": row["reason"],
-        "why": explain_reason(row["reason"], confidence=row["confidence"], threshold=threshold),
+        "why": explain_reason(row["reason"], confidence=row["confidence"], threshold=threshold,
+                              relations=field_relations(outdir, row["name"], row["layout_path"])),
         "version": row["version"], "final_value": row["final_value"], "final_status": row["final_status"],
         "status_words": STATUS_WORDS.get(row["final_status"], row["final_status"]),
         "max_digits": field_limit(outdir, row["name"], row["layout_path"]),

@@ -139,6 +139,7 @@ class _Handler(BaseHTTPRequestHandler):
     server_version = "formread-review"
     sys_version = ""
     protocol_version = "HTTP/1.0"
+    timeout = 30  # seconds; an idle connection (a browser's spare socket) does not hold a thread forever
 
     # ------------------------------------------------------------------ plumbing
 

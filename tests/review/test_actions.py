@@ -49,7 +49,9 @@ def test_field_detail_explains_in_plain_words(ledger):
         assert d["max_digits"] == 5 and d["has_image"] and d["has_page_image"]
         assert d["alternatives"][0] == ["03241", 0.62] and len(d["digit_probs"]) == 5
         d2 = actions.field_detail(conn, out, info["ids"][(0, "litres_used")])
-        assert "do not add up" in d2["why"][0] and d2["rules"] == {"relation": False}
+        assert d2["why"] == ["A rule failed (relation): the numbers on this page do not add up: "
+                             "litres_used = current_reading - previous_reading."]
+        assert d2["rules"] == {"relation": False}
         assert d2["max_digits"] == 6
         d3 = actions.field_detail(conn, out, info["ids"][(2, "plot_number")])
         assert d3["reading"] is None and not d3["has_image"] and "page view" in d3["why"][0]
@@ -65,6 +67,8 @@ def test_explain_reason_vocabulary():
     assert "must be filled" in actions.explain_reason("missing")[0]
     assert actions.explain_reason("low_confidence; rule_failed:range")[1].startswith("A rule failed (range)")
     assert actions.explain_reason("something_new") == ["Flagged: something_new."]
+    assert "do not add up" in actions.explain_reason("rule_failed:relation")[0]
+    assert "must be filled" in actions.explain_reason("rule_failed:required")[0]
 
 
 def test_save_correction_writes_value_version_and_audit_in_one_go(ledger):
@@ -156,6 +160,16 @@ def test_unknown_field_and_bad_version(ledger):
         with pytest.raises(InvalidValue, match="version must be an integer"):
             actions.save_decision(conn, out, 1, action="confirm", version="0", reviewer="ann")
     assert snapshot(out) == before
+
+
+def test_field_relations_match_whole_names(ledger):
+    out, info = ledger
+    layout = str(info["layout"])
+    assert actions.field_relations(out, "previous_reading", layout) == [
+        "litres_used = current_reading - previous_reading"]
+    assert actions.field_relations(out, "reading", layout) == []
+    assert actions.field_relations(out, "plot_number", layout) == []
+    assert actions.field_relations(out, "litres_used", None) == []
 
 
 def test_field_limit_falls_back_when_layout_is_gone(ledger):
