@@ -129,13 +129,21 @@ def _route(d, arg, outs):
         np.multiply(d, arg == q, out=out)
 
 
-def maxpool_tiled_forward(x, k):
+def maxpool_tiled_forward(x, k, need_arg: bool = True):
     """Non-overlapping max pooling (stride = size = k) in two passes, first along W then along H:
     x (C, H, W, N) -> y (C, H // k, W // k, N) and the two argmax arrays for the backward pass.
     The result and the chosen position equal those of the first maximum in row-major window order."""
     c, h, wd, n = x.shape
     ho, wo = h // k, wd // k
     v = x[:, : ho * k, : wo * k, :].reshape(c, ho, k, wo, k, n)
+    if not need_arg:  # inference: the maximum only
+        rows = v[:, :, :, :, 0, :].copy()
+        for j in range(1, k):
+            np.maximum(rows, v[:, :, :, :, j, :], out=rows)
+        y = rows[:, :, 0].copy()
+        for i in range(1, k):
+            np.maximum(y, rows[:, :, i], out=y)
+        return y, None
     rows, argj = _pick([v[:, :, :, :, j, :] for j in range(k)], (c, ho, k, wo, n), x.dtype)
     y, argi = _pick([rows[:, :, i] for i in range(k)], (c, ho, wo, n), x.dtype)
     return y, (argi, argj)

@@ -79,15 +79,19 @@ class _ConvReluPool:
         conv.check_input(x)
         z, cols = _conv.conv_forward(x, conv.weight.value, None, conv.stride, conv.padding,
                                      conv._scratch)
-        a, args = _conv.maxpool_tiled_forward(z, k)
+        # without training the window argmax is left for a backward pass that may never come
+        a, args = _conv.maxpool_tiled_forward(z, k, need_arg=train)
         a += conv.bias.value[:, None, None, None]
         np.maximum(a, a.dtype.type(0), out=a)
-        self._cache = (x.shape, cols, z.shape, args, a)
+        self._cache = (x.shape, cols, z if args is None else z.shape, args, a)
         return a
 
     def _bwd(self, da: np.ndarray, need_dx: bool) -> np.ndarray | None:
         conv = self.conv
-        xshape, cols, zshape, args, a = self._cache
+        xshape, cols, z, args, a = self._cache
+        if args is None:  # forward ran with train=False
+            args = _conv.maxpool_tiled_forward(z, self.pool.size)[1]
+        zshape = z.shape if isinstance(z, np.ndarray) else z
         dp = np.multiply(da, a > 0)
         conv.bias.grad = dp.reshape(dp.shape[0], -1).sum(axis=1)
         dz = _conv.maxpool_tiled_backward(dp, args, zshape, self.pool.size)
