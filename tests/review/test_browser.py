@@ -120,7 +120,8 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             expect(msg).to_contain_text("blank on paper")
             expect(name).to_have_text("plot_number")
             expect(page.locator("#field-where")).to_contain_text("page 3")
-            expect(page.locator("#no-img")).to_be_visible()  # unregistered page: no crop
+            expect(page.locator("#no-img")).to_be_visible()  # unregistered page: no crop,
+            expect(page.locator("#pageview")).to_be_visible()  # so the whole page is shown
 
             # a second reviewer saves this field between showing and saving: refused with 409
             bob = actions.connect(out)

@@ -251,6 +251,7 @@
   function renderPositions(probs) {
     const t = $("positions");
     [...t.querySelectorAll("tr")].forEach((tr) => tr.remove());
+    $("no-positions").hidden = probs.length > 0;
     if (!probs.length) return;
     const head = document.createElement("tr");
     const corner = document.createElement("th");
@@ -288,7 +289,10 @@
 
   async function renderPage() {
     const pv = $("pageview");
-    pv.hidden = !state.showPage || !state.current;
+    const d0 = state.current;
+    // a field without its own picture (page not matched to the layout) is read from the whole page
+    const auto = d0 && !d0.has_image && d0.has_page_image;
+    pv.hidden = !d0 || !(state.showPage || auto);
     $("main").classList.toggle("with-page", !pv.hidden);
     if (pv.hidden) return;
     const d = state.current;
