@@ -16,7 +16,10 @@ tried and, when both fit, the page content decides: the printed field borders an
 A page that cannot be matched is refused (``RegistrationError("<file> page N: <reason>")``); it is
 never read with a wrong geometry.
 
-Pixel coordinates are (x = col, y = row) with the centre of pixel (0, 0) at (0, 0).
+Pixel coordinates are continuous (x = col, y = row): pixel (col, row) covers [col, col + 1) x
+[row, row + 1), so its centre is (col + 0.5, row + 0.5) and an exactly placed scan at ``dpi`` has
+``matrix = [[dpi / 25.4, 0, 0], [0, dpi / 25.4, 0]]``. (Internally, mark finding works in pixel-centre
+coordinates and converts at the end.)
 """
 
 from __future__ import annotations
@@ -46,7 +49,8 @@ _MIN_CONTENT_GAP = 0.02  # orientation scores closer than this cannot decide; up
 class Registration:
     """Where the layout lies on a page.
 
-    matrix : ndarray of shape (2, 3), float64: layout mm (x, y, 1) -> pixels (x = col, y = row) of ``image``
+    matrix : ndarray of shape (2, 3), float64: layout mm (x, y, 1) -> pixels (x = col, y = row) of ``image``,
+        continuous coordinates (pixel (c, r) covers [c, c + 1) x [r, r + 1))
     residual_mm : RMS distance between found mark centres and the fitted transform, in mm
         (0.0 when exactly three marks were used: three points fix an affine transform)
     marks_found : how many of the layout's marks were used
@@ -55,6 +59,7 @@ class Registration:
     image : ndarray of shape (H, W), uint8, the page in the orientation ``matrix`` maps into
     dpi : the resolution used: the page's, or the one its size implies when the stated one did not fit
     mark_px : ndarray of shape (marks_found, 2), float64, refined mark centres (x, y) in ``image``
+        (same continuous coordinates as ``matrix``)
     mark_index : which layout marks those are (0-based, layout order)
     scale : mean pixels per mm of the fit (compare with dpi / 25.4)
     """
@@ -452,6 +457,8 @@ def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_resi
         raise RegistrationError(f"{where}: registration marks imply an implausible scale, stretch or rotation")
     image = np.ascontiguousarray(gray[::-1, ::-1]) if flip else gray
     skew = -math.degrees(math.atan2(matrix[1, 0], matrix[0, 0]))
+    matrix[:, 2] += 0.5  # pixel-centre -> continuous (pixel-edge) coordinates
+    dst = dst + 0.5
     return Registration(matrix=matrix, residual_mm=float(residual), marks_found=len(used), rotated_180=flip,
                         skew_deg=float(skew), image=image, dpi=float(dpi), mark_px=dst,
                         mark_index=tuple(used), scale=float(math.sqrt(abs(np.linalg.det(matrix[:, :2])))))

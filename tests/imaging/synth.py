@@ -10,8 +10,9 @@ Main entry points::
     corners = corners_px(truth, layout.field("member").region)   # (4, 2) pixels (x, y)
 
 ``gray`` is (H, W) uint8 (0 = ink); ``truth.matrix`` maps layout mm (x, y) to pixels (x = col,
-y = row, centre of pixel (0, 0) at (0, 0)) of the page turned the right way up (what a correct
-``Registration.image`` is); ``truth.scan_matrix`` maps into ``gray`` as returned.
+y = row; continuous: pixel (c, r) covers [c, c + 1) x [r, r + 1), as ``Registration.matrix``) of
+the page turned the right way up (what a correct ``Registration.image`` is); ``truth.scan_matrix``
+maps into ``gray`` as returned.
 
 Printed parts (marks, borders, cell dividers, header) are axis-aligned rectangles rendered with exact
 area coverage (anti-aliased), so their geometry is known to a small fraction of a pixel; the scan
@@ -158,8 +159,8 @@ class Transform:
 class Truth:
     """What the renderer knows about a page.
 
-    matrix : (2, 3) float64, layout mm -> pixels (x, y) of the page turned the right way up
-    scan_matrix : (2, 3) float64, layout mm -> pixels (x, y) of the image as returned
+    matrix : (2, 3) float64, layout mm -> continuous pixels (x, y) of the page turned the right way up
+    scan_matrix : (2, 3) float64, layout mm -> continuous pixels (x, y) of the image as returned
     rotated_180 : the returned image is upside down
     skew_deg : rotation of the content in the upright page (counter-clockwise positive)
     dpi : resolution
@@ -324,9 +325,9 @@ def degrade(gray: np.ndarray, rng: np.random.Generator, *, noise: float = 0.0, b
 
 
 def truth_matrix(layout: Layout, dpi: float, transform: Transform | None = None) -> np.ndarray:
-    """(2, 3) layout mm -> pixels (x, y) of the upright scanned page, without rendering it."""
+    """(2, 3) layout mm -> continuous pixels (x, y) of the upright scanned page, without rendering it."""
     fwd = _scan_map(layout, dpi, transform or Transform())
-    return np.hstack([fwd[:, :2] * (dpi / 25.4), (fwd[:, 2] - 0.5)[:, None]])
+    return np.hstack([fwd[:, :2] * (dpi / 25.4), fwd[:, 2:3]])
 
 
 def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.random.Generator | None = None,
@@ -344,14 +345,14 @@ def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.
     size = (form.shape[0] + 2 * pad, form.shape[1] + 2 * pad)
     moved = warp(form, fwd, size) if not np.allclose(fwd, [[1, 0, 0], [0, 1, 0]]) else form
     gray = degrade(moved, rng, noise=tr.noise, blur_px=tr.blur_px, jpeg_quality=tr.jpeg_quality, shadow=tr.shadow)
-    # mm -> continuous (x dpi / 25.4) -> moved continuous (fwd) -> pixel index (- 0.5)
+    # mm -> continuous (x dpi / 25.4) -> moved continuous (fwd)
     matrix = truth_matrix(layout, dpi, tr)
     H, W = gray.shape
     scan = matrix.copy()
-    if tr.upside_down:
+    if tr.upside_down:  # continuous coordinates turn as (x, y) -> (W - x, H - y)
         gray = np.ascontiguousarray(gray[::-1, ::-1])
         scan = np.vstack([-matrix[0], -matrix[1]])
-        scan[:, 2] += [W - 1, H - 1]
+        scan[:, 2] += [W, H]
     truth = Truth(matrix=matrix, scan_matrix=scan, rotated_180=tr.upside_down, skew_deg=tr.rotation_deg,
                   dpi=float(dpi), digits=dict(digits or {}), digit_boxes=boxes)
     return gray, truth

@@ -86,6 +86,18 @@ def test_transformed_page_registers_within_half_a_millimetre(dpi, tr):
     np.testing.assert_array_equal(reg.image, gray[::-1, ::-1] if tr.upside_down else gray)
 
 
+def test_matrix_uses_continuous_pixel_coordinates():
+    # DEVELOPERS.md contract: pixel (c, r) covers [c, c + 1) x [r, r + 1), so an exactly placed scan
+    # has matrix = diag(dpi / 25.4) with no offset (what fields.py and the batch's boxes assume).
+    gray, _ = render_page(LAYOUT, 200, DIGITS, np.random.default_rng(11))
+    reg = register_page(Page(gray, 200.0, "exact.png", 1), LAYOUT)
+    k = 200 / 25.4
+    np.testing.assert_allclose(reg.matrix, [[k, 0, 0], [0, k, 0]], atol=0.02)
+    np.testing.assert_allclose(reg.mark_px, [[m.x * k, m.y * k] for m in LAYOUT.marks], atol=0.02)
+    up, _ = render_page(LAYOUT, 200, DIGITS, np.random.default_rng(11), Transform(upside_down=True))
+    np.testing.assert_allclose(register_page(Page(up, 200.0, "up.png", 1), LAYOUT).matrix, reg.matrix, atol=0.02)
+
+
 def test_all_four_cases_of_orientation_and_symmetric_marks():
     # Four identical corner squares: only the header and field borders tell the two ways round apart.
     for upside_down in (False, True):
