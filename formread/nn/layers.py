@@ -2,8 +2,8 @@
 
 Every layer takes and returns arrays in the public (N, C, H, W) or (N, F) layout and keeps the dtype
 it is given: float32 in normal use, float64 for gradient checks. ``forward`` caches what ``backward``
-needs; ``backward(dy)`` fills the ``.grad`` of the layer's parameters (overwriting, not adding) and
-returns the gradient with respect to the input.
+needs; ``backward(dy)`` (using the most recent forward pass) fills the ``.grad`` of the layer's
+parameters (overwriting, not adding) and returns the gradient with respect to the input.
 """
 
 from __future__ import annotations

@@ -119,7 +119,9 @@ def _blocks(layers: list[L.Layer]) -> list:
 class Sequential:
     """Layers applied in order. Input (N, C, H, W) float32 (or float64) -> logits (N, classes).
 
-    ``spec`` is the JSON-serialisable list of layer dicts the model was built from.
+    ``spec`` is the JSON-serialisable list of layer dicts the model was built from. ``backward``
+    uses what the most recent ``forward`` cached. Several threads may call ``forward`` /
+    ``predict_proba`` at once (work arrays are per thread); training is single-threaded.
     """
 
     def __init__(self, layers: list[L.Layer]):
@@ -131,10 +133,12 @@ class Sequential:
 
     @property
     def spec(self) -> list[dict]:
+        """The layer dicts that ``build_model`` turns back into this model's structure."""
         return [layer.spec() for layer in self.layers]
 
     @property
     def dtype(self) -> np.dtype:
+        """dtype of the parameters (float32, or float64 for gradient checks)."""
         ps = self.parameters()
         return ps[0].value.dtype if ps else np.dtype(np.float32)
 
