@@ -252,11 +252,8 @@ def _pdf_pages(path: Path, src: str, dpi: float) -> Iterator[Page]:
             try:
                 page = doc[i]
                 try:
-                    w_pt, h_pt = page.get_size()
-                    rot = page.get_rotation() % 180
+                    w_pt, h_pt = page.get_size()  # already turned by the page's /Rotate
                     w, h = int(round(w_pt * scale)), int(round(h_pt * scale))
-                    if rot:
-                        w, h = h, w
                     if w < 1 or h < 1:
                         raise ImageError(f"{where}: page has no area ({w_pt:g} x {h_pt:g} pt)")
                     if w * h > MAX_PAGE_PIXELS:

@@ -232,6 +232,10 @@ def test_hand_written_pdf_loads_and_empty_pdf_is_refused(tmp_path):
                     "<< /Type /Page /Parent 2 0 R /MediaBox [0 0 144 72] >>"])
     (p,) = load_pages(ok, pdf_dpi=100)  # the writer above is sound: a 2 x 1 inch blank page
     assert p.gray.shape == (100, 200) and p.gray.min() == 255
+    turned = tmp_path / "turned.pdf"  # a page with /Rotate 90 comes out turned
+    _write_pdf(turned, ["<< /Type /Catalog /Pages 2 0 R >>", "<< /Type /Pages /Kids [3 0 R] /Count 1 >>",
+                        "<< /Type /Page /Parent 2 0 R /MediaBox [0 0 144 72] /Rotate 90 >>"])
+    assert load_pages(turned, pdf_dpi=100)[0].gray.shape == (200, 100)
     empty = tmp_path / "empty.pdf"
     _write_pdf(empty, ["<< /Type /Catalog /Pages 2 0 R >>", "<< /Type /Pages /Kids [] /Count 0 >>"])
     with pytest.raises(ImageError) as info:
