@@ -14,26 +14,22 @@ import json
 import logging
 import re
 import sqlite3
-import sys
 from dataclasses import dataclass
 from datetime import datetime, timezone
 from pathlib import Path
 
 import numpy as np
 
-from ..errors import LedgerError, ReviewError
+from ..errors import LayoutError, LedgerError, ReviewError, RuleError
+from ..imaging.layout import load_layout
+from ..read.rules import check_field, check_relations, compile_rules
 from ..read.schema import SCHEMA_VERSION
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - Python 3.10
-    import tomli as tomllib
 
 __all__ = [
     "LEDGER_NAME", "ACTIONS", "STATUS_WORDS", "DEFAULT_MAX_DIGITS",
     "UnknownItem", "StaleSave", "InvalidValue",
     "connect", "ledger_path", "resolve_inside", "list_pending", "pending_filters",
-    "field_detail", "page_detail", "image_file", "save_decision", "explain_reason", "field_limit", "field_threshold", "field_relations",
+    "field_detail", "page_detail", "image_file", "save_decision", "explain_reason", "field_limit", "field_threshold", "field_relations", "value_warnings",
     "DecidedField", "list_decided", "load_digits", "utc_now",
 ]
 
@@ -253,72 +249,95 @@ def explain_reason(reason: str | None, *, confidence: float | None = None,
     return out
 
 
-# ----------------------------------------------------------------------------- field size
+# ----------------------------------------------------------------------------- the run's layout
 
-_layout_cache: dict[tuple[str, float], dict] = {}
+_layout_cache: dict[tuple[str, int], tuple | None] = {}
 
 
-def _layout_fields(outdir: Path, layout_path: str) -> dict:
-    """``{name: (max digits or None, own threshold or None)}`` from the run's layout file (TOML),
-    plus ``"[[relations]]": [rule text, ...]``; {} when the layout cannot be read."""
+def _layout(outdir: str | Path, layout_path: str | None):
+    """(Layout, CompiledRules) of the run's layout file, or None when it cannot be read any more.
+
+    ``runs.layout_path`` is the path as given to ``formread read``: tried as it is, then inside
+    ``outdir``.  Cached by file and modification time.
+    """
+    if not layout_path:
+        return None
     cands = [Path(layout_path)]
     if not cands[0].is_absolute():
-        cands.append(outdir / layout_path)
+        cands.append(Path(outdir) / layout_path)
     for p in cands:
         try:
-            key = (str(p.resolve()), p.stat().st_mtime)
+            key = (str(p.resolve()), p.stat().st_mtime_ns)
         except OSError:
             continue
         if key not in _layout_cache:
             try:
-                data = tomllib.loads(p.read_text(encoding="utf-8"))
-            except (OSError, ValueError, UnicodeDecodeError):
-                log.warning("%s: layout cannot be read; field sizes unknown", p)
-                return {}
-            sizes = {}
-            for f in data.get("fields", []) if isinstance(data.get("fields"), list) else []:
-                if not isinstance(f, dict) or not isinstance(f.get("name"), str):
-                    continue
-                n = f.get("cells") if f.get("kind") == "boxed" else f.get("max_digits")
-                length = (f.get("rules") or {}).get("length") if isinstance(f.get("rules"), dict) else None
-                if isinstance(length, list) and length and isinstance(length[-1], int):
-                    length = length[-1]
-                cands_n = [v for v in (n, length) if isinstance(v, int) and not isinstance(v, bool) and v > 0]
-                thr = f.get("threshold")
-                thr = float(thr) if isinstance(thr, (int, float)) and not isinstance(thr, bool) else None
-                sizes[f["name"]] = (min(cands_n) if cands_n else None, thr)
-            rels = data.get("relations") if isinstance(data.get("relations"), list) else []
-            sizes["[[relations]]"] = [r["rule"] for r in rels if isinstance(r, dict) and isinstance(r.get("rule"), str)]
-            _layout_cache[key] = sizes
+                layout = load_layout(p)
+                _layout_cache[key] = (layout, compile_rules(layout))
+            except (LayoutError, RuleError) as e:
+                log.warning("%s; field sizes and rules unknown", e)
+                _layout_cache[key] = None
         return _layout_cache[key]
-    return {}
+    log.warning("%s: layout of the run not found; field sizes and rules unknown", layout_path)
+    return None
+
+
+def _spec(outdir, name: str, layout_path: str | None):
+    lay = _layout(outdir, layout_path)
+    if lay is None:
+        return None, None
+    spec = next((f for f in lay[0].fields if f.name == name), None)
+    return spec, lay[1]
 
 
 def field_limit(outdir: str | Path, name: str, layout_path: str | None) -> int:
     """Most digits field ``name`` may hold: the layout's cells (boxed) or max_digits (open),
     narrowed by its length rule; :data:`DEFAULT_MAX_DIGITS` when the layout cannot be read."""
-    if layout_path:
-        n = _layout_fields(Path(outdir), layout_path).get(name, (None, None))[0]
-        if n:
-            return n
-    return DEFAULT_MAX_DIGITS
+    spec, compiled = _spec(outdir, name, layout_path)
+    if spec is None:
+        return DEFAULT_MAX_DIGITS
+    n = spec.cells if spec.kind == "boxed" and spec.cells else spec.max_digits
+    rules = compiled.fields.get(name)
+    if rules is not None and rules.length is not None:
+        n = min(n, rules.length[1])
+    return int(n)
 
 
 def field_threshold(outdir: str | Path, name: str, layout_path: str | None, run_threshold: float) -> float:
     """The acceptance threshold that applied to field ``name``: its own in the layout, else the run's."""
-    if layout_path:
-        thr = _layout_fields(Path(outdir), layout_path).get(name, (None, None))[1]
-        if thr is not None:
-            return thr
-    return run_threshold
+    spec, _ = _spec(outdir, name, layout_path)
+    return float(spec.threshold) if spec is not None and spec.threshold is not None else run_threshold
 
 
 def field_relations(outdir: str | Path, name: str, layout_path: str | None) -> list[str]:
-    """The layout's cross-field rules that name field ``name`` (rule text as written)."""
-    if not layout_path:
+    """The layout's cross-field rules that use field ``name`` (rule text as written)."""
+    _, compiled = _spec(outdir, name, layout_path)
+    return [] if compiled is None else [r.text for r in compiled.relations_of(name)]
+
+
+def value_warnings(conn: sqlite3.Connection, outdir: str | Path, field_id: int) -> list[str]:
+    """Rules that a field's final value (or its page's values) still break, in plain words.
+
+    Not a refusal: the clerk has the paper in front of them; the page only says so after a save.
+    Page values are the final values where decided, else the readings.
+    """
+    row = conn.execute("SELECT f.name, f.page_id, f.final_value, f.final_status, r.layout_path FROM fields f "
+                       "JOIN pages p ON p.id = f.page_id JOIN runs r ON r.id = p.run_id WHERE f.id = ?",
+                       (int(field_id),)).fetchone()
+    if row is None or row["final_status"] not in ("confirmed", "corrected"):
         return []
-    rels = _layout_fields(Path(outdir), layout_path).get("[[relations]]", [])
-    return [r for r in rels if re.search(rf"(?<![a-z0-9_]){re.escape(name)}(?![a-z0-9_])", r)]
+    spec, compiled = _spec(outdir, row["name"], row["layout_path"])
+    if spec is None or row["name"] not in compiled.fields:
+        return []
+    out = [f"The value breaks the field's {rule} rule." for rule, ok in
+           check_field(compiled, row["name"], row["final_value"] or "").items() if not ok]
+    values = {r["name"]: (r["final_value"] if r["final_status"] is not None else r["reading"])
+              for r in conn.execute("SELECT name, reading, final_value, final_status FROM fields WHERE page_id = ?",
+                                    (row["page_id"],))}
+    mine = set(field_relations(outdir, row["name"], row["layout_path"]))
+    out += [f"The numbers on this page still do not add up: {text}." for text, ok in
+            check_relations(compiled, values).items() if ok is False and text in mine]
+    return out
 
 
 # ----------------------------------------------------------------------------- showing

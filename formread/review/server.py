@@ -315,6 +315,7 @@ class _Handler(BaseHTTPRequestHandler):
             try:
                 detail = actions.save_decision(conn, self.server.outdir, field_id, action=action, value=value,
                                                version=version, reviewer=self.server.reviewer)
+                warnings = actions.value_warnings(conn, self.server.outdir, field_id)
             except InvalidValue as e:
                 raise _Refused(HTTPStatus.UNPROCESSABLE_ENTITY, e.short) from None
             except StaleSave:
@@ -324,4 +325,4 @@ class _Handler(BaseHTTPRequestHandler):
         finally:
             conn.close()
         self.server.count_saved(detail["last_review"]["action"] if detail["last_review"] else action)
-        self._json(HTTPStatus.OK, {"field": detail})
+        self._json(HTTPStatus.OK, {"field": detail, "warnings": warnings})

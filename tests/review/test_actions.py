@@ -266,3 +266,25 @@ def test_connect_refuses_a_newer_schema(ledger):
     c.close()
     with pytest.raises(LedgerError, match="newer"):
         actions.connect(out)
+
+
+def test_value_warnings_after_a_save(ledger):
+    out, info = ledger
+    ids = info["ids"]
+    with _conn(out) as conn:
+        # litres_used kept at 57 while current_reading still reads 03241: 03241 - 03190 != 57
+        actions.save_decision(conn, out, ids[(0, "litres_used")], action="confirm", version=0, reviewer="ann")
+        assert actions.value_warnings(conn, out, ids[(0, "litres_used")]) == [
+            "The numbers on this page still do not add up: litres_used = current_reading - previous_reading."]
+        # correcting current_reading to what the paper says makes the page add up
+        actions.save_decision(conn, out, ids[(0, "current_reading")], action="correct", value="03247", version=0,
+                              reviewer="ann")
+        assert actions.value_warnings(conn, out, ids[(0, "current_reading")]) == []
+        # a date that does not exist, kept by the clerk: said, not refused
+        actions.save_decision(conn, out, ids[(1, "reading_date")], action="confirm", version=0, reviewer="ann")
+        assert actions.value_warnings(conn, out, ids[(1, "reading_date")]) == ["The value breaks the field's date rule."]
+        # nothing to say about unreadable fields, pending fields, unknown ids
+        actions.save_decision(conn, out, ids[(1, "plot_number")], action="unreadable", version=0, reviewer="ann")
+        assert actions.value_warnings(conn, out, ids[(1, "plot_number")]) == []
+        assert actions.value_warnings(conn, out, ids[(2, "plot_number")]) == []
+        assert actions.value_warnings(conn, out, 999) == []

@@ -225,6 +225,7 @@ def test_a_good_save_and_other_methods(server):
     fid, body = _valid(info)
     status, _, data = call(srv, "POST", f"/api/field/{fid}", body=body)
     assert status == 200 and data["field"]["final_status"] == "corrected" and data["field"]["version"] == 1
+    assert data["warnings"] == []
     assert srv.saved == {"correct": 1}
     with actions.connect(out) as conn:
         assert conn.execute("SELECT reviewer FROM reviews").fetchone()[0] == "ann"

@@ -351,8 +351,9 @@
         if (state.history[state.history.length - 1] !== f.id) state.history.push(f.id);
         state.skipped.delete(f.id);
         await next();
+        const warn = (r.data.warnings || []).join(" ");
         say("Saved " + f.name + " (page " + f.page_number + "): " + shown(f.final_value) + ", " +
-            f.status_words + ".", "ok");
+            f.status_words + "." + (warn ? " Note: " + warn + " Press B to look again." : ""), warn ? "warn" : "ok");
       } else if (r.status === 409 && r.data.field) {
         render(r.data.field);
         say("Another reviewer saved this field after it was shown to you. It now holds " +
