@@ -148,8 +148,8 @@ def _toml_value(v) -> str:
         if math.isinf(v):
             return "inf" if v > 0 else "-inf"
         return repr(v)
-    if isinstance(v, str):  # a JSON string is a valid TOML basic string
-        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, str):  # a JSON string is a valid TOML basic string, once DEL is escaped too
+        return json.dumps(v, ensure_ascii=False).replace("\x7f", "\\u007f")
     if isinstance(v, (list, tuple)):
         return "[" + ", ".join(_toml_value(x) for x in v) + "]"
     if isinstance(v, dict):

@@ -117,6 +117,8 @@ def test_to_toml_quotes_awkward_text():
     lay = parse_layout(EXAMPLE.replace('name = "Example card"', 'name = "Café \\"A\\" \\\\ card"'), "x.toml")
     assert lay.name == 'Café "A" \\ card'
     assert parse_layout(lay.to_toml(), "x.toml").name == lay.name
+    odd = Layout(**{**lay.__dict__, "name": "tab\there, bell\x07, del\x7f, newline\n, é"})
+    assert parse_layout(odd.to_toml(), "x.toml").name == odd.name
 
 
 def test_minimal_layout_defaults():
@@ -232,3 +234,27 @@ def test_layouts_are_frozen():
     lay = parse_layout(EXAMPLE, "card.toml")
     with pytest.raises(AttributeError):
         lay.name = "other"  # type: ignore[misc]
+
+
+# Property: any layout the parser accepts is written back by to_toml to the same layout.
+from hypothesis import given, settings, strategies as st  # noqa: E402
+
+_rule_value = st.one_of(st.integers(-10**6, 10**6), st.text(max_size=12),
+                        st.lists(st.integers(0, 999), min_size=2, max_size=2), st.booleans(),
+                        st.floats(allow_nan=False, allow_infinity=False, width=64))
+
+
+@settings(max_examples=60, deadline=None)
+@given(name=st.text(max_size=30), threshold=st.one_of(st.none(), st.floats(0.001, 1.0)),
+       cells=st.integers(1, 12), rules=st.dictionaries(st.text(min_size=1, max_size=8), _rule_value, max_size=4),
+       relation=st.text(min_size=1, max_size=40).filter(lambda t: t.strip() != ""),
+       x=st.floats(20.0, 100.0), w=st.floats(1.0, 60.0))
+def test_to_toml_round_trips_any_accepted_layout(name, threshold, cells, rules, relation, x, w):
+    base = parse_layout(EXAMPLE, "card.toml")
+    f = base.field("member_number")
+    f = FieldSpec(**{**f.__dict__, "x": x, "w": w, "cells": cells, "max_digits": cells, "rules": rules})
+    lay = Layout(**{**base.__dict__, "name": name, "threshold": threshold, "fields": (f,),
+                    "relations": (relation,)})
+    again = parse_layout(lay.to_toml(), "card.toml")
+    assert again == lay
+    assert again.field("member_number").rules == rules
