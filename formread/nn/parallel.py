@@ -23,6 +23,7 @@ from __future__ import annotations
 
 import json
 import os
+import signal
 import subprocess
 import sys
 import tempfile
@@ -68,6 +69,8 @@ def _map(path, dtype, shapes, capacity, in_shape):
 
 def _worker_main() -> None:
     """Worker process: one JSON set-up line on stdin, then "n smoothing" lines; answers on stdout."""
+    # Ctrl-C is for the parent: it stops training and then closes our input, which ends this loop.
+    signal.signal(signal.SIGINT, signal.SIG_IGN)
     inp, out = sys.stdin, sys.stdout
     cfg = json.loads(inp.readline())
     dtype = np.dtype(cfg["dtype"])
@@ -170,7 +173,9 @@ class DataParallel:
                "in_shape": list(in_shape)}
         proc.stdin.write(json.dumps(cfg) + "\n")
         proc.stdin.flush()
-        if proc.stdout.readline().strip() != "ready":
+        ready = proc.stdout.readline().strip() == "ready"
+        os.unlink(path)  # both processes have it mapped: nothing is left behind, even after a kill
+        if not ready:
             self.close_worker()
             raise RuntimeError("data-parallel worker process failed to start")
         self._proc, self._capacity, self._in_shape = proc, capacity, tuple(in_shape)
@@ -209,7 +214,11 @@ class DataParallel:
         try:
             loss1, c1 = self.model.grad_step(x[:n1], y[:n1], smoothing)
         finally:  # always collect the worker's answer so the next step stays in step
-            answer = self._proc.stdout.readline().split(" ", 2)
+            try:
+                answer = self._proc.stdout.readline().split(" ", 2)
+            except BaseException:  # e.g. interrupted while waiting: the worker is out of step
+                self.close_worker()
+                raise
         if answer[0] != "ok":
             self.close_worker()
             raise RuntimeError("data-parallel worker failed: " + (" ".join(answer[1:]).strip() or "stopped"))
