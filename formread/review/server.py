@@ -108,6 +108,10 @@ class ReviewServer(ThreadingHTTPServer):
         """The address to open, with the session token."""
         return f"http://{HOST}:{self.port}/?token={self.token}"
 
+    def handle_error(self, request, client_address) -> None:
+        """A bug in a handler: log it (library code never prints), keep serving."""
+        log.exception("review server: request from %s failed", client_address[0])
+
     def count_saved(self, action: str) -> None:
         with self._lock:
             self.saved[action] += 1
@@ -188,15 +192,24 @@ class _Handler(BaseHTTPRequestHandler):
         try:
             try:
                 method()
-            except (UnknownItem,) as e:
-                raise _Refused(HTTPStatus.NOT_FOUND, str(e)) from None
+            except UnknownItem as e:
+                raise _Refused(HTTPStatus.NOT_FOUND, self._short(e)) from None
             except sqlite3.OperationalError as e:
                 log.warning("ledger busy: %s", e)
                 raise _Refused(HTTPStatus.SERVICE_UNAVAILABLE, f"the ledger is busy ({e}); try again") from None
             except LedgerError as e:
                 raise _Refused(HTTPStatus.SERVICE_UNAVAILABLE, str(e)) from None
+            except (OSError, ValueError) as e:  # e.g. an image file vanished while being read
+                log.exception("review server: %s %s failed", self.command, urlsplit(self.path).path)
+                raise _Refused(HTTPStatus.INTERNAL_SERVER_ERROR, f"the request failed: {e}") from None
         except _Refused as r:
             self._refuse(r)
+
+    def _short(self, e: Exception) -> str:
+        """The message without the ledger's path (the page needs no file names)."""
+        prefix = f"{actions.ledger_path(self.server.outdir)}: "
+        msg = str(e)
+        return msg[len(prefix):] if msg.startswith(prefix) else msg
 
     def do_GET(self) -> None:  # noqa: N802 - http.server's name
         self._dispatch(self._get)
