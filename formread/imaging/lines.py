@@ -1,0 +1,227 @@
+"""Remove printed box lines from a field's ink map, keeping the strokes that cross them.
+
+The layout says roughly where the lines are (the field's top and bottom edges, the
+cell borders); the actual line is looked for in a band around each expected
+position, as the rows (or columns) covered by long runs of ink.  Its pixels are
+then removed, except where a stroke continues on both sides of the line: there the
+stroke crosses the line, and the line pixels under it are kept as stroke.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage
+
+__all__ = ["Line", "LineResult", "find_line", "remove_box_lines"]
+
+
+@dataclass
+class Line:
+    """A printed line found in a crop.
+
+    Attributes
+    ----------
+    axis : "h" | "v"
+    lo, hi : int
+        First and last row (``"h"``) or column (``"v"``) of the line's core.
+    span : tuple of int (start, stop)
+        Columns (``"h"``) or rows (``"v"``) the line covers, stop exclusive.
+    """
+
+    axis: str
+    lo: int
+    hi: int
+    span: tuple
+
+    @property
+    def centre(self) -> float:
+        return (self.lo + self.hi) / 2
+
+
+@dataclass
+class LineResult:
+    """Outcome of :func:`remove_box_lines`.
+
+    Attributes
+    ----------
+    clean : ndarray of shape (h, w), bool
+        Ink with the box lines removed and crossing strokes kept.
+    lines : ndarray of shape (h, w), bool
+        The pixels taken away.
+    found : list of Line
+    """
+
+    clean: np.ndarray
+    lines: np.ndarray
+    found: list = field(default_factory=list)
+
+
+def _runs_open(band: np.ndarray, length: int, axis: int) -> np.ndarray:
+    """Pixels of runs of ink at least ``length`` long along ``axis`` (morphological opening)."""
+    if length <= 1:
+        return band.copy()
+    shape = (1, length) if axis == 1 else (length, 1)
+    return ndimage.binary_opening(band, structure=np.ones(shape, bool))
+
+
+def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_run: int,
+              min_cover: float, max_thick: int, span: tuple | None = None) -> Line | None:
+    """Find one printed line near an expected position.
+
+    Parameters
+    ----------
+    ink : ndarray of shape (h, w), bool
+    axis : "h" (a horizontal line: look for rows) | "v" (vertical: look for columns)
+    expected : float
+        Expected row (``"h"``) or column (``"v"``) in crop px.
+    search : int
+        Half-width of the band searched around ``expected``, px.
+    min_run : int
+        Shortest run of ink (along the line) that counts as line, px.
+    min_cover : float
+        Share of the span a row/column must have covered by such runs.
+    max_thick : int
+        Thickest line accepted, px.
+    span : (start, stop) or None
+        Part of the crop along the line to look in (default: all of it).
+
+    Returns
+    -------
+    Line or None when no line is there.
+    """
+    a = ink if axis == "h" else ink.T
+    n, length = a.shape
+    s0, s1 = span if span is not None else (0, length)
+    s0, s1 = max(0, int(s0)), min(length, int(s1))
+    lo, hi = max(0, int(round(expected - search))), min(n, int(round(expected + search)) + 1)
+    if hi <= lo or s1 - s0 < min_run:
+        return None
+    band = _runs_open(a[lo:hi, s0:s1], min_run, 1)
+    cover = band.sum(axis=1) / float(s1 - s0)
+    if cover.max() < min_cover:
+        return None
+    # the line's core: rows around the best one with at least half its cover
+    p = int(np.argmax(cover - 1e-3 * np.abs(np.arange(lo, hi) - expected)))
+    keep = cover >= 0.5 * cover[p]
+    a_, b_ = p, p
+    while a_ > 0 and keep[a_ - 1] and b_ - a_ + 1 < max_thick:
+        a_ -= 1
+    while b_ < len(keep) - 1 and keep[b_ + 1] and b_ - a_ + 1 < max_thick:
+        b_ += 1
+    cols = np.flatnonzero(band[a_:b_ + 1].any(axis=0))
+    return Line(axis, lo + a_, lo + b_, (s0 + int(cols[0]), s0 + int(cols[-1]) + 1))
+
+
+def _line_mask(ink: np.ndarray, ln: Line) -> np.ndarray:
+    """Ink pixels of a line's core plus one px of fuzz on each side, within its span."""
+    m = np.zeros_like(ink)
+    a = max(0, ln.lo - 1)
+    if ln.axis == "h":
+        m[a:ln.hi + 2, ln.span[0]:ln.span[1]] = ink[a:ln.hi + 2, ln.span[0]:ln.span[1]]
+    else:
+        m[ln.span[0]:ln.span[1], a:ln.hi + 2] = ink[ln.span[0]:ln.span[1], a:ln.hi + 2]
+    return m
+
+
+def _crossings(keep_ink: np.ndarray, ln: Line, reach: int) -> np.ndarray:
+    """Positions along a line where ink continues on both sides (a stroke crosses).
+
+    Returns
+    -------
+    ndarray of shape (length along the line,), bool
+    """
+    a = keep_ink if ln.axis == "h" else keep_ink.T
+    n = a.shape[0]
+    before = np.zeros(a.shape[1], bool)
+    after = np.zeros(a.shape[1], bool)
+    up = [r for r in range(ln.lo - 2 - reach, ln.lo - 1) if 0 <= r < n]
+    down = [r for r in range(ln.hi + 2, ln.hi + 3 + reach) if 0 <= r < n]
+    if not up or not down:
+        return before
+    # a stroke is there when at least two of the rows next to the line hold ink (one column of slack)
+    before = a[up].sum(axis=0) >= min(2, len(up))
+    after = a[down].sum(axis=0) >= min(2, len(down))
+    before = ndimage.binary_dilation(before, np.ones(3, bool))
+    after = ndimage.binary_dilation(after, np.ones(3, bool))
+    return before & after
+
+
+def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: float = 10.0,
+                     search_mm: float = 1.2, max_thick_mm: float = 1.0, v_span: tuple | None = None,
+                     h_min_run_mm: float = 2.5, h_span: tuple | None = None,
+                     max_lines: int = 1) -> LineResult:
+    """Remove printed lines near expected positions, keeping crossing strokes.
+
+    Parameters
+    ----------
+    ink : ndarray of shape (h, w), bool
+    rows : list of float
+        Expected rows (crop px) of horizontal lines (e.g. the field's top and bottom edges).
+    cols : list of float
+        Expected columns (crop px) of vertical lines (cell borders, field ends).
+    px_per_mm : float
+    search_mm : float
+        How far from the expected position a line may be.
+    max_thick_mm : float
+        Thickest printed line accepted.
+    v_span : (top, bottom) or None
+        Rows a vertical line must cover; default: between the horizontal lines found.
+    h_min_run_mm : float
+        Shortest run of ink counted as horizontal line (shorter than a cell, longer than most strokes).
+    h_span : (left, right) or None
+        Columns searched for horizontal lines (default: all).
+    max_lines : int
+        Most lines looked for near each expected column (2 where separate boxes
+        leave a gap between the right edge of one and the left edge of the next).
+
+    Returns
+    -------
+    LineResult
+    """
+    ink = np.asarray(ink, bool)
+    h, w = ink.shape
+    search = max(2, int(round(search_mm * px_per_mm)))
+    thick = max(2, int(round(max_thick_mm * px_per_mm)))
+    found: list[Line] = []
+    for r in rows:
+        ln = find_line(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
+                       min_cover=0.3, max_thick=thick, span=h_span)
+        if ln is not None:
+            found.append(ln)
+    hs = sorted(found, key=lambda ln: ln.centre)
+    if v_span is None:
+        v_span = (hs[0].lo, hs[-1].hi + 1) if len(hs) >= 2 else (0, h)
+    v_len = max(3, v_span[1] - v_span[0])
+    for c in cols:
+        rest = ink
+        for _ in range(max_lines):
+            span = (max(0, v_span[0] - search), min(h, v_span[1] + search))
+            ln = find_line(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
+                           min_cover=0.85 * v_len / max(1, span[1] - span[0]), max_thick=thick, span=span)
+            if ln is None:
+                break
+            if not any(o.axis == "v" and o.lo <= ln.hi and ln.lo <= o.hi for o in found):
+                found.append(ln)
+            rest = rest.copy()
+            rest[:, max(0, ln.lo - 1):ln.hi + 2] = False
+    if not found:
+        return LineResult(ink.copy(), np.zeros_like(ink), [])
+    masks = [_line_mask(ink, ln) for ln in found]
+    all_lines = np.logical_or.reduce(masks)
+    keep_ink = ink & ~all_lines
+    removed = all_lines.copy()
+    reach = max(2, int(round(0.3 * px_per_mm)))
+    for ln, m in zip(found, masks):
+        cross = _crossings(keep_ink, ln, reach)
+        if not cross.any():
+            continue
+        if ln.axis == "h":
+            restore = m & cross[None, :]
+        else:
+            restore = m & cross[:, None]
+        # a crossing of two printed lines (a box corner) is no stroke: only restore off the other lines
+        others = np.logical_or.reduce([mm for mm in masks if mm is not m]) if len(masks) > 1 else np.zeros_like(m)
+        removed &= ~(restore & ~others)
+    return LineResult(ink & ~removed, removed, found)

