@@ -222,3 +222,80 @@ def avgpool_backward(dy, xshape, k, s):
     for q in range(k * k):
         dx[_slab(q // k, q % k, ho, wo, s)] += share
     return dx
+
+
+def _tile_weights(w, s, scratch: Scratch):
+    """w (O, C, k, k) -> (s*s*O, C*K*K) with K = k + s - 1: row (a, b, o) holds w[o] shifted by
+    (a, b) inside a K x K window, so one product yields the s x s conv outputs of a pooling tile."""
+    o, c, k, _ = w.shape
+    kk = k + s - 1
+    wt = scratch.get("wtile", (s, s, o, c, kk, kk), w.dtype)  # zeros outside the blocks stay zero
+    for a in range(s):
+        for b in range(s):
+            wt[a, b, :, :, a:a + k, b:b + k] = w
+    return wt.reshape(s * s * o, c * kk * kk)
+
+
+def conv_maxpool_forward(x, w, p, s, scratch: Scratch, need_arg: bool = True):
+    """Stride-1 convolution (without bias) followed by s x s max pooling, computed per pooling tile.
+
+    x (C, H, W, N), w (O, C, k, k) -> pooled (O, Ho // s, Wo // s, N), the tile cols and argmax
+    arrays for the backward pass. Each tile's s*s conv outputs come from one (k+s-1)^2 input
+    window, so the matmul has s*s*O rows instead of O (better use of BLAS when O is small) and
+    the pooling is a maximum over s*s contiguous blocks. Conv outputs that the pooling would drop
+    are never computed. Same values and first-maximum choice as conv_forward + maxpool_tiled_forward.
+    """
+    c, h, wd, n = x.shape
+    o, _, k, _ = w.shape
+    kk = k + s - 1
+    if p:
+        xp = scratch.get("xpad", (c, h + 2 * p, wd + 2 * p, n), x.dtype)
+        xp[:, p:p + h, p:p + wd, :] = x
+    else:
+        xp = x
+    hq, wq = out_size(h, k, 1, p) // s, out_size(wd, k, 1, p) // s
+    cols = scratch.get("cols", (c, kk, kk, hq, wq, n), x.dtype)
+    win = sliding_window_view(xp, (kk, kk), axis=(1, 2))
+    win = win[:, : s * (hq - 1) + 1 : s, : s * (wq - 1) + 1 : s]
+    np.copyto(cols, win.transpose(0, 4, 5, 1, 2, 3))
+    cols2 = cols.reshape(c * kk * kk, hq * wq * n)
+    z = np.matmul(_tile_weights(w, s, scratch), cols2).reshape(s, s, o, hq, wq, n)
+    if not need_arg:
+        y = z[0, 0].copy()
+        for q in range(1, s * s):
+            np.maximum(y, z[q // s, q % s], out=y)
+        return y, cols2, None
+    rows, argj = _pick([z[:, b] for b in range(s)], (s, o, hq, wq, n), x.dtype)
+    y, argi = _pick([rows[a] for a in range(s)], (o, hq, wq, n), x.dtype)
+    return y, cols2, (argi, argj)
+
+
+def conv_maxpool_backward(dy, args, w, cols2, xshape, p, s, scratch: Scratch, need_dx: bool = True):
+    """dy (O, Hq, Wq, N) for ``conv_maxpool_forward`` -> (dx (C, H, W, N) or None, dw (O, C, k, k))."""
+    argi, argj = args
+    c, h, wd, n = xshape
+    o, _, k, _ = w.shape
+    kk = k + s - 1
+    _, hq, wq, _ = dy.shape
+    m = hq * wq * n
+    drows = np.empty((s, o, hq, wq, n), dtype=dy.dtype)
+    _route(dy, argi, [drows[a] for a in range(s)])
+    dz = np.empty((s, s, o, hq, wq, n), dtype=dy.dtype)
+    _route(drows, argj, [dz[:, b] for b in range(s)])
+    dz2 = dz.reshape(s * s * o, m)
+    dwt = np.matmul(cols2, dz2.T).T.reshape(s, s, o, c, kk, kk)
+    dw = dwt[0, 0, :, :, :k, :k].copy()
+    for q in range(1, s * s):
+        a, b = divmod(q, s)
+        dw += dwt[a, b, :, :, a:a + k, b:b + k]
+    if not need_dx:
+        return None, dw
+    dcols = scratch.get("dcols", (c * kk * kk, m), dy.dtype)
+    np.matmul(_tile_weights(w, s, scratch).T, dz2, out=dcols)
+    dcols = dcols.reshape(c, kk, kk, hq, wq, n)
+    dxp = np.zeros((c, h + 2 * p, wd + 2 * p, n), dtype=dy.dtype)
+    for u in range(kk):
+        for v in range(kk):
+            dxp[_slab(u, v, hq, wq, s)] += dcols[:, u, v]
+    dx = dxp[:, p:p + h, p:p + wd, :] if p else dxp
+    return dx, dw

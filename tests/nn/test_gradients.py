@@ -110,20 +110,26 @@ def test_loss_gradient(smoothing):
     np.testing.assert_allclose(d, num, rtol=1e-6, atol=1e-9)
 
 
-def test_whole_model_gradient():
+@pytest.mark.parametrize("width,size", [(3, 6), (9, 7)])
+def test_whole_model_gradient(width, size):
+    """conv -> relu -> maxpool runs fused (per pooling tile for 3 channels, as a plain convolution
+    then pooling for 9); size 7 leaves a conv row and column that the pooling drops."""
     rng = np.random.default_rng(6)
     spec = [
-        {"type": "conv2d", "in": 2, "out": 3, "kernel": 3, "padding": 1},
+        {"type": "conv2d", "in": 2, "out": width, "kernel": 3, "padding": 1},
         {"type": "relu"},
         {"type": "maxpool", "size": 2},
-        {"type": "conv2d", "in": 3, "out": 4, "kernel": 2, "stride": 2},
+        {"type": "conv2d", "in": width, "out": 4, "kernel": 2, "stride": 2},
         {"type": "tanh"},
         {"type": "flatten"},
         {"type": "dense", "in": 4, "out": 3},
     ]
     model = build_model(spec, rng, dtype=np.float64)
     assert isinstance(model, Sequential)
-    x = rng.standard_normal((3, 2, 6, 6))
+    assert model._blocks[0].tiled == (width == 3)
+    for p in model.parameters():
+        p.value += 0.1 * rng.standard_normal(p.value.shape)  # non-zero biases too
+    x = rng.standard_normal((3, 2, size, size))
     y = np.array([0, 2, 1])
 
     def f():

@@ -231,13 +231,22 @@ def test_maxpool_ties_go_to_first_maximum(size, stride):
     np.testing.assert_array_equal(dx, expect)
 
 
-def test_fused_conv_relu_pool_equals_separate_layers():
-    """The model fuses conv -> relu -> maxpool; the separate layers give the same values and grads."""
-    model = build_model("lenet5", np.random.default_rng(0), dtype=np.float64)
+@pytest.mark.parametrize("size", [28, 27])
+def test_fused_conv_relu_pool_equals_separate_layers(size):
+    """The model fuses conv -> relu -> maxpool (the first one per pooling tile, the second as a
+    plain convolution then pooling); the separate layers give the same values and gradients."""
+    flat = {28: 16 * 6 * 6, 27: 16 * 5 * 5}[size]
+    spec = [{"type": "conv2d", "in": 1, "out": 6, "kernel": 5, "padding": 2}, {"type": "relu"},
+            {"type": "maxpool", "size": 2},
+            {"type": "conv2d", "in": 6, "out": 16, "kernel": 3}, {"type": "relu"},
+            {"type": "maxpool", "size": 2}, {"type": "flatten"},
+            {"type": "dense", "in": flat, "out": 10}]
+    model = build_model(spec, np.random.default_rng(0), dtype=np.float64)
+    assert [getattr(b, "tiled", None) for b in model._blocks[:2]] == [True, False]
     for p in model.parameters():
         if p.name.endswith("bias"):
             p.value[:] = np.random.default_rng(2).standard_normal(p.value.shape)
-    x = np.zeros((4, 1, 28, 28))  # blank borders: many exact ties
+    x = np.zeros((4, 1, size, size))  # blank borders: many exact ties
     x[:, :, 8:20, 6:22] = np.random.default_rng(1).random((4, 1, 12, 16))
     d = np.random.default_rng(3).standard_normal((4, 10))
     z = model.forward(x)
