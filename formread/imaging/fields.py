@@ -13,9 +13,13 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage
 
-from ..errors import check_param
+from ..errors import SegmentationError, check_param
+from .binarize import threshold_otsu, threshold_sauvola
 
-__all__ = ["FieldCrop", "cut_field", "crop_to_page", "field_corners_px", "otsu_level", "ink_map"]
+OFF_PAGE_SHARE = 0.25
+"""A field with more than this share of its rectangle off the scanned image cannot be cut."""
+
+__all__ = ["FieldCrop", "cut_field", "crop_to_page", "field_corners_px", "ink_map", "OFF_PAGE_SHARE"]
 
 
 @dataclass
@@ -51,6 +55,17 @@ class FieldCrop:
     matrix: np.ndarray
 
 
+def _share_inside(corners: np.ndarray, W: int, H: int) -> float:
+    """Approximate share of a quadrilateral (4, 2) page px inside a W x H image (sampled on a grid)."""
+    u = np.linspace(0.05, 0.95, 10)
+    a, b = np.meshgrid(u, u)
+    tl, tr, br, bl = corners
+    pts = (tl * ((1 - a) * (1 - b))[..., None] + tr * (a * (1 - b))[..., None]
+           + br * (a * b)[..., None] + bl * ((1 - a) * b)[..., None])
+    ok = (pts[..., 0] >= 0) & (pts[..., 0] <= W) & (pts[..., 1] >= 0) & (pts[..., 1] <= H)
+    return float(ok.mean())
+
+
 def field_corners_px(matrix: np.ndarray, x: float, y: float, w: float, h: float) -> np.ndarray:
     """Corners of a layout rectangle on the page.
 
@@ -74,74 +89,47 @@ def crop_to_page(crop: FieldCrop, pts) -> np.ndarray:
 
     Returns
     -------
-    ndarray of shape (N, 2), float64: page pixels (x = col, y = row)
+    ndarray of shape (N, 2), float64: page pixels (x = col, y = row), continuous like
+    ``Registration.matrix`` (pixel (c, r) covers [c, c + 1) x [r, r + 1))
     """
     p = np.asarray(pts, np.float64).reshape(-1, 2)
     mm = np.column_stack([crop.x0_mm + p[:, 0] / crop.px_per_mm, crop.y0_mm + p[:, 1] / crop.px_per_mm,
                           np.ones(len(p))])
-    return mm @ crop.matrix.T - 0.5
-
-
-def otsu_level(gray: np.ndarray) -> float:
-    """Otsu's (1979) threshold of a uint8 image from its histogram.
-
-    Parameters
-    ----------
-    gray : ndarray of any shape, uint8
-
-    Returns
-    -------
-    float: pixels ``<= level`` belong to the dark class (scikit-image's convention).
-    """
-    hist = np.bincount(np.asarray(gray, np.uint8).ravel(), minlength=256).astype(np.float64)
-    total = hist.sum()
-    if total == 0:
-        return 127.0
-    levels = np.arange(256, dtype=np.float64)
-    w0 = np.cumsum(hist)
-    w1 = total - w0
-    m0 = np.cumsum(hist * levels)
-    mt = m0[-1]
-    with np.errstate(divide="ignore", invalid="ignore"):
-        between = (mt * w0 / total - m0) ** 2 / (w0 * w1)
-    between[~np.isfinite(between)] = -1
-    return float(np.argmax(between))
+    return mm @ crop.matrix.T
 
 
 def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu",
             px_per_mm: float = 10.0) -> np.ndarray:
-    """Binarise a crop into ink.
+    """Binarise a crop into ink (with :mod:`formread.imaging.binarize`).
 
     Parameters
     ----------
     gray : ndarray of shape (h, w), uint8, 0 = ink
     level : float or None
-        A page-wide grey level (pixels ``<= level`` are ink); when None, Otsu on the
-        crop itself, refused (all paper) when the crop has too little contrast to hold ink.
-    method : "otsu" | "sauvola" | "auto"
-        ``"sauvola"`` thresholds locally (Sauvola 2000, k = 0.2, R = 128, window 4 mm),
-        floored by the global level so that paper noise never becomes ink.
+        A page-wide grey level (pixels ``<= level`` are ink), so that a blank field
+        stays blank; when None, Otsu on the crop itself, and a crop with too little
+        contrast to hold ink is all paper.
+    method : "otsu" | "sauvola"
+        ``"sauvola"`` thresholds locally (Sauvola 2000, k = 0.2, R = 128, window 8 mm),
+        never darker-than-level paper only: a pixel is ink when it is under both the
+        local threshold and the midpoint between ``level`` and white.
 
     Returns
     -------
     ndarray of shape (h, w), bool, True = ink
     """
     g = np.asarray(gray)
+    if g.size == 0:
+        return np.zeros(g.shape, bool)
     if level is None:
-        lo, hi = np.percentile(g, [1, 99.5]) if g.size else (255, 255)
-        if hi - lo < 40:  # a near-uniform crop: no ink at all (or all ink, which is no field either)
+        lo, hi = np.percentile(g, [1, 99.5])
+        if hi - lo < 40:  # a near-uniform crop: no ink at all
             return np.zeros(g.shape, bool)
-        level = otsu_level(g)
-    ink = g <= level
+        level = threshold_otsu(g)
     if method == "sauvola":
-        f = g.astype(np.float32)
-        size = max(3, int(round(4 * px_per_mm)) | 1)
-        m = ndimage.uniform_filter(f, size, mode="nearest")
-        s = np.sqrt(np.maximum(ndimage.uniform_filter(f * f, size, mode="nearest") - m * m, 0))
-        t = m * (1 + 0.2 * (s / 128.0 - 1))
-        # local threshold, but never call paper brighter than the midpoint between level and white ink
-        ink = (f <= t) & (f <= (level + 255.0) / 2)
-    return ink
+        window = max(3, int(round(8 * px_per_mm)) | 1)
+        return (g <= threshold_sauvola(g, window=window, k=0.2, r=128.0)) & (g <= (level + 255.0) / 2)
+    return g <= level
 
 
 def cut_field(registration, field, *, px_per_mm: float = 10.0, margin_mm: float = 1.5,
@@ -161,6 +149,11 @@ def cut_field(registration, field, *, px_per_mm: float = 10.0, margin_mm: float 
         Paper around the field rectangle kept in the crop (for line search and spill-over).
     level, method
         Binarisation (see :func:`ink_map`).
+
+    Raises
+    ------
+    SegmentationError
+        When more than ``OFF_PAGE_SHARE`` of the field lies off the scanned image.
 
     Returns
     -------
@@ -188,7 +181,11 @@ def cut_field(registration, field, *, px_per_mm: float = 10.0, margin_mm: float 
     r1 = int(np.clip(np.ceil(corners[:, 0].max()) + 3, 0, H))
     c0 = int(np.clip(np.floor(corners[:, 1].min()) - 2, 0, W))
     c1 = int(np.clip(np.ceil(corners[:, 1].max()) + 3, 0, W))
-    if r1 <= r0 or c1 <= c0:  # field entirely off the page: all paper
+    fc = field_corners_px(A, field.x, field.y, field.w, field.h)
+    inside = _share_inside(fc, W, H)
+    if inside < 1 - OFF_PAGE_SHARE:
+        raise SegmentationError(f"field {field.name!r}: {1 - inside:.0%} of it lies off the scanned page")
+    if r1 <= r0 or c1 <= c0:
         gray = np.full((out_h, out_w), 255, np.uint8)
     else:
         window = page[r0:r1, c0:c1].astype(np.float32)

@@ -26,11 +26,12 @@ import numpy as np
 from scipy import ndimage
 
 from ..digits import SIZE, normalize_digit
+from ..errors import SegmentationError
 from .fields import FieldCrop
 from .lines import remove_box_lines
 
 __all__ = ["Candidate", "FieldDigits", "segment_field", "segment_boxed", "segment_open",
-           "BLANK_SHARE", "BLANK_HEIGHT", "MAX_CANDIDATES"]
+           "BLANK_SHARE", "BLANK_HEIGHT", "MAX_CANDIDATES", "SOLID_SHARE"]
 
 log = logging.getLogger(__name__)
 
@@ -40,6 +41,8 @@ BLANK_HEIGHT = 0.25
 """A cell whose ink is shorter than this share of the cell height is blank (a dot, a dash)."""
 MAX_CANDIDATES = 8
 """Most segmentations returned for an open field."""
+SOLID_SHARE = 0.6
+"""A field whose rectangle is more than this share ink cannot be segmented."""
 SPECK_MM2 = 0.12
 """Ink pieces smaller than this (mm^2) and under 0.6 mm long are dropped as specks."""
 
@@ -194,7 +197,16 @@ def segment_field(crop: FieldCrop, field) -> FieldDigits:
     Returns
     -------
     FieldDigits
+
+    Raises
+    ------
+    SegmentationError
+        When more than ``SOLID_SHARE`` of the field is ink: nothing to segment.
     """
+    x0, y0, x1, y1 = (int(round(v)) for v in crop.rect)
+    inside = crop.ink[y0:y1, x0:x1]
+    if inside.size and inside.mean() > SOLID_SHARE:
+        raise SegmentationError(f"field {field.name!r}: {inside.mean():.0%} of it is ink (blacked out or covered?)")
     if field.kind == "boxed":
         return segment_boxed(crop, field)
     return segment_open(crop, field)

@@ -1,0 +1,132 @@
+"""One page in, its fields' digit images out: register, binarise, cut, segment.
+
+A page that cannot be registered raises ``RegistrationError`` (the batch records it
+as a failed page).  A field that cannot be cut or segmented never stops the page: it
+comes back with no candidates, ``doubtful=True`` and the reason, for a person to read.
+"""
+
+from __future__ import annotations
+
+import logging
+import time
+from dataclasses import dataclass
+
+import numpy as np
+
+from ..errors import SegmentationError
+from .binarize import is_uneven, threshold_otsu
+from .fields import cut_field, field_corners_px
+from .segment import FieldDigits, segment_field
+
+__all__ = ["PageDigits", "process_page", "page_ink_level", "STEPS"]
+
+log = logging.getLogger(__name__)
+
+STEPS = ("load", "binarize", "register", "cut", "segment")
+"""The steps timed by ``process_page(..., timings=)`` (``load`` is timed by the caller)."""
+
+
+@dataclass
+class PageDigits:
+    """A page's fields cut into digits (DEVELOPERS.md, "Python objects").
+
+    Attributes
+    ----------
+    registration : Registration
+        Where the layout lies on the page (``image`` is the page the right way up).
+    fields : dict of str -> FieldDigits
+        One entry per layout field, in layout order.
+    method : str
+        The binarisation used for the crops (``"otsu"`` or ``"sauvola"``).
+    level : float
+        The page's ink level (grey levels ``<= level`` are ink).
+    """
+
+    registration: object
+    fields: dict
+    method: str = "otsu"
+    level: float = 127.0
+
+
+def page_ink_level(image: np.ndarray) -> float:
+    """Otsu's level of a page from a sparse sample (every 3rd row and column: the histogram barely changes).
+
+    Parameters
+    ----------
+    image : ndarray of shape (H, W), uint8, 0 = ink
+
+    Returns
+    -------
+    float: grey levels ``<= level`` are ink; never above 80% of the paper's brightness, so the
+    noise of a blank page is not ink.
+    """
+    sample = np.asarray(image)[::3, ::3]
+    level = threshold_otsu(sample)
+    paper = float(np.percentile(sample, 99))
+    return float(min(level, 0.8 * paper))
+
+
+def _failed(field, reg, reason: str) -> FieldDigits:
+    """A field that could not be segmented: no candidates, doubtful, with the reason."""
+    corners = field_corners_px(reg.matrix, field.x, field.y, field.w, field.h)
+    return FieldDigits(field.name, field.kind, np.full((1, 1), 255, np.uint8), [],
+                       np.ones(field.cells, bool) if field.kind == "boxed" else None,
+                       True, reason, corners, None)
+
+
+def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float = 10.0,
+                 margin_mm: float = 1.5) -> PageDigits:
+    """Register a page to its layout and cut every field into digit images.
+
+    Parameters
+    ----------
+    page : Page
+        ``gray`` (H, W) uint8 (0 = ink), ``dpi``, ``source``, ``page_number``.
+    layout : Layout
+    timings : dict or None
+        When given, seconds spent per step (``binarize``, ``register``, ``cut``,
+        ``segment``) are added to it, for the page-speed benchmark.
+    px_per_mm, margin_mm : float
+        Crop resolution and the paper kept around each field (see ``cut_field``).
+
+    Returns
+    -------
+    PageDigits
+
+    Raises
+    ------
+    RegistrationError
+        When the page cannot be matched to the layout (from ``register_page``).
+    """
+    from .register import register_page
+
+    tick = time.perf_counter
+
+    def add(step: str, t0: float) -> float:
+        t1 = tick()
+        if timings is not None:
+            timings[step] = timings.get(step, 0.0) + (t1 - t0)
+        return t1
+
+    t = tick()
+    reg = register_page(page, layout)
+    t = add("register", t)
+    dpi = float(getattr(reg, "dpi", 0.0) or page.dpi)
+    method = layout.binarize
+    if method == "auto":
+        method = "sauvola" if is_uneven(reg.image, dpi) else "otsu"
+    level = page_ink_level(reg.image)
+    t = add("binarize", t)
+    where = f"{page.source} page {page.page_number}"
+    out: dict[str, FieldDigits] = {}
+    for field in layout.fields:
+        try:
+            crop = cut_field(reg, field, px_per_mm=px_per_mm, margin_mm=margin_mm, level=level, method=method)
+            t = add("cut", t)
+            out[field.name] = segment_field(crop, field)
+            t = add("segment", t)
+        except SegmentationError as e:
+            log.info("%s: %s", where, e)
+            out[field.name] = _failed(field, reg, str(e))
+            t = add("segment", t)
+    return PageDigits(reg, out, method, level)
