@@ -46,6 +46,23 @@ class Scratch:
         self._arrays.clear()
 
 
+_CONTROLLER = None
+
+
+def one_blas_thread():
+    """Context manager: BLAS limited to one thread inside (about 6 microseconds to enter).
+
+    The network's matrices are small: extra BLAS threads give little and, when the machine is
+    busy, their spin-waiting makes a pass many times slower (measured). Both cores are used by
+    processes instead (``formread.nn.parallel``).
+    """
+    global _CONTROLLER
+    if _CONTROLLER is None:
+        from threadpoolctl import ThreadpoolController
+        _CONTROLLER = ThreadpoolController()
+    return _CONTROLLER.limit(limits=1, user_api="blas")
+
+
 def out_size(n: int, k: int, s: int, p: int = 0) -> int:
     """Output length of a window of size k at stride s over n values padded by p on each side."""
     return (n + 2 * p - k) // s + 1

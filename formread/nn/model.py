@@ -140,6 +140,8 @@ def _blocks(layers: list[L.Layer]) -> list:
 class Sequential:
     """Layers applied in order. Input (N, C, H, W) float32 (or float64) -> logits (N, classes).
 
+    Passes run with one BLAS thread (see ``_conv.one_blas_thread``); for two cores in training
+    use ``formread.nn.parallel.DataParallel``.
     ``spec`` is the JSON-serialisable list of layer dicts the model was built from. ``backward``
     uses what the most recent ``forward`` cached. Several threads may call ``forward`` /
     ``predict_proba`` at once (work arrays are per thread); training is single-threaded.
@@ -172,8 +174,9 @@ class Sequential:
         if x.dtype != self.dtype:
             x = x.astype(self.dtype)
         h = L.to_internal(x)
-        for block in self._blocks:
-            h = block._fwd(h, train)
+        with _conv.one_blas_thread():
+            for block in self._blocks:
+                h = block._fwd(h, train)
         return L.to_public(h)
 
     def backward(self, dlogits: np.ndarray, input_grad: bool = True) -> np.ndarray | None:
@@ -184,8 +187,9 @@ class Sequential:
         """
         d = L.to_internal(np.asarray(dlogits, dtype=self.dtype))
         last = len(self._blocks) - 1
-        for i, block in enumerate(reversed(self._blocks)):
-            d = block._bwd(d, input_grad or i < last)
+        with _conv.one_blas_thread():
+            for i, block in enumerate(reversed(self._blocks)):
+                d = block._bwd(d, input_grad or i < last)
         return None if d is None else L.to_public(d)
 
     def grad_step(self, x: np.ndarray, y: np.ndarray, smoothing: float = 0.0) -> tuple[float, int]:
