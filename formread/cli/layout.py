@@ -1,9 +1,125 @@
-"""Commands of the layout group (filled in by its issue)."""
+"""Commands of the layout group: ``layout proof`` (check a layout on a scan) and ``layout draft``."""
 
 from __future__ import annotations
 
+import os
+import tempfile
+from pathlib import Path
+from typing import Optional
+
 import typer
+
+from ..errors import ImageError, LayoutError
+from .common import edge
+
+group = typer.Typer(name="layout", help="Make and check form layouts.", no_args_is_help=True)
 
 
 def register(app: typer.Typer) -> None:
     """Add this group's commands to the main app."""
+    app.add_typer(group, name="layout")
+
+
+def _page(scan: Path, number: int):
+    """Page ``number`` (1-based) of a scan file; ImageError naming the file when it has no such page."""
+    from ..imaging.load import iter_pages
+
+    if number < 1:
+        raise ImageError(f"{scan}: no page {number} (pages count from 1)")
+    count = 0
+    for pg in iter_pages(scan):
+        count += 1
+        if count == number:
+            return pg
+    raise ImageError(f"{scan}: no page {number} (the file has {count} page{'s' if count != 1 else ''})")
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    """Write a file through a temporary one in the same folder, so a stop never leaves half a file."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as f:
+            f.write(data)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+@group.command("proof")
+@edge
+def proof_cmd(
+    scan: Path = typer.Argument(..., help="Scanned form (PNG, TIFF, JPEG or PDF)."),
+    layout_file: Path = typer.Option(..., "--layout", "-l", help="Layout file (TOML) to check."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o",
+                                       help="PNG to write (default: SCAN's name with .proof-pN.png)."),
+    page: int = typer.Option(1, "--page", "-p", help="Page of SCAN to use (1 = first)."),
+    scale: float = typer.Option(0.5, "--scale", help="Size of the picture relative to the scan."),
+):
+    """Draw the layout's fields, cells and the digits found over a scan, to check the layout by eye.
+
+    Blue: field rectangles and cells; amber: digit boxes; grey dot: blank cell;
+    plum: a doubtful field with its reason; green rings: registration marks used.
+    """
+    import io
+
+    from ..imaging.layout import load_layout
+    from ..imaging.pipeline import process_page
+    from ..imaging.proof import render_proof
+
+    layout = load_layout(layout_file)
+    pg = _page(scan, page)
+    result = process_page(pg, layout)
+    img = render_proof(result, layout, scale=scale)
+    target = out if out is not None else scan.with_name(f"{scan.stem}.proof-p{page}.png")
+    buf = io.BytesIO()
+    img.save(buf, format="PNG")
+    _atomic_write(target, buf.getvalue())
+    reg = result.registration
+    typer.echo(f"{scan} page {page}: {reg.marks_found} marks, residual {reg.residual_mm:.2f} mm, "
+               f"skew {reg.skew_deg:+.2f} deg{', turned 180 deg' if reg.rotated_180 else ''}")
+    for name, fd in result.fields.items():
+        if fd.kind == "boxed" and fd.blank is not None:
+            what = f"{int((~fd.blank).sum())} of {len(fd.blank)} cells written"
+        else:
+            what = (f"{len(fd.candidates[0].boxes)} digits ({len(fd.candidates)} splits)"
+                    if fd.candidates else "no digits")
+        doubt = f"  DOUBTFUL: {fd.reason}" if fd.doubtful else ""
+        typer.echo(f"  {name}: {what}{doubt}")
+    typer.echo(f"wrote {target}")
+
+
+@group.command("draft")
+@edge
+def draft_cmd(
+    blank_form: Path = typer.Argument(..., help="Straight scan of the blank form (PNG, TIFF, JPEG or PDF)."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o",
+                                       help="Layout file to write (default: BLANK_FORM's name with .draft.toml)."),
+    page: int = typer.Option(1, "--page", "-p", help="Page of BLANK_FORM to use (1 = first)."),
+    name: Optional[str] = typer.Option(None, "--name", help="The form's name in the layout."),
+    force: bool = typer.Option(False, "--force", help="Overwrite OUT if it exists."),
+):
+    """Draft a layout from a blank form: its corner squares and printed rectangles.
+
+    Fields are named field_1, field_2, ... in reading order; rename them, add rules,
+    and check the result with `formread layout proof`.
+    """
+    from ..imaging.draft import draft_layout
+    from ..imaging.layout import parse_layout
+
+    target = out if out is not None else blank_form.with_name(f"{blank_form.stem}.draft.toml")
+    if target.exists() and not force:
+        raise LayoutError(f"{target}: already exists (use --force to overwrite)")
+    pg = _page(blank_form, page)
+    layout = draft_layout(pg, name=name)
+    text = ("# Drafted by `formread layout draft` from "
+            f"{blank_form.name} page {page}: name the fields, set optional/rules, then check with "
+            "`formread layout proof`.\n" + layout.to_toml())
+    parse_layout(text, str(target))  # what is written must load back
+    _atomic_write(target, text.encode("utf-8"))
+    kinds = [f.kind for f in layout.fields]
+    typer.echo(f"{blank_form} page {page}: {len(layout.marks)} marks, {len(kinds)} fields "
+               f"({kinds.count('boxed')} boxed, {kinds.count('open')} open)")
+    typer.echo(f"wrote {target}")
