@@ -46,21 +46,45 @@ class Scratch:
         self._arrays.clear()
 
 
-_CONTROLLER = None
-
-
-def one_blas_thread():
-    """Context manager: BLAS limited to one thread inside (about 6 microseconds to enter).
+class _OneBlasThread:
+    """Context manager: BLAS limited to one thread inside (a few microseconds to enter).
 
     The network's matrices are small: extra BLAS threads give little and, when the machine is
     busy, their spin-waiting makes a pass many times slower (measured). Both cores are used by
-    processes instead (``formread.nn.parallel``).
+    processes instead (``formread.nn.parallel``). Reference-counted, so that overlapping uses from
+    several threads restore the original setting only when the last one leaves.
     """
-    global _CONTROLLER
-    if _CONTROLLER is None:
-        from threadpoolctl import ThreadpoolController
-        _CONTROLLER = ThreadpoolController()
-    return _CONTROLLER.limit(limits=1, user_api="blas")
+
+    def __init__(self):
+        self._lock = threading.Lock()
+        self._depth = 0
+        self._controller = None
+        self._limiter = None
+
+    def __enter__(self):
+        with self._lock:
+            if self._depth == 0:
+                if self._controller is None:
+                    from threadpoolctl import ThreadpoolController
+                    self._controller = ThreadpoolController()
+                self._limiter = self._controller.limit(limits=1, user_api="blas")
+            self._depth += 1
+        return self
+
+    def __exit__(self, *exc):
+        with self._lock:
+            self._depth -= 1
+            if self._depth == 0:
+                self._limiter.restore_original_limits()
+                self._limiter = None
+
+
+_ONE_BLAS_THREAD = _OneBlasThread()
+
+
+def one_blas_thread() -> _OneBlasThread:
+    """The shared context manager that keeps BLAS at one thread while a network pass runs."""
+    return _ONE_BLAS_THREAD
 
 
 def out_size(n: int, k: int, s: int, p: int = 0) -> int:

@@ -276,8 +276,14 @@ def test_empty_batch_and_threads_share_a_model():
     model = build_model("lenet5", np.random.default_rng(0))
     assert model.forward(np.zeros((0, 1, 28, 28), dtype=np.float32)).shape == (0, 10)
     xs = [np.random.default_rng(i).random((40 + i, 1, 28, 28), dtype=np.float32) for i in range(6)]
+    from threadpoolctl import threadpool_info
+
+    def blas_threads():
+        return [i["num_threads"] for i in threadpool_info() if i["user_api"] == "blas"]
+    before = blas_threads()
     serial = [model.predict_proba(x) for x in xs]
     with ThreadPoolExecutor(3) as pool:
         threaded = list(pool.map(model.predict_proba, xs))
     for a, b in zip(serial, threaded):
         np.testing.assert_array_equal(a, b)
+    assert blas_threads() == before  # the one-thread limit of the passes is undone afterwards
