@@ -55,6 +55,13 @@ def _default_header() -> dict:
     }
 
 
+def _plain(obj):
+    """numpy scalars and arrays in a header become plain JSON numbers and lists."""
+    if isinstance(obj, (np.generic, np.ndarray)):
+        return obj.tolist()
+    raise TypeError(f"{type(obj).__name__} is not JSON-serialisable")
+
+
 def save_model(path: str | os.PathLike, model: Sequential, header: dict | None = None) -> dict:
     """Write ``model`` and ``header`` to ``path`` atomically; return the full header written.
 
@@ -73,9 +80,10 @@ def save_model(path: str | os.PathLike, model: Sequential, header: dict | None =
     full["sha256"] = weights_sha256(arrays)
     full["created"] = _dt.datetime.now(_dt.timezone.utc).replace(microsecond=0).isoformat()
     try:
-        text = json.dumps(full, sort_keys=True)
+        text = json.dumps(full, sort_keys=True, default=_plain)
     except (TypeError, ValueError) as e:
         raise ModelFileError(f"{path}: header is not JSON-serialisable ({e})") from None
+    full = json.loads(text)  # what a later read_header returns
     payload = dict(arrays)
     payload[HEADER_KEY] = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
     path.parent.mkdir(parents=True, exist_ok=True)

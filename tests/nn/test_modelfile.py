@@ -190,6 +190,13 @@ def test_save_is_atomic_on_failure(saved, monkeypatch):
     assert [p.name for p in path.parent.iterdir()] == ["m.npz"]
 
 
+def test_numpy_values_in_header_become_plain_json(tmp_path):
+    model = build_model("lenet5", np.random.default_rng(0))
+    h = save_model(tmp_path / "m.npz", model, {"metrics": {"acc": np.float32(0.5), "n": np.int64(3),
+                                                           "curve": np.array([1, 2])}})
+    assert h["metrics"] == {"acc": 0.5, "n": 3, "curve": [1, 2]} == read_header(tmp_path / "m.npz")["metrics"]
+
+
 def test_unserialisable_header(tmp_path):
     model = build_model("lenet5", np.random.default_rng(0))
     with pytest.raises(ModelFileError):
