@@ -116,10 +116,10 @@ class FieldDigits:
 
 # ----------------------------------------------------------------------------- shared helpers
 
-def _ink_weights(crop: FieldCrop, mask: np.ndarray) -> np.ndarray:
-    """Grey-level ink (0..1, high = ink) inside ``mask``: soft edges like the training digits."""
-    g = (255.0 - crop.gray.astype(np.float32)) / 255.0
-    return np.where(mask, np.maximum(g, 0.35), 0.0).astype(np.float32)
+def _ink_weights(crop: FieldCrop) -> np.ndarray:
+    """Grey-level ink of the crop (0..1, high = ink; at least 0.35 where binarised ink is kept):
+    soft edges like the training digits.  (h, w) float32."""
+    return np.maximum((255.0 - crop.gray.astype(np.float32)) / np.float32(255.0), np.float32(0.35))
 
 
 def _drop_specks(ink: np.ndarray, ppm: float, rect) -> tuple[np.ndarray, np.ndarray, int]:
@@ -175,14 +175,14 @@ def _crop_corners_px(crop: FieldCrop) -> np.ndarray:
     return crop_to_page(crop, [[0, 0], [w, 0], [w, h], [0, h]])
 
 
-def _digit(crop: FieldCrop, mask: np.ndarray) -> tuple[np.ndarray, tuple]:
-    """Normalised digit and its ink box from a mask of its pixels."""
+def _digit(weights: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, tuple]:
+    """Normalised digit (28, 28) float32 and its ink box from the crop's ink weights and a mask of its pixels."""
     rows = np.flatnonzero(mask.any(axis=1))
     cols = np.flatnonzero(mask.any(axis=0))
     if rows.size == 0:
         return np.zeros((SIZE, SIZE), np.float32), (0, 0, 0, 0)
     sl = (slice(rows[0], rows[-1] + 1), slice(cols[0], cols[-1] + 1))
-    img = normalize_digit(_ink_weights(crop, mask)[sl])
+    img = normalize_digit(np.where(mask[sl], weights[sl], np.float32(0.0)))
     return img, (int(cols[0]), int(rows[0]), int(cols[-1]) + 1, int(rows[-1]) + 1)
 
 
@@ -231,6 +231,7 @@ def segment_boxed(crop: FieldCrop, field) -> FieldDigits:
                            search_mm=min(1.2, 0.3 * cw / ppm), max_lines=2)
     lab, kept, n = _drop_specks(res.clean, ppm, crop.rect)
     digits = np.zeros((K, 1, SIZE, SIZE), np.float32)
+    weights = _ink_weights(crop)
     boxes = []
     blank = np.ones(K, bool)
     doubtful, reason = False, None
@@ -257,7 +258,7 @@ def segment_boxed(crop: FieldCrop, field) -> FieldDigits:
             height = rows[-1] - rows[0] + 1
             if area >= BLANK_SHARE * cell_area and height >= BLANK_HEIGHT * (y1 - y0):
                 blank[k] = False
-                digits[k, 0], box = _digit(crop, mask)
+                digits[k, 0], box = _digit(weights, mask)
                 boxes.append(box)
                 continue
         cx0, cx1 = borders[k], borders[k + 1]
@@ -479,22 +480,25 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     finals.sort(key=lambda t: t[0])
     candidates = []
     seen = set()
+    weights = _ink_weights(crop)
+    images: dict = {}
     for cost, cut in finals:
-        masks_boxes = [group(cut[t], cut[t + 1]) for t in range(len(cut) - 1)]
-        boxes = tuple(mb[1] for mb in masks_boxes)
+        pairs = [(cut[t], cut[t + 1]) for t in range(len(cut) - 1)]
+        boxes = tuple(group(*p)[1] for p in pairs)
         if boxes in seen:
             continue
         seen.add(boxes)
         digits = np.zeros((len(boxes), 1, SIZE, SIZE), np.float32)
-        for t, (m, _, _) in enumerate(masks_boxes):
-            digits[t, 0] = _digit(crop, m)[0]
+        for t, p in enumerate(pairs):
+            if p not in images:  # the same digit recurs in many candidates: normalise it once
+                images[p] = _digit(weights, group(*p)[0])[0]
+            digits[t, 0] = images[p]
         candidates.append(Candidate(digits, list(boxes), float(cost)))
         if len(candidates) >= max_candidates:
             break
     if not candidates:  # cannot happen with finite single-piece groups, but never lose the field
-        m = ink
-        digits = _digit(crop, m)[0][None, None]
-        candidates = [Candidate(digits, [_digit(crop, m)[1]], float("inf"))]
+        img, box = _digit(weights, ink)
+        candidates = [Candidate(img[None, None], [box], float("inf"))]
     doubtful, reason = _open_doubt(candidates, field, dh)
     return FieldDigits(field.name, field.kind, image, candidates, None, doubtful, reason, corners, crop.rect)
 
