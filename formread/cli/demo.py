@@ -69,6 +69,9 @@ def demo_cmd(
         typer.echo("")
         typer.echo(render_summary(summary))
         typer.echo("")
+        if report.skipped:
+            typer.echo(f"note: {report.skipped} pages were already in {out} from an earlier run and were not "
+                       "read again; use a new --out to read them afresh")
         typer.echo(f"outputs in {out}/: ledger.sqlite, readings.csv, fields.jsonl, pages/, fields/")
         typer.echo(f"next: review the doubtful fields of {out} on the review page")
     if not report.all_read:

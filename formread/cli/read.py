@@ -80,6 +80,8 @@ def render_summary(s: dict) -> str:
         f"field accuracy before review: {_pct(s['field_accuracy_before_review'])}",
         f"digit accuracy:               {_pct(s.get('digit_accuracy'))}",
     ]
+    if s.get("threshold") is not None:
+        lines.append(f"threshold (latest run):       {s['threshold']:.4g}")
     per = s.get("per_field") or {}
     if per:
         w = max(len(n) for n in per) + 2

@@ -51,12 +51,13 @@ def utc_now() -> str:
 def atomic_write(path: Path, data: bytes) -> None:
     """Write ``data`` to ``path`` so that readers see the old file or the whole new one, never a part.
 
-    The temp file sits beside the target (same file system) and is named after
-    this process, so a killed writer leaves at most one stale temp file per
-    target, which its next write replaces.
+    The temp file sits beside the target (same file system) under a fixed name,
+    so a killed writer leaves at most one stale temp file per target, which the
+    next write replaces.  Writers of the same folder take turns under the
+    ledger's write lock.
     """
     path = Path(path)
-    tmp = path.with_name(f".{path.name}.{os.getpid()}.tmp")
+    tmp = path.with_name(f".{path.name}.tmp")
     try:
         f = open(tmp, "wb")
     except FileNotFoundError:
@@ -263,6 +264,10 @@ class Ledger:
 
     # --- plumbing ---------------------------------------------------------------------------
     def _transaction(self):
+        return _Transaction(self.conn, self.path)
+
+    def write_lock(self):
+        """Hold the ledger's write lock (``BEGIN IMMEDIATE``) for a block; nothing is written by it."""
         return _Transaction(self.conn, self.path)
 
     def close(self) -> None:

@@ -92,6 +92,7 @@ def write_outputs(ledger: Ledger) -> dict[str, Path]:
         ``{"readings": path, "fields": path}``.
     """
     out = {"readings": ledger.outdir / READINGS_CSV, "fields": ledger.outdir / FIELDS_JSONL}
-    atomic_write(out["readings"], readings_csv(ledger).encode("utf-8"))
-    atomic_write(out["fields"], fields_jsonl(ledger).encode("utf-8"))
+    with ledger.write_lock():          # one consistent snapshot; writers of this folder take turns
+        atomic_write(out["readings"], readings_csv(ledger).encode("utf-8"))
+        atomic_write(out["fields"], fields_jsonl(ledger).encode("utf-8"))
     return out
