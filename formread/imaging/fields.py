@@ -16,6 +16,8 @@ from scipy import ndimage
 from ..errors import SegmentationError, check_param
 from .binarize import threshold_otsu, threshold_sauvola
 
+MIN_CONTRAST = 50.0
+"""Without a page level, a crop whose two Otsu classes differ by fewer grey levels holds no ink."""
 OFF_PAGE_SHARE = 0.25
 """A field with more than this share of its rectangle off the scanned image cannot be cut."""
 
@@ -122,10 +124,11 @@ def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu
     if g.size == 0:
         return np.zeros(g.shape, bool)
     if level is None:
-        lo, hi = np.percentile(g, [1, 99.5])
-        if hi - lo < 40:  # a near-uniform crop: no ink at all
-            return np.zeros(g.shape, bool)
         level = threshold_otsu(g)
+        dark, light = g[g <= level], g[g > level]
+        # paper with noise only: Otsu still splits it, but into two nearly equal greys
+        if dark.size == 0 or light.size == 0 or float(light.mean()) - float(dark.mean()) < MIN_CONTRAST:
+            return np.zeros(g.shape, bool)
     if method == "sauvola":
         window = max(3, int(round(8 * px_per_mm)) | 1)
         return (g <= threshold_sauvola(g, window=window, k=0.2, r=128.0)) & (g <= (level + 255.0) / 2)

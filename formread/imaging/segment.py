@@ -39,6 +39,10 @@ BLANK_SHARE = 0.012
 """A cell whose ink (after line removal) covers less than this share of its area is blank."""
 BLANK_HEIGHT = 0.25
 """A cell whose ink is shorter than this share of the cell height is blank (a dot, a dash)."""
+DOUBT_MARGIN = 0.3
+"""Open fields are doubtful when a split of another length costs less than this more than the best."""
+SPLIT_SHARE = 0.25
+"""Boxed fields: a piece of ink with at least this share in a second cell is parted between them."""
 MAX_CANDIDATES = 8
 """Most segmentations returned for an open field."""
 SOLID_SHARE = 0.6
@@ -236,24 +240,35 @@ def segment_boxed(crop: FieldCrop, field) -> FieldDigits:
     blank = np.ones(K, bool)
     doubtful, reason = False, None
     cell_area = cw * (y1 - y0)
-    owner = np.zeros(n + 1, np.int64)
+    h, w = lab.shape
+    cell_of = np.full(h * w, -1, np.int64)
     if n:
-        ys, xs = np.nonzero(lab)
-        cell = np.clip(((xs - x0) // cw).astype(np.int64), 0, K - 1)
-        counts = np.bincount(lab[ys, xs] * K + cell, minlength=(n + 1) * K).reshape(n + 1, K)
+        if K > 1:
+            # where a piece of ink spanning a border is parted: least-ink paths near the inner borders
+            inner = np.array([int(round(b)) for b in borders[1:-1]], np.int64)
+            paths, _, _ = _cut_paths(kept.astype(np.float64), inner, max(2, int(0.2 * cw)))
+            cellmap = (np.arange(w)[None, None, :] >= paths[:, :, None]).sum(axis=0)
+        else:
+            cellmap = np.zeros((h, w), np.int64)
+        flat = np.flatnonzero(lab)
+        labs, cells = lab.ravel()[flat], cellmap.ravel()[flat]
+        counts = np.bincount(labs * K + cells, minlength=(n + 1) * K).reshape(n + 1, K)
+        share = counts / np.maximum(counts.sum(axis=1, keepdims=True), 1)
         owner = np.argmax(counts, axis=1)
-        total = counts.sum(axis=1)
-        for i in range(1, n + 1):
-            second = np.sort(counts[i])[-2] if K > 1 else 0
-            if total[i] > 0.3 * BLANK_SHARE * cell_area and second > 0.3 * total[i]:
-                doubtful = True
-                k = int(owner[i])
-                reason = f"ink runs across cells {k + 1} and {int(np.argsort(counts[i])[-2]) + 1}"
+        # a piece goes to the cell holding most of its ink; a real share of it in another cell
+        # (touching digits) goes to that cell, a slight spill over the border stays with its owner
+        keep_own = share[labs, cells] >= SPLIT_SHARE
+        cell_of[flat] = np.where(keep_own, cells, owner[labs])
+        big = (share >= SPLIT_SHARE).sum(axis=1) >= 3
+        if big.any():
+            i = int(np.flatnonzero(big)[0])
+            ks = np.flatnonzero(share[i] >= SPLIT_SHARE) + 1
+            doubtful, reason = True, f"one stroke runs across cells {ks[0]} to {ks[-1]} (struck through?)"
+    cell_of = cell_of.reshape(h, w)
     for k in range(K):
-        labels_k = [i for i in range(1, n + 1) if owner[i] == k]
-        if labels_k:
-            mask = np.isin(lab, labels_k)
-            area = int(mask.sum())
+        mask = cell_of == k
+        area = int(mask.sum())
+        if area:
             rows = np.flatnonzero(mask.any(axis=1))
             height = rows[-1] - rows[0] + 1
             if area >= BLANK_SHARE * cell_area and height >= BLANK_HEIGHT * (y1 - y0):
@@ -509,7 +524,7 @@ def _open_doubt(candidates: list, field, dh: float) -> tuple[bool, str | None]:
     k = len(best.boxes)
     if k > field.max_digits:
         return True, f"{k} digits found, the field holds at most {field.max_digits}"
-    rivals = sorted({len(c.boxes) for c in candidates[1:] if c.cost - best.cost < 0.5 and len(c.boxes) != k})
+    rivals = sorted({len(c.boxes) for c in candidates[1:] if c.cost - best.cost < DOUBT_MARGIN and len(c.boxes) != k})
     if rivals:
         return True, "segmentation unsure: " + " or ".join(str(n) for n in [k] + rivals) + " digits"
     for b in best.boxes:
