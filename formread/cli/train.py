@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 import shlex
-import sys
 from pathlib import Path
 from typing import Optional
 
@@ -20,8 +19,17 @@ def register(app: typer.Typer) -> None:
     app.command("info")(info_cmd)
 
 
-def _command_line() -> str:
-    return " ".join(shlex.quote(a) for a in ["formread"] + sys.argv[1:])
+def _train_command(out: Path, dataset: str, arch: str, cfg, seed: int) -> str:
+    """The full ``formread train`` command that reproduces a run (every setting spelled out)."""
+    a = cfg.augment
+    args = ["formread", "train", "--dataset", dataset, "--arch", arch, "--epochs", str(cfg.epochs),
+            "--batch-size", str(cfg.batch_size), "--optimizer", cfg.optimizer, "--lr", f"{cfg.lr:g}",
+            "--schedule", cfg.schedule, "--weight-decay", f"{cfg.weight_decay:g}",
+            "--label-smoothing", f"{cfg.label_smoothing:g}", "--val-fraction", f"{cfg.val_fraction:g}",
+            "--patience", str(cfg.patience), "--affine" if a.affine else "--no-affine",
+            "--elastic" if a.elastic else "--no-elastic", "--elastic-alpha", f"{a.elastic_alpha:g}",
+            "--elastic-sigma", f"{a.elastic_sigma:g}", "--seed", str(seed), "--out", str(out)]
+    return " ".join(shlex.quote(x) for x in args)
 
 
 class _EpochBars:
@@ -111,7 +119,8 @@ def train_cmd(
             "held_out": held_out_parts(dataset), "architecture_name": arch, "config": cfg.as_dict(),
             "epochs_run": result.epochs_run, "best_epoch": result.best_epoch,
             "stopped_early": result.stopped_early, "interrupted": result.interrupted,
-            "seconds": round(result.seconds, 1), "command": _command_line(),
+            "seconds": round(result.seconds, 1),
+            "command": _train_command(out, dataset, arch, cfg, seed),
         },
         "seed": seed,
         "metrics": metrics,
