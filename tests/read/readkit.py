@@ -74,7 +74,7 @@ def readings(outdir: Path) -> dict:
         conn.close()
     out: dict = {}
     for src, page, name, reading, conf, decision, reason in rows:
-        out.setdefault((Path(src).name, page), {})[name] = (reading, round(conf or 0.0, 9), decision, reason)
+        out.setdefault((Path(src).name, page), {})[name] = (reading, round(conf or 0.0, 6), decision, reason)
     return out
 
 
