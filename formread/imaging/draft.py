@@ -166,9 +166,10 @@ def _rows_of_boxes(boxes: list[Box]) -> list[Box]:
         if len(run) == 1:
             joined.append(a)
             continue
-        g = run[1].x - (run[0].x + run[0].w)
-        # cells of width (box + gap), centred on each printed box
-        joined.append(Box(run[0].x - g / 2, a.y, len(run) * (a.w + g), a.h, len(run), a.line))
+        # cells one box pitch wide, centred on the printed boxes
+        first, last = run[0].x + run[0].w / 2, run[-1].x + run[-1].w / 2
+        pitch = (last - first) / (len(run) - 1)
+        joined.append(Box(first - pitch / 2, a.y, len(run) * pitch, a.h, len(run), a.line))
     return others + joined
 
 

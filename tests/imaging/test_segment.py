@@ -221,3 +221,20 @@ def test_crossing_stroke_stays_one_piece_in_its_digit():
     page, *_ = _crossing_page()
     fd = segment_boxed(cut_field(identity_registration(page), BOXED), BOXED)
     assert fd.blank.tolist() == [True, False, True, False, True, True]
+
+
+def test_separate_boxes_with_gaps_lose_both_edges_of_every_gap():
+    # six 5 x 8 mm boxes 2 mm apart; the layout's cells are one 7 mm pitch each (as drafted)
+    field = FakeField("code", "boxed", 10.0, 8.0, 42.0, 8.0, cells=6)
+    page = blank_page(70.0, 26.0)
+    for k in range(6):
+        draw_rect(page, field.x + 1.0 + 7.0 * k, field.y, 5.0, 8.0)
+    images, labels = mnist_test()
+    for k, d in {0: 5, 2: 8, 3: 1, 5: 9}.items():
+        ink = digit_ink(images[np.flatnonzero(labels == d)[3]], 5.6 * S)
+        stamp(page, ink, int((field.x + 3.5 + 7.0 * k) * S - ink.shape[1] / 2), int((field.y + 1.2) * S))
+    fd = segment_boxed(cut_field(identity_registration(page), field), field)
+    assert fd.blank.tolist() == [False, True, False, False, True, False]
+    for k in (0, 2, 3, 5):
+        img = fd.candidates[0].digits[k, 0]
+        assert img[:, :3].sum() < 1 and img[:, -3:].sum() < 1 and img[:3].sum() < 1 and img[-3:].sum() < 1
