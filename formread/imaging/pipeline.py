@@ -67,12 +67,20 @@ def page_ink_level(image: np.ndarray) -> float:
     return float(min(level, 0.8 * paper))
 
 
-def _failed(field, reg, reason: str) -> FieldDigits:
-    """A field that could not be segmented: no candidates, doubtful, with the reason."""
-    corners = field_corners_px(reg.matrix, field.x, field.y, field.w, field.h)
-    return FieldDigits(field.name, field.kind, np.full((1, 1), 255, np.uint8), [],
+def _failed(field, reg, reason: str, crop=None) -> FieldDigits:
+    """A field that could not be segmented: no candidates, doubtful, with the reason (and its crop if cut)."""
+    if crop is not None:
+        from .fields import crop_to_page
+
+        h, w = crop.gray.shape
+        corners = crop_to_page(crop, [[0, 0], [w, 0], [w, h], [0, h]])
+        image, rect = crop.gray, crop.rect
+    else:
+        corners = field_corners_px(reg.matrix, field.x, field.y, field.w, field.h)
+        image, rect = np.full((1, 1), 255, np.uint8), None
+    return FieldDigits(field.name, field.kind, image, [],
                        np.ones(field.cells, bool) if field.kind == "boxed" else None,
-                       True, reason, corners, None)
+                       True, reason, corners, rect)
 
 
 def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float = 10.0,
@@ -121,6 +129,7 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
     where = f"{page.source} page {page.page_number}"
     out: dict[str, FieldDigits] = {}
     for field in layout.fields:
+        crop = None
         try:
             crop = cut_field(reg, field, px_per_mm=px_per_mm, margin_mm=margin_mm, level=level, method=method)
             t = add("cut", t)
@@ -128,6 +137,6 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
             t = add("segment", t)
         except SegmentationError as e:
             log.info("%s: %s", where, e)
-            out[field.name] = _failed(field, reg, str(e))
-            t = add("segment", t)
+            out[field.name] = _failed(field, reg, str(e), crop)
+            t = add("segment" if crop is not None else "cut", t)
     return PageDigits(reg, out, method, level)

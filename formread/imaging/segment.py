@@ -513,7 +513,7 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
             break
     if not candidates:  # cannot happen with finite single-piece groups, but never lose the field
         img, box = _digit(weights, ink)
-        candidates = [Candidate(img[None, None], [box], float("inf"))]
+        candidates = [Candidate(img[None, None], [box], 100.0)]
     doubtful, reason = _open_doubt(candidates, field, dh)
     return FieldDigits(field.name, field.kind, image, candidates, None, doubtful, reason, corners, crop.rect)
 

@@ -86,6 +86,7 @@ def test_a_blacked_out_field_is_doubtful_and_the_page_goes_on():
     pd = process_page(Page(gray, 200.0, "inked.png", 1), layout)
     day = pd.fields["day"]
     assert day.doubtful and "day" in day.reason and day.candidates == []
+    assert day.image.shape == (110, 130) and day.image[20:90, 20:110].mean() < 50  # the crop, for the reviewer
     assert not pd.fields["member"].doubtful and pd.fields["member"].blank.tolist()[:4] == [False] * 4
 
 
