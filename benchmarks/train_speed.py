@@ -1,9 +1,10 @@
 """Training and inference speed of the pure-numpy network ("lenet5" on 28x28 inputs).
 
 Prints images per second for training (batch 32, 64, 128; forward, loss, backward and an SGD
-momentum step), inference (batch 256, one process on one core) and single-image latency; FLOPs per image and the share of
+momentum step; one process on one core, and two processes via ``DataParallel``), inference
+(batch 256, one process on one core) and single-image latency; FLOPs per image and the share of
 the machine's measured float32 matmul peak. When PyTorch is importable, the same architecture,
-batch and thread count in PyTorch, and the ratio numpy / PyTorch.
+batch and thread count in PyTorch (``torch.set_num_threads``), and the ratio numpy / PyTorch.
 
 Each figure is the best of several short timing windows, so that other work on the machine
 disturbs it less. ``--json`` prints one JSON object:
