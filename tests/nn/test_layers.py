@@ -289,3 +289,16 @@ def test_empty_batch_and_threads_share_a_model():
         # multi-threaded products round differently
         np.testing.assert_allclose(a, b, rtol=1e-5, atol=1e-7)
     assert blas_threads() == before  # the one-thread limit of the passes is undone afterwards
+
+
+@pytest.mark.parametrize("entry", [
+    {"type": "conv2d", "in": 2, "out": 3, "kernel": 3, "stride": 2, "padding": 1},
+    {"type": "maxpool", "size": 3, "stride": 2}, {"type": "avgpool", "size": 2, "stride": 2},
+    {"type": "dense", "in": 4, "out": 2}, {"type": "dropout", "p": 0.25},
+    {"type": "relu"}, {"type": "tanh"}, {"type": "sigmoid"}, {"type": "flatten"},
+])
+def test_every_layer_spec_round_trips(entry):
+    """Contract over every layer kind: build_model(spec) gives back the same spec, and it is JSON."""
+    model = build_model([entry], np.random.default_rng(0))
+    assert model.spec == [entry]
+    assert json.loads(json.dumps(model.spec)) == [entry]
