@@ -4,7 +4,8 @@ Clears flagged fields by keyboard alone, reloads, and checks the ledger, the aud
 export; checks that a request without the token is refused and that a stale save is refused.
 Never downloads a browser: it uses /usr/bin/chromium (`.ci/run` installs it with apt-get).
 
-``FORMREAD_UPDATE_SCREENSHOT=1`` also writes the first screen to docs/review.png (README picture).
+``FORMREAD_UPDATE_SCREENSHOT=1`` also writes the real demo run's first screen to docs/review.png
+(the README picture).
 """
 
 import csv
@@ -74,11 +75,6 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             page.wait_for_function("document.getElementById('field-img').complete && "
                                    "document.getElementById('field-img').naturalWidth > 0")
             assert page.evaluate("document.activeElement.id") == "value"
-            shot = page.screenshot()
-            assert len(shot) > 10_000
-            if os.environ.get("FORMREAD_UPDATE_SCREENSHOT") == "1":
-                _small_png(shot, DOCS_PNG)
-
             # the page view, on and off, with this field outlined
             page.keyboard.press("p")
             expect(page.locator("#pageview")).to_be_visible()
@@ -186,3 +182,82 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
     assert (pages[1]["plot_number"], pages[1]["plot_number_how"]) == ("0233", "corrected")
     assert (pages[1]["reading_date"], pages[1]["reading_date_how"]) == ("", "empty")
     assert pages[2]["current_reading_how"] == "pending"
+
+
+def test_review_of_a_real_demo_run(tmp_path):
+    """`formread read` on three shipped demo pages with the shipped model, then the review page on its ledger.
+
+    Also takes the README picture (docs/review.png) when FORMREAD_UPDATE_SCREENSHOT=1.
+    """
+    import json
+
+    from typer.testing import CliRunner
+
+    from formread.cli.main import app
+    from formread.nn.modelfile import read_header
+    from formread.paths import default_model_path, demo_dir
+
+    sync_playwright, expect = _playwright()
+    scans = tmp_path / "scans"
+    scans.mkdir()
+    names = ["scan_002.jpg", "scan_004.jpg", "scan_007.jpg"]
+    for n in names:
+        shutil.copy(demo_dir() / n, scans / n)
+    truth = {json.loads(line)["source"]: json.loads(line)["fields"]
+             for line in (demo_dir() / "truth.jsonl").read_text().splitlines() if line.strip()}
+    model = default_model_path()
+    out = tmp_path / "out"
+    res = CliRunner().invoke(app, ["read", str(scans), "-l", str(demo_dir() / "layout.toml"), "-o", str(out),
+                                   "-w", "1", "-q"])
+    assert res.exit_code in (0, 3), res.output
+    conn = actions.connect(out)
+    try:
+        pending = actions.list_pending(conn)
+        first = actions.field_detail(conn, out, pending[0])
+        second = actions.field_detail(conn, out, pending[1])
+    finally:
+        conn.close()
+    assert len(pending) >= 2 and first["has_image"]
+    value = truth[Path(first["source"]).name][first["name"]]
+    assert value, "the first flagged field of the demo page is filled in"
+
+    with running(out, reviewer="dora") as srv, sync_playwright() as p:
+        browser = p.chromium.launch(executable_path=CHROMIUM if os.path.isfile(CHROMIUM) else shutil.which("chromium"),
+                                    args=ARGS)
+        try:
+            page = browser.new_page(viewport={"width": 1280, "height": 800})
+            page.set_default_timeout(10_000)
+            page.goto(srv.url)
+            name = page.locator("#field-name")
+            expect(name).to_have_text(first["name"])
+            page.wait_for_function("document.getElementById('field-img').naturalWidth > 0")
+            expect(page.locator("#alts li").first).to_be_visible()
+            page.keyboard.press("p")
+            expect(page.locator("#page-frame .box.here")).to_have_text(first["name"])
+            expect(page.locator("#page-frame .box")).to_have_count(6)
+            page.wait_for_function("document.getElementById('page-img').naturalWidth > 0")
+            shot = page.screenshot()
+            if os.environ.get("FORMREAD_UPDATE_SCREENSHOT") == "1":
+                _small_png(shot, DOCS_PNG)
+            page.keyboard.type(value)
+            page.keyboard.press("Enter")
+            expect(page.locator("#msg")).to_contain_text(f"Saved {first['name']}")
+            expect(name).to_have_text(second["name"])
+            page.keyboard.press("u")
+            expect(page.locator("#msg")).to_contain_text("cannot be read")
+        finally:
+            browser.close()
+
+    conn = actions.connect(out)
+    try:
+        rows = [dict(r) for r in conn.execute("SELECT * FROM reviews ORDER BY id")]
+    finally:
+        conn.close()
+    sha = read_header(model)["sha256"]
+    assert [(r["field_id"], r["new_value"], r["reviewer"], r["model_sha256"]) for r in rows] == [
+        (first["id"], value, "dora", sha), (second["id"], None, "dora", sha)]
+    recs = {(r["page_id"], r["field"]): r for r in
+            (json.loads(line) for line in export_final(out).jsonl_path.read_text().splitlines())}
+    assert recs[(first["page_id"], first["name"])]["value"] == value
+    assert recs[(first["page_id"], first["name"])]["how"] in ("corrected", "confirmed")
+    assert recs[(second["page_id"], second["name"])]["how"] == "unreadable"
