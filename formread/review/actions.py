@@ -450,8 +450,10 @@ def _final(action: str, value: str | None, reading: str | None, name: str, limit
     if action == "empty":
         return "empty", "", "empty"
     if action == "confirm":
-        if reading is None or reading == "":
+        if reading is None:
             raise InvalidValue(where, "there is no proposed reading to keep; type the value or mark the field")
+        if reading == "":  # keeping a proposal of 'left empty' is saying the paper is blank
+            return "empty", "", "empty"
         value = reading
     if not isinstance(value, str):
         raise InvalidValue(where, "the value must be a string of digits")

@@ -133,6 +133,16 @@ def test_refused_values_write_nothing(ledger, field, kw, message):
     assert snapshot(out) == before
 
 
+def test_keeping_a_blank_proposal_marks_the_field_empty(ledger):
+    out, info = ledger
+    fid = info["ids"][(0, "current_reading")]
+    with _conn(out) as conn:
+        conn.execute("UPDATE fields SET reading = '', reason = 'missing' WHERE id = ?", (fid,))
+        d = actions.save_decision(conn, out, fid, action="confirm", version=0, reviewer="ann")
+        assert (d["final_value"], d["final_status"]) == ("", "empty")
+        assert tuple(conn.execute("SELECT action, old_value, new_value FROM reviews").fetchone()) == ("empty", "", "")
+
+
 def test_stale_save_refused_between_two_reviewers(ledger):
     out, info = ledger
     fid = info["ids"][(1, "reading_date")]

@@ -243,7 +243,9 @@
     input.placeholder = d.reading ? d.reading : "";
     $("hint").textContent = d.reading
       ? "Type the digits you see and press Enter, or press A to keep " + d.reading + "."
-      : "Type the digits you see and press Enter, or mark the field (U, E).";
+      : (d.reading === ""
+        ? "Read as blank. Type the digits you see and press Enter, or press A or E if it is blank."
+        : "Type the digits you see and press Enter, or mark the field (U, E).");
     input.focus();
     renderPage();
   }
