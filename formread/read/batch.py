@@ -1,11 +1,13 @@
 """The batch job: scans in, one ledger row per page, every field read, checked and decided.
 
-How it runs: the scan files are streamed, page by page, through the imaging
-step (register, cut, segment), in worker processes when ``workers > 1`` (each
-pinned to one BLAS thread); the main process takes the pages back in input
-order, runs the network on all the digits of a page in one call, decodes each
-field with its rules, and writes the page (row, fields, image files) to the
-ledger in ONE transaction.  A page already in the ledger (same hash of the
+How it runs: the main process decodes the scan files page by page (a stream,
+so a long multi-page file is spread over the workers too) and hashes each page;
+a page not yet in the ledger goes to the imaging step (register, cut, segment,
+page and crop images) in a worker process when ``workers > 1`` (each pinned to
+one BLAS thread).  The main process takes the pages back in input order, runs
+the network on all the digits of a page in one call, decodes each field with
+its rules, and writes the page (row, fields, image files) to the ledger in ONE
+transaction.  A page already in the ledger (same hash of the
 decoded pixels) is skipped, so re-running the same command resumes a stopped
 batch; a page that cannot be read is recorded with its reason and the batch
 goes on.  ``readings.csv`` and ``fields.jsonl`` are rebuilt from the ledger at
@@ -150,8 +152,8 @@ class _Imaged:
 _STATE: dict = {}
 
 
-def _init_imaging(layout_path: str, known: frozenset, pin_threads: bool) -> None:
-    """Worker start: load the layout once, remember the pages already read, one BLAS thread."""
+def _init_imaging(layout_path: str, pin_threads: bool) -> None:
+    """Worker start: load the layout once; one BLAS thread; Ctrl-C left to the main process."""
     import signal
 
     if pin_threads:
@@ -161,7 +163,6 @@ def _init_imaging(layout_path: str, known: frozenset, pin_threads: bool) -> None
         _STATE["limits"] = threadpool_limits(limits=1)
         _watch_parent()
     _STATE["layout"] = load_layout(layout_path)
-    _STATE["known"] = known
 
 
 def _watch_parent() -> None:
@@ -205,12 +206,11 @@ def _box_px(matrix: np.ndarray, spec, scale: float) -> list[float]:
     return [float(px[:, 0].min()), float(px[:, 1].min()), float(px[:, 0].max()), float(px[:, 1].max())]
 
 
-def _image_one(page, layout, known) -> _Imaged:
+def _image_page(page, content_hash: str) -> _Imaged:
+    """Imaging step for one decoded page: register, cut, segment; page and crop PNGs (worker or inline)."""
+    layout = _STATE["layout"]
     t0 = time.perf_counter()
-    h = page_hash(page.gray)
-    base = dict(source=page.source, page_number=page.page_number, content_hash=h)
-    if h in known:
-        return _Imaged(status="known", **base)
+    base = dict(source=page.source, page_number=page.page_number, content_hash=content_hash)
     stages: dict = {}
     try:
         pd = process_page(page, layout, timings=stages)
@@ -233,23 +233,26 @@ def _image_one(page, layout, known) -> _Imaged:
                    skew_deg=_opt(reg, "skew_deg"), seconds=time.perf_counter() - t0, stages=stages, **base)
 
 
-def _image_file(source: str, refusal: str | None) -> list[_Imaged]:
-    """Imaging step for every page of one file (runs in a worker process, or inline)."""
-    if refusal is not None:
-        return [_Imaged(source=source, page_number=1, content_hash=_file_failure_hash(source), status="failed",
-                        error=f"{source}: {refusal}")]
-    layout, known = _STATE["layout"], _STATE["known"]
-    out = []
-    t0 = time.perf_counter()
-    try:
-        for page in iter_pages(source):
-            out.append(_image_one(page, layout, known))
-            t0 = time.perf_counter()
-    except ImageError as e:
-        # pages decoded before the failure are kept; the rest of the file is one failed record
-        out.append(_Imaged(source=source, page_number=len(out) + 1, content_hash=_file_failure_hash(source),
-                           status="failed", error=_one_line(e), seconds=time.perf_counter() - t0))
-    return out
+def _decoded_pages(scans):
+    """Stream the inputs page by page: ``(page, content_hash, load_seconds)``, or an ``_Imaged``
+    failure record for a file that is not a scan or cannot be (fully) decoded."""
+    for source, refusal in scans:
+        if refusal is not None:
+            yield _Imaged(source=source, page_number=1, content_hash=_file_failure_hash(source), status="failed",
+                          error=f"{source}: {refusal}")
+            continue
+        n = 0
+        t0 = time.perf_counter()
+        try:
+            for page in iter_pages(source):
+                n += 1
+                h = page_hash(page.gray)
+                yield page, h, time.perf_counter() - t0
+                t0 = time.perf_counter()
+        except ImageError as e:
+            # pages decoded before the failure are kept; the rest of the file is one failed record
+            yield _Imaged(source=source, page_number=n + 1, content_hash=_file_failure_hash(source),
+                          status="failed", error=_one_line(e), seconds=time.perf_counter() - t0)
 
 
 def _opt(obj, name):
@@ -404,38 +407,60 @@ def read_batch(inputs: Iterable, layout_path, outdir, *, model_path=None, thresh
     return report
 
 
+class _Done:
+    """A result already at hand, queued in page order with the pool's futures."""
+
+    def __init__(self, value):
+        self.value = value
+
+    def result(self):
+        return self.value
+
+
 def _run(scans, layout_path: Path, ledger: Ledger, reader: _Reader, report: BatchReport, workers: int,
          progress, t_start: float) -> None:
     known = ledger.known_pages()
-    done_hashes = {h for h, s in known.items() if s != "failed"}
-    total = len(scans)
-    seen_files = 0
     pin = workers > 1
-    if not pin:
-        _init_imaging(str(layout_path), frozenset(done_hashes), False)
-        results = (_image_file(s, r) for s, r in scans)
-        pool = None
-    else:
+    pool = None
+    if pin:
         ctx = multiprocessing.get_context("spawn")
-        pool = ProcessPoolExecutor(max_workers=min(workers, max(1, len(scans))), mp_context=ctx,
-                                   initializer=_init_imaging,
-                                   initargs=(str(layout_path), frozenset(done_hashes), True))
-        results = _ordered(pool, scans, window=4 * workers)
+        pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_imaging,
+                                   initargs=(str(layout_path), True))
+    else:
+        _init_imaging(str(layout_path), False)
     from threadpoolctl import threadpool_limits
 
     # with workers busy on the other cores, the main process's BLAS keeps to one thread
     limits = threadpool_limits(limits=1) if pin else None
+    counts = {"files": len(scans), "pages": 0, "sources": set()}
+    queued: set = set()
+
+    def submit(item):
+        if isinstance(item, _Imaged):
+            return _Done(item)
+        page, h, load_s = item
+        counts["pages"] += 1
+        counts["sources"].add(page.source)
+        report.imaging_seconds += load_s
+        report.stages["load"] = report.stages.get("load", 0.0) + load_s
+        prior = known.get(h)
+        if (prior is not None and prior != "failed") or h in queued:
+            return _Done(_Imaged(source=page.source, page_number=page.page_number, content_hash=h, status="known"))
+        queued.add(h)
+        if pool is None:
+            return _Done(_image_page(page, h))
+        return pool.submit(_image_page, page, h)
+
     try:
-        for pages in results:
-            seen_files += 1
-            total += len(pages) - 1
-            for im in pages:
-                _one_page(im, known, ledger, reader, report)
-                if progress is not None:
-                    el = time.perf_counter() - t_start
-                    progress(report.pages, max(total, report.pages),
-                             pages_per_second=report.pages / el if el > 0 else 0.0,
-                             review=report.review, failed=len(report.problems))
+        for im in _ordered(_decoded_pages(scans), submit, window=3 * workers if pool else 1):
+            _one_page(im, known, ledger, reader, report)
+            if progress is not None:
+                # total: pages met so far plus one per file not opened yet
+                total = counts["pages"] + max(0, counts["files"] - len(counts["sources"]))
+                el = time.perf_counter() - t_start
+                progress(report.pages, max(total, report.pages),
+                         pages_per_second=report.pages / el if el > 0 else 0.0,
+                         review=report.review, failed=len(report.problems))
     finally:
         if limits is not None:
             limits.restore_original_limits()
@@ -443,20 +468,19 @@ def _run(scans, layout_path: Path, ledger: Ledger, reader: _Reader, report: Batc
             pool.shutdown(wait=True, cancel_futures=True)
 
 
-def _ordered(pool: ProcessPoolExecutor, scans, window: int):
-    """Submit files to the pool at most ``window`` ahead; yield their results in input order."""
-    it = iter(scans)
+def _ordered(items, submit, window: int):
+    """Submit items at most ``window`` ahead; yield their results in input order."""
+    it = iter(items)
     pending: deque = deque()
-    for s, r in it:
-        pending.append(pool.submit(_image_file, s, r))
+    for item in it:
+        pending.append(submit(item))
         if len(pending) >= window:
             break
     while pending:
-        fut = pending.popleft()
-        res = fut.result()
+        res = pending.popleft().result()
         nxt = next(it, None)
         if nxt is not None:
-            pending.append(pool.submit(_image_file, *nxt))
+            pending.append(submit(nxt))
         yield res
 
 
