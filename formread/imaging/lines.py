@@ -83,7 +83,7 @@ def _runs_open(band: np.ndarray, length: int, axis: int) -> np.ndarray:
 
 
 def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_run: int,
-              min_cover: float, max_thick: int, span: tuple | None = None) -> Line | None:
+              min_cover: float, max_thick: int, span: tuple | None = None, slack: int = 0) -> Line | None:
     """Find one printed line near an expected position.
 
     Parameters
@@ -102,6 +102,10 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
         Thickest line accepted, px.
     span : (start, stop) or None
         Part of the crop along the line to look in (default: all of it).
+    slack : int
+        Ink is first thickened by this many px across the line, so that a thin line
+        slightly askew (or jagged after a bilevel scan) still forms long runs; the
+        line found then includes that slack on each side.
 
     Returns
     -------
@@ -114,7 +118,16 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
     lo, hi = max(0, int(round(expected - search))), min(n, int(round(expected + search)) + 1)
     if hi <= lo or s1 - s0 < min_run:
         return None
-    band = _runs_open(a[lo:hi, s0:s1], min_run, 1)
+    sub = a[lo:hi, s0:s1]
+    if slack > 0:
+        lo2, hi2 = max(0, lo - slack), min(n, hi + slack)
+        wide = a[lo2:hi2, s0:s1]
+        thick = wide.copy()
+        for d in range(1, slack + 1):
+            thick[d:] |= wide[:-d]
+            thick[:-d] |= wide[d:]
+        sub = thick[lo - lo2:lo - lo2 + (hi - lo)]
+    band = _runs_open(sub, min_run, 1)
     cover = band.sum(axis=1) / float(s1 - s0)
     if cover.max() < min_cover:
         return None
@@ -200,10 +213,11 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
     h, w = ink.shape
     search = max(2, int(round(search_mm * px_per_mm)))
     thick = max(2, int(round(max_thick_mm * px_per_mm)))
+    slack = max(1, int(round(0.15 * px_per_mm)))  # a thin line may wander this much (skew, bilevel jaggies)
     found: list[Line] = []
     for r in rows:
         ln = find_line(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
-                       min_cover=0.3, max_thick=thick, span=h_span)
+                       min_cover=0.3, max_thick=thick + 2 * slack, span=h_span, slack=slack)
         if ln is not None:
             found.append(ln)
     hs = sorted(found, key=lambda ln: ln.centre)
@@ -215,7 +229,8 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
         for _ in range(max_lines):
             span = (max(0, v_span[0] - search), min(h, v_span[1] + search))
             ln = find_line(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
-                           min_cover=0.85 * v_len / max(1, span[1] - span[0]), max_thick=thick, span=span)
+                           min_cover=0.85 * v_len / max(1, span[1] - span[0]), max_thick=thick + 2 * slack,
+                           span=span, slack=slack)
             if ln is None:
                 break
             if not any(o.axis == "v" and o.lo <= ln.hi and ln.lo <= o.hi for o in found):
