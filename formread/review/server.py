@@ -253,6 +253,7 @@ class _Handler(BaseHTTPRequestHandler):
                 "ids": actions.list_pending(conn, name=name, reason=reason),
                 "filters": actions.pending_filters(conn),
                 "reviewer": self.server.reviewer,
+                "outdir": str(self.server.outdir),
                 "saved": sum(self.server.saved.values()),
             }))
         m = _ROUTE_ID.match(path)

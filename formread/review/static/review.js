@@ -97,6 +97,7 @@
     state.ids = r.data.ids;
     state.saved = r.data.saved;
     $("reviewer").textContent = r.data.reviewer;
+    $("export-cmd").textContent = "formread export " + r.data.outdir;
     fillSelect($("f-name"), r.data.filters.names, "all fields", null);
     fillSelect($("f-reason"), r.data.filters.reasons, "all reasons", reasonWords);
     const filtered = $("f-name").value || $("f-reason").value;
