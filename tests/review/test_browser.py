@@ -217,9 +217,9 @@ def test_review_of_a_real_demo_run(tmp_path):
         second = actions.field_detail(conn, out, pending[1])
     finally:
         conn.close()
-    assert len(pending) >= 2 and first["has_image"]
-    value = truth[Path(first["source"]).name][first["name"]]
-    assert value, "the first flagged field of the demo page is filled in"
+    assert len(pending) >= 2, "these three demo pages should leave at least two fields to review"
+    assert first["has_image"]
+    value = truth[Path(first["source"]).name][first["name"]]  # what is written on the card
 
     with running(out, reviewer="dora") as srv, sync_playwright() as p:
         browser = p.chromium.launch(executable_path=CHROMIUM if os.path.isfile(CHROMIUM) else shutil.which("chromium"),
@@ -239,8 +239,11 @@ def test_review_of_a_real_demo_run(tmp_path):
             shot = page.screenshot()
             if os.environ.get("FORMREAD_UPDATE_SCREENSHOT") == "1":
                 _small_png(shot, DOCS_PNG)
-            page.keyboard.type(value)
-            page.keyboard.press("Enter")
+            if value:
+                page.keyboard.type(value)
+                page.keyboard.press("Enter")
+            else:
+                page.keyboard.press("e")
             expect(page.locator("#msg")).to_contain_text(f"Saved {first['name']}")
             expect(name).to_have_text(second["name"])
             page.keyboard.press("u")
@@ -259,5 +262,5 @@ def test_review_of_a_real_demo_run(tmp_path):
     recs = {(r["page_id"], r["field"]): r for r in
             (json.loads(line) for line in export_final(out).jsonl_path.read_text().splitlines())}
     assert recs[(first["page_id"], first["name"])]["value"] == value
-    assert recs[(first["page_id"], first["name"])]["how"] in ("corrected", "confirmed")
+    assert recs[(first["page_id"], first["name"])]["how"] in (("corrected", "confirmed") if value else ("empty",))
     assert recs[(second["page_id"], second["name"])]["how"] == "unreadable"
