@@ -129,11 +129,21 @@ def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, mo
 
 
 def test_worker_processes_read_the_same_as_one_process(tmp_path, model):
-    scans = write_copies(tmp_path / "scans", 4)
-    read_batch(scans, demo_layout(), tmp_path / "one", model_path=model, workers=1)
-    rep = read_batch(scans, demo_layout(), tmp_path / "two", model_path=model, workers=2)
-    assert rep.read == 4 and rep.imaging_seconds > 0
-    assert readings(tmp_path / "one") == readings(tmp_path / "two")
+    scans = write_copies(tmp_path / "scans", 5)
+    # three of the pages as one multi-page TIFF: its pages are spread over the workers
+    ims = [Image.open(p) for p in scans[2:]]
+    dpi = ims[0].info.get("dpi", (200, 200))
+    ims[0].save(tmp_path / "scans" / "multi.tif", save_all=True, append_images=ims[1:], dpi=dpi)
+    for im in ims:
+        im.close()
+    inputs = scans[:2] + [tmp_path / "scans" / "multi.tif"]
+    read_batch(inputs, demo_layout(), tmp_path / "one", model_path=model, workers=1)
+    rep = read_batch(inputs, demo_layout(), tmp_path / "two", model_path=model, workers=2)
+    assert rep.read == 5 and rep.imaging_seconds > 0
+    got = readings(tmp_path / "two")
+    assert sorted(got) == [("multi.tif", 1), ("multi.tif", 2), ("multi.tif", 3), ("page_000.png", 1),
+                           ("page_001.png", 1)]
+    assert readings(tmp_path / "one") == got
 
 
 def test_list_scans_refuses_missing_inputs_and_sorts_folders(tmp_path):
