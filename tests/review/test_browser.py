@@ -94,7 +94,7 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             page.keyboard.type("03247")
             page.keyboard.press("Enter")
             expect(name).to_have_text("litres_used")
-            expect(msg).to_contain_text("Saved current_reading (page 1): 03247, corrected.")
+            expect(msg).to_contain_text("Saved current_reading (page 1 of cards-2026-04.tif): 03247, corrected.")
             expect(left).to_contain_text("8 left")
             # 2. A keeps the proposal
             page.keyboard.press("a")

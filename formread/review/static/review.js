@@ -355,7 +355,8 @@
         state.skipped.delete(f.id);
         await next();
         const warn = (r.data.warnings || []).join(" ");
-        say("Saved " + f.name + " (page " + f.page_number + "): " + shown(f.final_value) + ", " +
+        say("Saved " + f.name + " (page " + f.page_number + " of " + basename(f.source) + "): " +
+            shown(f.final_value) + ", " +
             f.status_words + "." + (warn ? " Note: " + warn + " Press B to look again." : ""), warn ? "warn" : "ok");
       } else if (r.status === 409 && r.data.field) {
         render(r.data.field);
