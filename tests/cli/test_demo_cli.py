@@ -77,3 +77,16 @@ def test_demo_make_writes_a_fresh_set(tmp_path):
     (other / "mine.txt").write_text("keep me")
     res = runner.invoke(app, ["demo", "make", "--count", "2", str(other), "-q"])
     assert res.exit_code == 1 and (other / "mine.txt").read_text() == "keep me"
+
+
+def test_the_shipped_demo_runs_with_no_arguments(tmp_path, monkeypatch):
+    """The real thing: shipped demo forms, shipped model, default options (output in the current folder)."""
+    monkeypatch.chdir(tmp_path)
+    truth = (formread.paths.demo_dir() / "truth.jsonl").read_text().splitlines()
+    res = runner.invoke(app, ["demo", "--json", "-q"])
+    assert res.exit_code == 0, res.output                      # every shipped page registered and read
+    s = json.loads(res.stdout)
+    assert s["pages"] == len(truth) and s["fields"] == 6 * len(truth)
+    assert s["truth_pages_not_read"] == 0 and s["accepted"] + s["review"] == s["fields"]
+    assert 0.0 <= s["error_among_accepted"] <= 1.0 and s["digit_accuracy"] > 0.5
+    assert (tmp_path / "formread-demo-out" / "readings.csv").is_file()
