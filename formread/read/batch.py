@@ -19,7 +19,6 @@ from __future__ import annotations
 import dataclasses
 import hashlib
 import io
-import logging
 import multiprocessing
 import time
 from collections import deque
@@ -44,8 +43,6 @@ from .recognise import recognise_page
 from .rules import compile_rules
 
 __all__ = ["SCAN_SUFFIXES", "DEFAULT_THRESHOLD", "PAGE_DPI", "BatchReport", "list_scans", "read_batch"]
-
-log = logging.getLogger(__name__)
 
 SCAN_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".pdf")
 """File suffixes taken as scans when a folder is given (case-insensitive)."""
@@ -391,8 +388,9 @@ def read_batch(inputs: Iterable, layout_path, outdir, *, model_path=None, thresh
     scans = list_scans(inputs)
     ledger = open_ledger(outdir)
     try:
-        run_id = ledger.start_run(layout_path=str(layout_path), layout_sha256=_sha256_file(layout_path),
-                                  model_path=str(model_path), model_sha256=str(header.get("sha256", "")),
+        # absolute paths: the review page finds the layout from wherever it is started
+        run_id = ledger.start_run(layout_path=str(layout_path.resolve()), layout_sha256=_sha256_file(layout_path),
+                                  model_path=str(model_path.resolve()), model_sha256=str(header.get("sha256", "")),
                                   threshold=float(threshold), command=command)
         report = BatchReport(run_id=run_id, outdir=Path(outdir))
         reader = _Reader(layout, compiled, model, temperature, float(threshold))
