@@ -37,6 +37,7 @@ from .calibrate import fit_temperature, scaled_nll, softmax
 from .metrics import expected_calibration_error
 from .model import Sequential
 from .optim import SGD, Adam, cosine_schedule, step_schedule
+from .parallel import DataParallel
 
 __all__ = ["TrainConfig", "TrainResult", "train", "stratified_split", "predict_logits",
            "CHECKPOINT_FORMAT"]
@@ -68,6 +69,9 @@ class TrainConfig:
     patience : int          epochs without a better validation loss before stopping (0: never stop early)
     augment : AugmentConfig distortions of the training batches
     seed : int              seeds the split, shuffling and augmentation
+    workers : int           1, or 2 to split each batch over two processes (formread.nn.parallel;
+                            pays only with a second idle core; dropout masks then differ from a
+                            1-process run, and a resumed 2-process run is not bit-identical)
     """
 
     epochs: int = 30
@@ -84,6 +88,7 @@ class TrainConfig:
     patience: int = 8
     augment: AugmentConfig = field(default_factory=AugmentConfig)
     seed: int = 0
+    workers: int = 1
 
     def validate(self) -> None:
         """Raise ParameterError for an impossible setting."""
@@ -100,6 +105,7 @@ class TrainConfig:
                     "an integer >= 0", self.patience)
         check_param(self.step_epochs >= 1, "step_epochs", "an integer >= 1", self.step_epochs)
         check_param(isinstance(self.warmup, int) and self.warmup >= 0, "warmup", "an integer >= 0", self.warmup)
+        check_param(self.workers in (1, 2), "workers", "1 or 2", self.workers)
         check_param(0 <= self.augment.prob <= 1, "augment.prob", "a number in [0, 1]", self.augment.prob)
 
     def as_dict(self) -> dict:
@@ -359,7 +365,7 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
             raise DataError(f"{ckpt}: checkpoint was made on other training data")
         saved_cfg = dict(meta.get("config", {}))
         mine = cfg.as_dict()
-        differ = sorted(k for k in set(saved_cfg) | set(mine) if k != "epochs" and saved_cfg.get(k) != mine.get(k))
+        differ = sorted(k for k in set(saved_cfg) | set(mine) if k not in ("epochs", "workers") and saved_cfg.get(k) != mine.get(k))
         if differ:
             raise DataError(f"{ckpt}: checkpoint was made with other settings ({', '.join(differ)})")
         if meta.get("spec") != model.spec:
@@ -386,6 +392,8 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
     n_batches = max(1, int(np.ceil(len(tr_idx) / cfg.batch_size)))
     interrupted = False
     epoch = start
+    parallel = DataParallel(model, seed=cfg.seed) if cfg.workers == 2 else None
+    grad_step = parallel.grad_step if parallel is not None else model.grad_step
     try:
         while epoch < cfg.epochs and not stopped_early:
             e0 = time.monotonic()
@@ -397,7 +405,7 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
                 xb, yb = x_tr[sel], y_tr[sel]
                 if cfg.augment.enabled:
                     xb = augment_batch(xb, rng, cfg.augment)
-                loss, ok = model.grad_step(xb, yb, cfg.label_smoothing)
+                loss, ok = grad_step(xb, yb, cfg.label_smoothing)
                 opt.step()
                 loss_sum += loss * len(sel)
                 correct += ok
@@ -434,6 +442,9 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
     except KeyboardInterrupt:
         interrupted = True
         log.info("training interrupted after %d epochs; keeping the best weights", epoch)
+    finally:
+        if parallel is not None:
+            parallel.close()
 
     if best_state is not None:
         model.load_state_dict(best_state)

@@ -132,7 +132,8 @@ def test_bad_training_data_is_refused(tmp_path):
 
 # --- scikit-learn's digits: the benchmark of its own example ---------------------------------
 
-# A wider CNN on 16x16 inputs (the 8x8 images upscaled bicubically, x2) with affine augmentation.
+# A wider CNN on 16x16 inputs (the 8x8 images upscaled bicubically, x2) with affine and mild
+# elastic augmentation (sigma 2.5 px, alpha 6: scaled down for 16x16 digits).
 DIGITS16 = [
     {"type": "conv2d", "in": 1, "out": 32, "kernel": 3, "padding": 1}, {"type": "relu"},
     {"type": "maxpool", "size": 2},
@@ -148,7 +149,8 @@ def test_cnn_beats_the_svc_of_scikit_learns_digits_example():
     """Same split as scikit-learn's "Recognizing hand-written digits" example (first half train,
     second half test, no shuffle); its SVC(gamma=0.001) on the raw 8x8 features is the baseline
     (documented there as about 0.97; computed here with scikit-learn as the reference).
-    Measured on the development machine: CNN 0.983 (seed 0)."""
+    Measured on the development machine: CNN 0.9855 with seed 0 (0.986-0.989 with seeds 1 and 2),
+    about 10 s of CPU time."""
     from sklearn.svm import SVC
 
     images, labels = digits_raw()
@@ -157,16 +159,23 @@ def test_cnn_beats_the_svc_of_scikit_learns_digits_example():
     flat = images.reshape(len(images), -1)
     svc = SVC(gamma=0.001).fit(flat[tr], labels[tr])
     svc_acc = float(np.mean(svc.predict(flat[te]) == labels[te]))
-    assert svc_acc == pytest.approx(0.969, abs=0.001)  # the example's reported figure
+    assert svc_acc == pytest.approx(0.969, abs=0.001)  # the example prints 0.97 (two decimals)
 
     x = np.clip(upscale_small(images, 2) / 16.0, 0.0, 1.0)[:, None].astype(np.float32)
-    cfg = TrainConfig(epochs=30, batch_size=32, lr=2e-3, val_fraction=0.0, patience=0, seed=0,
+    cfg = TrainConfig(epochs=50, batch_size=32, lr=2e-3, val_fraction=0.0, patience=0, seed=0,
                       augment=AugmentConfig(rotate_deg=10, scale=0.1, shear=0.15, shift_px=1.0,
-                                            elastic=False, prob=0.9))
+                                            elastic=True, elastic_alpha=6.0, elastic_sigma=2.5, prob=0.9))
     t0 = time.monotonic()
     model = build_model(DIGITS16, np.random.default_rng(0))
     train(model, x[tr], labels[tr], cfg)
     cnn_acc = float(np.mean(model.predict_proba(x[te]).argmax(1) == labels[te]))
     print(f"digits: SVC {svc_acc:.4f}, CNN {cnn_acc:.4f} in {time.monotonic() - t0:.0f} s")
     assert cnn_acc > svc_acc
-    assert cnn_acc >= 0.978  # measured 0.983 with this seed; a little slack for BLAS differences
+    assert cnn_acc >= 0.980  # measured 0.9855 with this seed; slack for other BLAS builds
+
+
+def test_two_worker_processes_learn_too():
+    # formread.nn.parallel splits each batch over this process and one worker process
+    x, y = _toy()
+    res = train(build_model(TINY, np.random.default_rng(0)), x, y, _cfg(workers=2))
+    assert res.val_accuracy >= 0.85 and len(res.history) == 8
