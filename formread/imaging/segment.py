@@ -43,6 +43,8 @@ DOUBT_MARGIN = 0.3
 """Open fields are doubtful when a split of another length costs less than this more than the best."""
 SPLIT_SHARE = 0.25
 """Boxed fields: a piece of ink with at least this share in a second cell is parted between them."""
+SPLIT_AREA = 0.06
+"""... and so is a part covering at least this share of a cell's area."""
 MAX_CANDIDATES = 8
 """Most segmentations returned for an open field."""
 SOLID_SHARE = 0.6
@@ -257,12 +259,15 @@ def segment_boxed(crop: FieldCrop, field) -> FieldDigits:
         owner = np.argmax(counts, axis=1)
         # a piece goes to the cell holding most of its ink; a real share of it in another cell
         # (touching digits) goes to that cell, a slight spill over the border stays with its owner
-        keep_own = share[labs, cells] >= SPLIT_SHARE
+        # a part with much ink counts as a real share too (a bold digit touching a light one
+        # must not swallow it); a slight spill over a border has far less
+        real = (share >= SPLIT_SHARE) | (counts >= SPLIT_AREA * cell_area)
+        keep_own = real[labs, cells]
         cell_of[flat] = np.where(keep_own, cells, owner[labs])
-        big = (share >= SPLIT_SHARE).sum(axis=1) >= 3
+        big = real.sum(axis=1) >= 3
         if big.any():
             i = int(np.flatnonzero(big)[0])
-            ks = np.flatnonzero(share[i] >= SPLIT_SHARE) + 1
+            ks = np.flatnonzero(real[i]) + 1
             doubtful, reason = True, f"one stroke runs across cells {ks[0]} to {ks[-1]} (struck through?)"
     cell_of = cell_of.reshape(h, w)
     for k in range(K):
@@ -369,10 +374,25 @@ def _projection_cuts(prof: np.ndarray, lo: int, hi: int, dh: float) -> list[int]
     return out
 
 
-@dataclass
-class _Piece:
-    lo: int           # index of the left boundary
-    hi: int
+def _drop_dots(lab: np.ndarray, objs: list, dh: float) -> tuple[np.ndarray, int, list]:
+    """Drop small pieces standing alone (a dot of dirt, a stray mark): under a quarter of the
+    digit height in both directions and farther than 0.4 digit heights from any other ink."""
+    boxes = np.array([[sl[1].start, sl[1].stop, sl[0].start, sl[0].stop] for sl in objs], np.float64)
+    small = np.maximum(boxes[:, 1] - boxes[:, 0], boxes[:, 3] - boxes[:, 2]) < 0.25 * dh
+    if not small.any() or small.all():
+        return lab, len(objs), objs
+    drop = []
+    for i in np.flatnonzero(small):
+        others = np.delete(boxes, i, axis=0)
+        gx = np.maximum(0, np.maximum(others[:, 0] - boxes[i, 1], boxes[i, 0] - others[:, 1]))
+        gy = np.maximum(0, np.maximum(others[:, 2] - boxes[i, 3], boxes[i, 2] - others[:, 3]))
+        if np.hypot(gx, gy).min() > 0.4 * dh:
+            drop.append(i + 1)
+    if not drop:
+        return lab, len(objs), objs
+    lab = np.where(np.isin(lab, drop), 0, lab)
+    lab, n = ndimage.label(lab > 0, _8)
+    return lab, n, ndimage.find_objects(lab)
 
 
 def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES) -> FieldDigits:
@@ -398,6 +418,10 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     objs = ndimage.find_objects(lab)
     heights = np.array([sl[0].stop - sl[0].start for sl in objs], np.float64)
     dh = float(np.median(heights[heights >= 0.6 * heights.max()]))
+    lab, n, objs = _drop_dots(lab, objs, dh)
+    ink = lab > 0
+    if n == 0:
+        return FieldDigits(field.name, field.kind, image, [empty], None, False, None, corners, crop.rect)
     rows_ink = np.flatnonzero(ink.any(axis=1))
     # pieces of broken digits are short; the whole line of writing is about one digit tall
     dh = max(dh, 0.85 * (rows_ink[-1] - rows_ink[0] + 1), 0.25 * (y1 - y0))
@@ -464,7 +488,7 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
         bridged = sum(edges[k][2] for k in range(j + 1, i))
         cost += _W["bridge"] * bridged / dh                     # empty gaps bridged inside one digit
         cost += _W["cut"] * (edges[j][1] + edges[i][1]) / 2.0   # half of each cut's price
-        if gw > 1.6 * dh and i - j > 1:
+        if gw > 2.2 * dh and i - j > 1:
             cost = np.inf
         group_cache[key] = (m, (int(cols[0]), int(rows[0]), int(cols[-1]) + 1, int(rows[-1]) + 1), cost)
         return group_cache[key]
@@ -479,7 +503,7 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
             if j < i - 1 and edges[j + 1][2] > 0.5 * dh:   # a wide empty gap is never inside one digit
                 break
             _, box, c = group(j, i)
-            if box is not None and box[2] - box[0] > 1.8 * dh:   # wider than any one digit
+            if box is not None and box[2] - box[0] > 2.4 * dh:   # wider than any one digit
                 break
             if not best[j] or not np.isfinite(c):
                 continue
