@@ -157,7 +157,7 @@ def test_boxed_field_finds_digits_and_blank_cells():
     # the box lines are gone: no digit image is a frame (ink along its whole border)
     for k in (0, 1, 3, 5):
         img = cand.digits[k, 0]
-        assert img[:, :3].sum() < 1 and img[:, -3:].sum() < 1
+        assert img[:, :3].sum() < 3 and img[:, -3:].sum() < 3   # a left-over box line would give >= 10
 
 
 def test_blank_boxed_field_is_all_blank():
@@ -237,4 +237,4 @@ def test_separate_boxes_with_gaps_lose_both_edges_of_every_gap():
     assert fd.blank.tolist() == [False, True, False, False, True, False]
     for k in (0, 2, 3, 5):
         img = fd.candidates[0].digits[k, 0]
-        assert img[:, :3].sum() < 1 and img[:, -3:].sum() < 1 and img[:3].sum() < 1 and img[-3:].sum() < 1
+        assert max(img[:, :3].sum(), img[:, -3:].sum(), img[:3].sum(), img[-3:].sum()) < 3  # a line: >= 10
