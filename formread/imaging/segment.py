@@ -256,13 +256,14 @@ def segment_boxed(crop: FieldCrop, field) -> FieldDigits:
     h, w = lab.shape
     cell_of = np.full(h * w, -1, np.int64)
     if n:
-        if K > 1:
+        straight = np.clip(((np.arange(w) - x0) // cw).astype(np.int64), 0, K - 1)
+        cellmap = np.broadcast_to(straight[None, :], (h, w))
+        objs = ndimage.find_objects(lab)
+        if any(straight[sl[1].start] != straight[sl[1].stop - 1] for sl in objs):
             # where a piece of ink spanning a border is parted: least-ink paths near the inner borders
             inner = np.array([int(round(b)) for b in borders[1:-1]], np.int64)
             paths, _, _ = _cut_paths(kept.astype(np.float64), inner, max(2, int(0.2 * cw)))
             cellmap = (np.arange(w)[None, None, :] >= paths[:, :, None]).sum(axis=0)
-        else:
-            cellmap = np.zeros((h, w), np.int64)
         flat = np.flatnonzero(lab)
         labs, cells = lab.ravel()[flat], cellmap.ravel()[flat]
         counts = np.bincount(labs * K + cells, minlength=(n + 1) * K).reshape(n + 1, K)
@@ -336,15 +337,17 @@ def _cut_paths(ink: np.ndarray, starts: np.ndarray, reach: int) -> tuple[np.ndar
     colsc = np.clip(cols, 0, w - 1)
     stray = 0.02 * np.abs(offs)[None, :]
     big = 1e9
-    acc = np.where(valid, ink[0][colsc] + stray, big)
+    step = np.where(valid[None], ink[:, colsc] + stray[None], big)   # (h, P, B) price of each pixel
+    acc = step[0].copy()
     back = np.zeros((h, P, len(offs)), np.int8)
+    left = np.full_like(acc, big)
+    right = np.full_like(acc, big)
     for r in range(1, h):
-        left = np.concatenate([np.full((P, 1), big), acc[:, :-1]], axis=1)
-        right = np.concatenate([acc[:, 1:], np.full((P, 1), big)], axis=1)
-        stack = np.stack([left, acc, right])                       # (3, P, B)
-        arg = np.argmin(stack, axis=0)
-        acc = np.take_along_axis(stack, arg[None], 0)[0] + np.where(valid, ink[r][colsc] + stray, big)
-        back[r] = arg - 1
+        left[:, 1:] = acc[:, :-1]
+        right[:, :-1] = acc[:, 1:]
+        m = np.minimum(np.minimum(left, acc), right)
+        back[r] = np.where(left == m, -1, np.where(acc == m, 0, 1))   # ties: left, then straight
+        acc = m + step[r]
     j = np.argmin(acc, axis=1)
     paths = np.zeros((P, h), np.int64)
     for r in range(h - 1, -1, -1):
