@@ -92,8 +92,10 @@ def open_success(n_cases: int, seed: int):
 
 
 def test_open_fields_true_split_is_among_the_candidates():
-    rate, cases = open_success(120, seed=7)
-    # brief: the true segmentation is among the candidates in at least 95% of cases
+    rate, cases = open_success(200, seed=7)
+    # the cases do hold touching and broken digits (most fields have both)
+    assert sum("touching" in c[1] for c in cases) >= 80 and sum("broken" in c[1] for c in cases) >= 80
+    # the true segmentation is among the candidates in at least 95% of cases (97.5% when written)
     assert rate >= 0.95, [c for c in cases if not c[0]][:10]
 
 
