@@ -57,15 +57,16 @@ def render_proof(page_digits, layout, *, scale: float = 0.5) -> Image.Image:
     soft = np.asarray(base, np.float32) * 0.55 + 255 * 0.45
     img = Image.fromarray(np.clip(soft, 0, 255).astype(np.uint8)).convert("RGB")
     draw = ImageDraw.Draw(img)
-    font = ImageFont.load_default()
     lw = max(1, int(round(3 * scale)))
     s = scale
+    px_per_mm = float(np.sqrt(abs(np.linalg.det(np.asarray(reg.matrix)[:, :2]))))
+    size = max(10, int(round(2.8 * px_per_mm * s)))       # labels about 2.8 mm tall on the page
+    font = ImageFont.load_default(size=size)
 
     def mm_to_img(points_mm) -> np.ndarray:
         p = np.asarray(points_mm, np.float64).reshape(-1, 2)
         return (p @ np.asarray(reg.matrix)[:, :2].T + np.asarray(reg.matrix)[:, 2]) * s
 
-    px_per_mm = float(np.sqrt(abs(np.linalg.det(np.asarray(reg.matrix)[:, :2]))))
     marks = getattr(reg, "mark_px", None)
     if marks is not None:
         used = list(getattr(reg, "mark_index", ())) or list(range(len(marks)))
@@ -83,7 +84,7 @@ def render_proof(page_digits, layout, *, scale: float = 0.5) -> Image.Image:
             _poly(draw, mm_to_img([(c.x, c.y), (c.x, c.y + c.h)])[[0, 1, 1, 0]], PALETTE["cell"], max(1, lw // 2))
         _poly(draw, rect, colour, lw)
         label = f.name if fd is None or not fd.doubtful else f"{f.name}: {fd.reason}"
-        tx, ty = rect[0, 0], rect[0, 1] - 12
+        tx, ty = rect[0, 0], rect[0, 1] - size - 3
         draw.text((tx, max(0.0, ty)), label, fill=colour, font=font)
         if fd is None or not fd.candidates:
             continue
