@@ -54,7 +54,8 @@ def _layout(dtype, shapes, capacity, in_shape):
 def _map(path, dtype, shapes, capacity, in_shape):
     """Map the shared file: (param views, grad views, x buffer (capacity, *in_shape), y (capacity,))."""
     offs, size = _layout(dtype, shapes, capacity, in_shape)
-    mm = np.memmap(path, dtype=np.uint8, mode="r+", shape=(size,))
+    # plain ndarray views (not the np.memmap subclass, whose wrapping would slow every operation)
+    mm = np.memmap(path, dtype=np.uint8, mode="r+", shape=(size,)).view(np.ndarray)
     total = sum(int(np.prod(s)) for s in shapes)
 
     def split(off):
