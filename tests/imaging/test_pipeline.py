@@ -95,3 +95,25 @@ def test_a_field_off_the_scanned_image_cannot_be_cut():
     reg = FakeRegistration(np.array([[10.0, 0.0, 0.0], [0.0, 10.0, 0.0]]), page)
     with pytest.raises(SegmentationError, match="'far'.*off the scanned page"):
         cut_field(reg, FakeField("far", "open", 20.0, 20.0, 40.0, 8.0))
+
+
+@pytest.mark.parametrize("tr,method", [(Transform(shadow=0.6, noise=5), "sauvola"),
+                                       (Transform(blur_px=1.2, noise=10, jpeg_quality=50), "otsu")])
+def test_uneven_light_and_a_poor_scan_still_find_the_digits(tr, method):
+    layout = example_layout()
+    gray, _ = render_page(layout, 200, DIGITS, np.random.default_rng(1), tr)
+    pd = process_page(Page(gray, 200.0, "poor.png", 1), layout)
+    assert pd.method == method
+    assert not pd.fields["member"].blank.any()
+    assert pd.fields["litres"].blank.tolist() == [c == " " for c in DIGITS["litres"]]
+    assert len(pd.fields["reading"].candidates[0].boxes) == 5
+
+
+def test_a_bilevel_page_reads_like_a_grey_one():
+    layout = example_layout()
+    gray, _ = render_page(layout, 300, DIGITS, np.random.default_rng(5), Transform(rotation_deg=-1.0, noise=4))
+    bilevel = np.where(gray < 150, 0, 255).astype(np.uint8)      # a scanner's bilevel mode
+    pd = process_page(Page(bilevel, 300.0, "g4.tif", 1), layout)
+    assert not pd.fields["member"].blank.any()
+    assert pd.fields["litres"].blank.tolist() == [c == " " for c in DIGITS["litres"]]
+    assert len(pd.fields["reading"].candidates[0].boxes) == 5
