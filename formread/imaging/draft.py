@@ -65,7 +65,7 @@ def find_marks(ink: np.ndarray, lab: np.ndarray, objs: list, dpi: float) -> list
             continue
         ys, xs = np.nonzero(lab[sl] == i)
         cy, cx = ys.mean() + sl[0].start + 0.5, xs.mean() + sl[1].start + 0.5
-        out.append(Mark(round(cx / k, 2), round(cy / k, 2), round(float(np.sqrt(len(ys))) / k, 2)))
+        out.append(Mark(round(float(cx) / k, 2), round(float(cy) / k, 2), round(float(np.sqrt(len(ys))) / k, 2)))
     if out:  # keep the squares of the common size (marks are printed alike)
         side = float(np.median([m.size for m in out]))
         out = [m for m in out if abs(m.size - side) <= 0.2 * side]
@@ -211,7 +211,7 @@ def draft_layout(page, *, name: str | None = None) -> Layout:
     boxes.sort(key=lambda b: (round(b.y / 4.0), b.x))  # reading order: rows 4 mm apart, then left to right
     fields = []
     for i, b in enumerate(boxes, 1):
-        x, y = max(0.0, round(b.x, 2)), max(0.0, round(b.y, 2))
+        x, y = max(0.0, round(float(b.x), 2)), max(0.0, round(float(b.y), 2))
         w, h = round(min(b.w, width_mm - x), 2), round(min(b.h, height_mm - y), 2)
         if b.cells > 1 or b.w <= 1.5 * b.h:
             fields.append(FieldSpec(f"field_{i}", "boxed", x, y, w, h, b.cells, b.cells))

@@ -127,3 +127,18 @@ def test_draft_without_marks_is_refused():
     draw_rect(page, 30.0, 30.0, 40.0, 8.0)
     with pytest.raises(LayoutError, match="nomarks.png page 2: only 0 solid corner squares"):
         draft_layout(Page(page, 300.0, "nomarks.png", 2))
+
+
+def test_draft_of_the_demo_card_finds_its_fields():
+    # the demo's own blank card (formread.demo): every layout field is found within 0.5 mm
+    from formread.demo.card import LAYOUT_PATH, read_card_layout, render_card
+    from formread.imaging.layout import load_layout
+
+    card = render_card(read_card_layout(LAYOUT_PATH), 200)
+    lay = draft_layout(Page(card, 200.0, "card.png", 1))
+    assert len(lay.marks) == 4 and all(type(m.x) is float for m in lay.marks)
+    for f in load_layout(LAYOUT_PATH).fields:
+        match = [d for d in lay.fields if abs(d.x - f.x) < 0.5 and abs(d.y - f.y) < 0.5]
+        assert len(match) == 1, f.name
+        d = match[0]
+        assert d.kind == f.kind and d.cells == f.cells and abs(d.w - f.w) < 0.6 and abs(d.h - f.h) < 0.6
