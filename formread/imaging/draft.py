@@ -212,7 +212,7 @@ def draft_layout(page, *, name: str | None = None) -> Layout:
     fields = []
     for i, b in enumerate(boxes, 1):
         x, y = max(0.0, round(float(b.x), 2)), max(0.0, round(float(b.y), 2))
-        w, h = round(min(b.w, width_mm - x), 2), round(min(b.h, height_mm - y), 2)
+        w, h = round(float(min(b.w, width_mm - x)), 2), round(float(min(b.h, height_mm - y)), 2)
         if b.cells > 1 or b.w <= 1.5 * b.h:
             fields.append(FieldSpec(f"field_{i}", "boxed", x, y, w, h, b.cells, b.cells))
         else:
