@@ -146,3 +146,15 @@ def test_draft_of_a_page_without_marks(files):
 def test_draft_missing_file(files):
     res = runner.invoke(app, ["layout", "draft", str(files / "gone.png")])
     _one_line_error(res, "gone.png", "no such file")
+
+
+def test_proof_of_page_two_of_a_group4_tiff(files):
+    scan = np.asarray(Image.open(files / "scan.png"))
+    blank = np.asarray(Image.open(files / "blank.png"))
+    pages = [Image.fromarray(a >= 150) for a in (blank, scan)]        # bilevel, as a scanner writes it
+    tif = files / "batch.tif"
+    pages[0].save(tif, save_all=True, append_images=pages[1:], compression="group4", dpi=(DPI, DPI))
+    res = runner.invoke(app, ["layout", "proof", "-l", str(files / "card.toml"), str(tif), "--page", "2"])
+    assert res.exit_code == 0, res.output
+    assert "member: 8 of 8 cells written" in res.stdout
+    assert (files / "batch.proof-p2.png").is_file()
