@@ -169,6 +169,21 @@ def bench_torch(threads: int, seconds: float) -> dict | None:
     with torch.inference_mode():
         res[f"infer_b{INFER_BATCH}"] = best_rate(lambda: torch.softmax(model(x), 1), INFER_BATCH, seconds)
         res["latency_ms"] = median_ms(lambda: torch.softmax(model(x1), 1))
+    if threads > 1:  # one thread too: a per-core comparison that other load disturbs less
+        torch.set_num_threads(1)
+        for b in (64, 128):
+            xb = torch.rand(b, 1, 28, 28)
+            yb = torch.randint(0, 10, (b,))
+
+            def step1():
+                opt.zero_grad()
+                torch.nn.functional.cross_entropy(model(xb), yb).backward()
+                opt.step()
+            res[f"train_b{b}_1thread"] = best_rate(step1, b, seconds)
+        with torch.inference_mode():
+            res[f"infer_b{INFER_BATCH}_1thread"] = best_rate(
+                lambda: torch.softmax(model(x), 1), INFER_BATCH, seconds)
+        torch.set_num_threads(threads)
     return res
 
 
@@ -208,6 +223,11 @@ def main(argv=None) -> int:
         if f"train_2proc_b{b}" in res_np:
             print(f"  numpy train_b{b}: 1 process on 1 core {res_np[f'train_1core_b{b}']:.0f}, "
                   f"2 processes {res_np[f'train_2proc_b{b}']:.0f} img/s")
+    if res_t and "train_b64_1thread" in res_t:
+        print("one core each (numpy 1 process, PyTorch 1 thread): "
+              + ", ".join(f"{k} {res_np[k.replace('train_', 'train_1core_')] if k.startswith('train') else res_np[k]:.0f}"
+                          f" vs {res_t[k + '_1thread']:.0f}"
+                          for k in ("train_b64", "train_b128", f"infer_b{INFER_BATCH}")))
     print("numpy images per CPU second (one process; little disturbed by other load): training "
           + ", ".join(f"b{b} {res_np[f'train_1core_b{b}_per_cpu_second']:.0f}" for b in TRAIN_BATCHES)
           + f"; inference b{INFER_BATCH} {res_np[f'infer_b{INFER_BATCH}_per_cpu_second']:.0f}")
