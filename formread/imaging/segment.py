@@ -1,9 +1,11 @@
 """Split a field crop into digit images: per printed cell (boxed) or by candidate cuts (open).
 
 Boxed fields: printed lines are removed (strokes crossing them kept), each connected
-piece of ink goes to the cell holding most of it, and a cell is *blank* when its ink
-is under ``BLANK_SHARE`` of the cell's area or shorter than ``BLANK_HEIGHT`` of the
-cell's height.
+piece of ink goes to the cell holding most of it (a digit spilling slightly over a
+border stays with its cell), except that a piece with a real share in a second cell
+(two digits touching) is parted along a least-ink path near the border.  A cell is
+*blank* when its ink is under ``BLANK_SHARE`` of the cell's area or shorter than
+``BLANK_HEIGHT`` of the cell's height.
 
 Open fields: the field is over-segmented by cut paths (straight cuts through empty
 gaps, and least-ink paths from top to bottom near minima of the column ink
