@@ -240,3 +240,21 @@ def test_separate_boxes_with_gaps_lose_both_edges_of_every_gap():
     for k in (0, 2, 3, 5):
         img = fd.candidates[0].digits[k, 0]
         assert max(img[:, :3].sum(), img[:, -3:].sum(), img[:3].sum(), img[-3:].sum()) < 3  # a line: >= 10
+
+
+def test_two_digits_touching_across_a_border_are_parted():
+    page = blank_page(70.0, 26.0)
+    draw_boxes(page, BOXED.x, BOXED.y, BOXED.w, BOXED.h, BOXED.cells)
+    images, labels = mnist_test()
+    cw = BOXED.w / BOXED.cells
+    border = BOXED.x + 2 * cw
+    left = digit_ink(images[np.flatnonzero(labels == 0)[1]], 5.6 * S)   # a bold 0 ...
+    right = digit_ink(images[np.flatnonzero(labels == 7)[1]], 4.5 * S)  # ... and a smaller 7
+    stamp(page, left, int((border + 0.3) * S) - left.shape[1], int((BOXED.y + 1.2) * S))
+    stamp(page, right, int((border - 0.3) * S), int((BOXED.y + 1.5) * S))
+    t = int(0.5 * S)                                    # and a stroke joining them over the border
+    page[int((BOXED.y + 4) * S):int((BOXED.y + 4) * S) + t, int((border - 1.0) * S):int((border + 1.0) * S)] = 0
+    fd = segment_boxed(cut_field(identity_registration(page), BOXED), BOXED)
+    assert fd.blank.tolist() == [True, False, False, True, True, True]
+    b1, b2 = fd.candidates[0].boxes[1:3]
+    assert b1[2] <= b2[2] and b1[0] < b2[0]             # the 0's ink left of the 7's
