@@ -224,10 +224,12 @@ def main(argv=None) -> int:
             print(f"  numpy train_b{b}: 1 process on 1 core {res_np[f'train_1core_b{b}']:.0f}, "
                   f"2 processes {res_np[f'train_2proc_b{b}']:.0f} img/s")
     if res_t and "train_b64_1thread" in res_t:
+        pairs = [(f"train_b{b}", res_np[f"train_1core_b{b}"], res_t[f"train_b{b}_1thread"])
+                 for b in (64, 128)]
+        pairs.append((f"infer_b{INFER_BATCH}", res_np[f"infer_b{INFER_BATCH}"],
+                      res_t[f"infer_b{INFER_BATCH}_1thread"]))
         print("one core each (numpy 1 process, PyTorch 1 thread): "
-              + ", ".join(f"{k} {res_np[k.replace('train_', 'train_1core_')] if k.startswith('train') else res_np[k]:.0f}"
-                          f" vs {res_t[k + '_1thread']:.0f}"
-                          for k in ("train_b64", "train_b128", f"infer_b{INFER_BATCH}")))
+              + ", ".join(f"{k} {a:.0f} vs {b:.0f}" for k, a, b in pairs))
     print("numpy images per CPU second (one process; little disturbed by other load): training "
           + ", ".join(f"b{b} {res_np[f'train_1core_b{b}_per_cpu_second']:.0f}" for b in TRAIN_BATCHES)
           + f"; inference b{INFER_BATCH} {res_np[f'infer_b{INFER_BATCH}_per_cpu_second']:.0f}")
