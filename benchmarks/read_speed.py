@@ -11,6 +11,10 @@ its images, outputs rebuilt).  Prints the figures; ``--json`` prints one object.
 ``imaging_seconds`` is the time the imaging step took summed over pages (in the
 workers, so it can exceed the wall time); ``recognition_seconds`` is the network
 plus decoding in the main process; ``writing_seconds`` the ledger and image files.
+``cpu_seconds_per_page`` is the CPU time of the reader and its workers per page,
+and ``cpu_bound_pages_per_second`` the rate it allows on the CPUs the run may use
+(min(CPUs, workers + 1)) when nothing else competes for them: an upper bound to
+read beside the wall-clock figure on a busy machine (``load_average_before``).
 """
 
 from __future__ import annotations
@@ -23,6 +27,14 @@ import sys
 import tempfile
 import time
 from pathlib import Path
+
+
+def _cpu_seconds() -> float:
+    """User + system CPU seconds of this process and its finished children (the imaging workers)."""
+    import resource
+
+    a, b = resource.getrusage(resource.RUSAGE_SELF), resource.getrusage(resource.RUSAGE_CHILDREN)
+    return a.ru_utime + a.ru_stime + b.ru_utime + b.ru_stime
 
 
 def main(argv=None) -> int:
@@ -47,10 +59,13 @@ def main(argv=None) -> int:
             made = make_demo(pages_dir, count=args.pages, seed=args.seed)
         scans = sorted(p for p in pages_dir.iterdir() if p.suffix.lower() in SCAN_SUFFIXES)
         out = Path(tmp) / "out"
+        load_before = os.getloadavg()[0]
+        cpu0 = _cpu_seconds()
         t0 = time.perf_counter()
         rep = read_batch(scans, pages_dir / "layout.toml", out, model_path=args.model, workers=args.workers,
                          command="benchmarks/read_speed.py")
         wall = time.perf_counter() - t0
+        cpu = _cpu_seconds() - cpu0
     res = {
         "pages_per_second": round(rep.pages / wall, 3),
         "pages": rep.pages, "read": rep.read, "failed": rep.failed + rep.unregistered,
@@ -60,6 +75,11 @@ def main(argv=None) -> int:
         "recognition_seconds": round(rep.recognition_seconds, 2),
         "recognition_seconds_per_page": round(rep.recognition_seconds / max(1, rep.pages), 4),
         "writing_seconds": round(rep.writing_seconds, 2),
+        # CPU time of the reader and its workers: what the machine must give per page, whatever else runs
+        "cpu_seconds_per_page": round(cpu / max(1, rep.pages), 4),
+        "cpu_bound_pages_per_second": round(min(os.cpu_count() or 1, args.workers + 1) * rep.pages / cpu, 3)
+        if cpu > 0 else None,
+        "load_average_before": round(load_before, 2),
         "imaging_stages": {k: round(v, 2) for k, v in sorted(rep.stages.items())},
         "workers": args.workers, "cpus": os.cpu_count(), "seed": args.seed,
         "make_demo_seconds": None if made is None else made["seconds"],
@@ -77,6 +97,9 @@ def main(argv=None) -> int:
         print(f"  recognition  {rep.recognition_seconds:7.2f} s "
               f"({res['recognition_seconds_per_page'] * 1000:.0f} ms/page: network + decoding)")
         print(f"  writing      {rep.writing_seconds:7.2f} s (ledger rows and image files)")
+        print(f"  CPU time     {res['cpu_seconds_per_page'] * 1000:.0f} ms/page (reader + workers): "
+              f"{res['cpu_bound_pages_per_second']} pages/s if the CPUs were free "
+              f"(load average before the run: {res['load_average_before']})")
     return 0
 
 
