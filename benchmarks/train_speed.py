@@ -6,8 +6,8 @@ momentum step; one process on one core, and two processes via ``DataParallel``),
 the machine's measured float32 matmul peak. When PyTorch is importable, the same architecture,
 batch and thread count in PyTorch (``torch.set_num_threads``), and the ratio numpy / PyTorch.
 
-Each figure is the best of several short timing windows, so that other work on the machine
-disturbs it less. ``--json`` prints one JSON object:
+Each figure is the best of several short timing windows, and the windows of all figures (numpy
+and PyTorch) are taken in turns, so that other work on a shared machine disturbs them alike. ``--json`` prints one JSON object:
 {"numpy": {...}, "pytorch": {...} or null, "ratio": {"train_b64", "train_b128", "infer_b256"},
  "peak_gflops": g} (ratios null without PyTorch).
 
@@ -17,6 +17,7 @@ Usage: python benchmarks/train_speed.py [--json] [--seconds S] [--threads T]
 from __future__ import annotations
 
 import argparse
+import contextlib
 import json
 import os
 import sys
@@ -106,47 +107,73 @@ def peak_gflops(threads: int, seconds: float) -> tuple[float, float]:
     return max(rates[threads], threads * rates[1]) * flop, rates[1] * flop
 
 
-def bench_numpy(threads: int, seconds: float) -> dict:
+def interleaved_best(entries: dict, seconds: float, windows: int = 5) -> dict:
+    """Best images/s of each entry name -> (step, images per call, prepare or None), measured in
+    turns: window 1 of every entry, then window 2 of every entry, ... so that changing load from
+    other work on the machine falls on all of them alike."""
+    best = dict.fromkeys(entries, 0.0)
+    for name, (step, _, prepare) in entries.items():  # warm-up
+        if prepare:
+            prepare()
+        step()
+    for _ in range(windows):
+        for name, (step, images, prepare) in entries.items():
+            if prepare:
+                prepare()
+            t0 = time.perf_counter()
+            calls = 0
+            while True:
+                step()
+                calls += 1
+                dt = time.perf_counter() - t0
+                if dt >= seconds / windows:
+                    break
+            best[name] = max(best[name], calls * images / dt)
+    return best
+
+
+def numpy_entries(threads: int, stack: contextlib.ExitStack) -> tuple[dict, dict]:
+    """Timed steps for numpy, and the extra figures measured on their own."""
     rng = np.random.default_rng(0)
     model = build_model(ARCH, rng)
     opt = SGD(model.parameters(), lr=0.01, momentum=0.9)
-    res = {}
+    entries, extra = {}, {}
     for b in TRAIN_BATCHES:
         x = rng.random((b, 1, 28, 28), dtype=np.float32)
         y = rng.integers(0, 10, b)
 
-        def step():
+        def step(x=x, y=y):
             model.grad_step(x, y)
             opt.step()
+        entries[f"train_1core_b{b}"] = (step, b, None)
         with threadpool_limits(1):
-            res[f"train_1core_b{b}"] = best_rate(step, b, seconds)
-            res[f"train_1core_b{b}_per_cpu_second"] = best_rate(step, b, seconds, clock=time.process_time)
+            extra[f"train_1core_b{b}_per_cpu_second"] = best_rate(step, b, 1.0, clock=time.process_time)
         if threads >= 2:
-            with DataParallel(model) as dp:
-                def pstep():
-                    dp.grad_step(x, y)
-                    opt.step()
-                res[f"train_2proc_b{b}"] = best_rate(pstep, b, seconds)
-        res[f"train_b{b}"] = max(res[f"train_1core_b{b}"], res.get(f"train_2proc_b{b}", 0.0))
+            dp = stack.enter_context(DataParallel(model))
+
+            def pstep(x=x, y=y, dp=dp):
+                dp.grad_step(x, y)
+                opt.step()
+            entries[f"train_2proc_b{b}"] = (pstep, b, None)
     x = rng.random((INFER_BATCH, 1, 28, 28), dtype=np.float32)
     x1 = x[:1].copy()
-    # inference runs in this one process (the model pins BLAS to one thread): one core
 
+    # inference runs in this one process (the model pins BLAS to one thread): one core
     def infer():
         model.predict_proba(x, batch_size=INFER_BATCH)
-    res[f"infer_b{INFER_BATCH}"] = best_rate(infer, INFER_BATCH, seconds)
-    res[f"infer_b{INFER_BATCH}_per_cpu_second"] = best_rate(infer, INFER_BATCH, seconds,
-                                                             clock=time.process_time)
-    res["latency_ms"] = median_ms(lambda: model.predict_proba(x1))
-    return res
+    entries[f"infer_b{INFER_BATCH}"] = (infer, INFER_BATCH, None)
+    extra[f"infer_b{INFER_BATCH}_per_cpu_second"] = best_rate(infer, INFER_BATCH, 1.0,
+                                                               clock=time.process_time)
+    extra["latency_ms"] = median_ms(lambda: model.predict_proba(x1))
+    return entries, extra
 
 
-def bench_torch(threads: int, seconds: float) -> dict | None:
+def torch_entries(threads: int) -> tuple[dict, dict] | None:
+    """Timed steps for the same network in PyTorch (None when PyTorch is not importable)."""
     try:
         import torch
     except ImportError:
         return None
-    torch.set_num_threads(threads)
     torch.manual_seed(0)
     nn = torch.nn
     model = nn.Sequential(
@@ -154,37 +181,56 @@ def bench_torch(threads: int, seconds: float) -> dict | None:
         nn.Conv2d(6, 16, 5), nn.ReLU(), nn.MaxPool2d(2), nn.Flatten(),
         nn.Linear(400, 120), nn.ReLU(), nn.Linear(120, 84), nn.ReLU(), nn.Linear(84, 10))
     opt = torch.optim.SGD(model.parameters(), lr=0.01, momentum=0.9)
-    res = {"version": torch.__version__, "threads": threads}
-    for b in TRAIN_BATCHES:
-        x = torch.rand(b, 1, 28, 28)
-        y = torch.randint(0, 10, (b,))
 
-        def step():
-            opt.zero_grad()
-            torch.nn.functional.cross_entropy(model(x), y).backward()
-            opt.step()
-        res[f"train_b{b}"] = best_rate(step, b, seconds)
+    def use(n):
+        return lambda: torch.set_num_threads(n)
+    entries = {}
     x = torch.rand(INFER_BATCH, 1, 28, 28)
-    x1 = x[:1].clone()
-    with torch.inference_mode():
-        res[f"infer_b{INFER_BATCH}"] = best_rate(lambda: torch.softmax(model(x), 1), INFER_BATCH, seconds)
-        res["latency_ms"] = median_ms(lambda: torch.softmax(model(x1), 1))
-    if threads > 1:  # one thread too: a per-core comparison that other load disturbs less
-        torch.set_num_threads(1)
-        for b in (64, 128):
+
+    def infer():
+        with torch.inference_mode():
+            torch.softmax(model(x), 1)
+    for t in sorted({threads, 1}, reverse=True):
+        suffix = "" if t == threads else "_1thread"
+        for b in TRAIN_BATCHES if t == threads else (64, 128):
             xb = torch.rand(b, 1, 28, 28)
             yb = torch.randint(0, 10, (b,))
 
-            def step1():
+            def step(xb=xb, yb=yb):
                 opt.zero_grad()
                 torch.nn.functional.cross_entropy(model(xb), yb).backward()
                 opt.step()
-            res[f"train_b{b}_1thread"] = best_rate(step1, b, seconds)
-        with torch.inference_mode():
-            res[f"infer_b{INFER_BATCH}_1thread"] = best_rate(
-                lambda: torch.softmax(model(x), 1), INFER_BATCH, seconds)
-        torch.set_num_threads(threads)
-    return res
+            entries[f"train_b{b}{suffix}"] = (step, b, use(t))
+        entries[f"infer_b{INFER_BATCH}{suffix}"] = (infer, INFER_BATCH, use(t))
+    torch.set_num_threads(threads)
+    x1 = x[:1].clone()
+    with torch.inference_mode():
+        extra = {"version": torch.__version__, "threads": threads,
+                 "latency_ms": median_ms(lambda: torch.softmax(model(x1), 1))}
+    return entries, extra
+
+
+def bench(threads: int, seconds: float) -> tuple[dict, dict | None]:
+    """(numpy figures, PyTorch figures or None), the timed steps measured in turns."""
+    with contextlib.ExitStack() as stack:
+        np_entries, np_extra = numpy_entries(threads, stack)
+        t = torch_entries(threads)
+        entries = {("numpy", k): v for k, v in np_entries.items()}
+        if t is not None:
+            entries.update({("pytorch", k): v for k, v in t[0].items()})
+        best = interleaved_best(entries, seconds)
+        if t is not None:
+            import torch
+            torch.set_num_threads(threads)
+    res_np = {k: v for (side, k), v in best.items() if side == "numpy"}
+    res_np.update(np_extra)
+    for b in TRAIN_BATCHES:
+        res_np[f"train_b{b}"] = max(res_np[f"train_1core_b{b}"], res_np.get(f"train_2proc_b{b}", 0.0))
+    res_t = None
+    if t is not None:
+        res_t = {k: v for (side, k), v in best.items() if side == "pytorch"}
+        res_t.update(t[1])
+    return res_np, res_t
 
 
 def main(argv=None) -> int:
@@ -195,8 +241,7 @@ def main(argv=None) -> int:
                     help="cores to use (numpy: processes/BLAS threads; PyTorch: set_num_threads)")
     args = ap.parse_args(argv)
     peak, peak1 = peak_gflops(args.threads, args.seconds)
-    res_np = bench_numpy(args.threads, args.seconds)
-    res_t = bench_torch(args.threads, args.seconds)
+    res_np, res_t = bench(args.threads, args.seconds)
     fwd, train = flops_per_image(ARCHITECTURES[ARCH])
     res_np["flops_per_image_forward"] = fwd
     res_np["flops_per_image_train"] = train
@@ -209,7 +254,8 @@ def main(argv=None) -> int:
     if args.json:
         print(json.dumps(out))
         return 0
-    print(f"architecture {ARCH}, 28x28 inputs, {args.threads} core(s); best of 5 timing windows")
+    print(f"architecture {ARCH}, 28x28 inputs, {args.threads} core(s); "
+          "best of 5 timing windows, numpy and PyTorch in turns")
     print(f"matmul peak (float32, 2048^3): {peak:.1f} GFLOP/s on {args.threads} core(s), "
           f"{peak1:.1f} on one")
     print(f"FLOPs per image: forward {fwd / 1e6:.3f} M, training {train / 1e6:.3f} M")
