@@ -7,7 +7,8 @@ the machine's measured float32 matmul peak. When PyTorch is importable, the same
 batch and thread count in PyTorch (``torch.set_num_threads``), and the ratio numpy / PyTorch.
 
 Each figure is the best of several short timing windows, and the windows of all figures (numpy
-and PyTorch) are taken in turns, so that other work on a shared machine disturbs them alike. ``--json`` prints one JSON object:
+and PyTorch) are taken in turns, so that other work on a shared machine disturbs them alike.
+``--json`` prints one JSON object:
 {"numpy": {...}, "pytorch": {...} or null, "ratio": {"train_b64", "train_b128", "infer_b256"},
  "peak_gflops": g} (ratios null without PyTorch).
 
