@@ -3,7 +3,9 @@
 ``train(model, x, y, config)`` trains in place and returns a :class:`TrainResult`.
 
 * A stratified share ``val_fraction`` of the data is held back as the validation split:
-  it drives early stopping (validation loss) and is what the temperature is fitted on.
+  it drives early stopping and is what the temperature is fitted on.  The weights kept
+  are those with the lowest validation loss at that epoch's own best temperature, so
+  the choice does not depend on how calibrated the raw outputs happen to be.
 * Each epoch reshuffles the training split and (optionally) distorts every batch
   (:mod:`formread.nn.augment`).
 * Progress goes to a ``progress(done, total, **figures)`` callback: ``done``/``total``
@@ -125,10 +127,13 @@ class TrainResult:
 
     Attributes
     ----------
-    model : Sequential          trained in place; holds the best weights (lowest validation loss)
-    history : list of dict     per epoch: epoch, lr, loss, acc, val_loss, val_acc, seconds
+    model : Sequential          trained in place; holds the best weights (lowest validation loss
+                               at the epoch's best temperature)
+    history : list of dict     per epoch: epoch, lr, loss, acc, val_loss (raw), val_loss_t (at the
+                               epoch's best temperature), val_acc, seconds
     best_epoch : int           1-based epoch of the weights kept (0 if no epoch finished)
-    best_val_loss, val_accuracy : float   of the kept weights (nan without a validation split)
+    best_val_loss, val_accuracy : float   raw validation loss and accuracy of the kept weights
+                               (nan without a validation split)
     temperature : float        fitted on the validation split (1.0 without one)
     ece_val_raw, ece_val_calibrated : float   validation ECE before/after the temperature
     epochs_run : int           epochs finished, including those before a resume
@@ -413,12 +418,18 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
                 if progress is not None and b + 1 < n_batches:
                     progress(b + 1, n_batches, epoch=epoch + 1, epochs=cfg.epochs,
                              loss=loss_sum / seen, acc=correct / seen)
-            val_loss, val_acc, _ = _evaluate(model, x_val, y_val)
+            val_loss, val_acc, val_logits = _evaluate(model, x_val, y_val)
+            # select on the validation loss at this epoch's best temperature: calibration is
+            # fixed afterwards by the temperature, so it should not decide which weights to keep
+            # (this matters with label smoothing, which makes the raw outputs under-confident)
+            val_loss_t = (scaled_nll(val_logits, y_val, fit_temperature(val_logits, y_val))
+                          if len(val_idx) else float("nan"))
             epoch += 1
             row = {"epoch": epoch, "lr": opt.lr, "loss": loss_sum / seen, "acc": correct / seen,
-                   "val_loss": val_loss, "val_acc": val_acc, "seconds": time.monotonic() - e0}
+                   "val_loss": val_loss, "val_loss_t": val_loss_t, "val_acc": val_acc,
+                   "seconds": time.monotonic() - e0}
             history.append(row)
-            criterion = val_loss if len(val_idx) else row["loss"]
+            criterion = val_loss_t if len(val_idx) else row["loss"]
             if criterion < best_loss - 1e-6:
                 best_loss, best_epoch, bad_epochs = criterion, epoch, 0
                 best_state = model.state_dict()

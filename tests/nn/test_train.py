@@ -72,10 +72,12 @@ def test_early_stopping_keeps_the_best_weights():
     # a huge constant learning rate makes validation loss worse after the first epochs
     res = train(build_model(TINY, np.random.default_rng(0)), x, y,
                 _cfg(epochs=12, lr=0.5, optimizer="sgd", schedule="constant", patience=2))
-    losses = [h["val_loss"] for h in res.history]
+    losses = [h["val_loss_t"] for h in res.history]  # the selection criterion
     assert res.stopped_early and len(losses) < 12
     assert res.best_epoch == int(np.argmin(losses)) + 1
-    assert res.best_val_loss == pytest.approx(min(losses), rel=1e-4)
+    # the kept weights are those of the best epoch: their raw loss is that epoch's raw loss
+    assert res.best_val_loss == pytest.approx(res.history[res.best_epoch - 1]["val_loss"], rel=1e-4)
+    assert all(h["val_loss_t"] <= h["val_loss"] + 1e-9 for h in res.history)
 
 
 def test_ctrl_c_keeps_best_weights_and_resume_finishes(tmp_path):
