@@ -73,7 +73,8 @@ def train_cmd(
     elastic_sigma: float = typer.Option(4.0, "--elastic-sigma", help="Smoothing of the elastic displacement."),
     seed: int = typer.Option(0, "--seed", help="Seeds the weights, split, shuffling and augmentation."),
     workers: int = typer.Option(1, "--workers", "-w",
-                                help="1, or 2 to split each batch over two processes (pays on an idle 2-core machine)."),
+                                help="1, or 2 to split each batch over two processes "
+                                     "(pays on an idle 2-core machine)."),
     checkpoint: Optional[Path] = typer.Option(None, "--checkpoint",
                                               help="Checkpoint file (default: OUT with .ckpt appended)."),
     resume: bool = typer.Option(False, "--resume", help="Continue the run saved in the checkpoint."),
@@ -109,9 +110,12 @@ def train_cmd(
                    f"for validation), seed {seed}", err=True)
     result = train(model, data.x, data.y, cfg, progress=_EpochBars(not quiet), checkpoint=ckpt, resume=resume)
 
-    metrics = {"validation": {"n": int(len(result.val_indices)), "accuracy": result.val_accuracy,
-                              "loss": result.best_val_loss, "ece_raw": result.ece_val_raw,
-                              "ece": result.ece_val_calibrated}}
+    def finite(v):  # JSON has no NaN: a figure that does not exist (no validation split) is null
+        return None if v != v else v
+
+    metrics = {"validation": {"n": int(len(result.val_indices)), "accuracy": finite(result.val_accuracy),
+                              "loss": finite(result.best_val_loss), "ece_raw": finite(result.ece_val_raw),
+                              "ece": finite(result.ece_val_calibrated)}}
     for part in held_out_parts(dataset):
         held = load_named(*part.split(":"))
         ev = evaluate(model, held.x, held.y, result.temperature)
@@ -136,8 +140,10 @@ def train_cmd(
         if part != "validation":
             typer.echo(f"{part}: accuracy {m['accuracy']:.4f}  ECE {m['ece_raw']:.4f} -> {m['ece']:.4f} "
                        f"(temperature {result.temperature:.3f})")
-    typer.echo(f"validation: accuracy {result.val_accuracy:.4f} (best epoch {result.best_epoch} "
-               f"of {result.epochs_run})  {result.seconds:.0f} s")
+    if len(result.val_indices):
+        typer.echo(f"validation: accuracy {result.val_accuracy:.4f} (best epoch {result.best_epoch} "
+                   f"of {result.epochs_run})")
+    typer.echo(f"trained {result.epochs_run} epochs in {result.seconds:.0f} s")
     typer.echo(f"wrote {out}")
     if result.interrupted:
         typer.echo(f"formread: interrupted; best weights so far saved to {out}; "
@@ -294,8 +300,9 @@ def info_cmd(
     in_use = default_model_path().resolve()
     rows = list_models()
     if as_json:
-        typer.echo(json.dumps([{"file": p.name, "in_use": p.resolve() == in_use, "created": (h or {}).get("created"),
-                                "metrics": (h or {}).get("metrics"), "problem": err} for p, h, err in rows], indent=2))
+        listing = [{"file": p.name, "in_use": p.resolve() == in_use, "created": (h or {}).get("created"),
+                    "metrics": (h or {}).get("metrics"), "problem": err} for p, h, err in rows]
+        typer.echo(json.dumps(listing, indent=2))
         return
     if not rows:
         typer.echo(f"no model files in {models_dir()}")

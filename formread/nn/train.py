@@ -370,7 +370,9 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
             raise DataError(f"{ckpt}: checkpoint was made on other training data")
         saved_cfg = dict(meta.get("config", {}))
         mine = cfg.as_dict()
-        differ = sorted(k for k in set(saved_cfg) | set(mine) if k not in ("epochs", "workers") and saved_cfg.get(k) != mine.get(k))
+        free = ("epochs", "workers")  # may change between the interrupted run and its resumption
+        differ = sorted(k for k in set(saved_cfg) | set(mine)
+                        if k not in free and saved_cfg.get(k) != mine.get(k))
         if differ:
             raise DataError(f"{ckpt}: checkpoint was made with other settings ({', '.join(differ)})")
         if meta.get("spec") != model.spec:
@@ -498,19 +500,23 @@ def load_array_file(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
     try:
         with np.load(p, allow_pickle=False) as npz:
             if "x" not in npz.files or "y" not in npz.files:
-                raise DataError(f"{p}: array file must hold arrays 'x' and 'y'; found {', '.join(npz.files) or 'none'}")
+                found = ", ".join(npz.files) or "none"
+                raise DataError(f"{p}: array file must hold arrays 'x' and 'y'; found {found}")
             x, y = npz["x"], npz["y"]
     except (OSError, ValueError, EOFError):
         raise DataError(f"{p}: not a readable .npz array file") from None
     if x.ndim == 3:
         x = x[:, None]
     if x.ndim != 4 or x.shape[1:] != (1, SIZE, SIZE):
-        raise DataError(f"{p}: images must be of shape (N, {SIZE}, {SIZE}) or (N, 1, {SIZE}, {SIZE}); got {tuple(x.shape)}")
+        raise DataError(f"{p}: images must be of shape (N, {SIZE}, {SIZE}) or (N, 1, {SIZE}, {SIZE}); "
+                        f"got {tuple(x.shape)}")
     if y.shape != (x.shape[0],):
-        raise DataError(f"{p}: labels must be of shape ({x.shape[0]},) to match the images; got {tuple(y.shape)}")
+        raise DataError(f"{p}: labels must be of shape ({x.shape[0]},) to match the images; "
+                        f"got {tuple(y.shape)}")
     if not np.issubdtype(y.dtype, np.integer) or (y.size and (y.min() < 0 or y.max() > 9)):
         raise DataError(f"{p}: labels must be integers 0-9")
-    if not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x)) or (x.size and (x.min() < 0 or x.max() > 1)):
+    if (not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x))
+            or (x.size and (x.min() < 0 or x.max() > 1))):
         raise DataError(f"{p}: image values must be finite numbers in [0, 1]")
     if len(y) == 0:
         raise DataError(f"{p}: array file holds no images")

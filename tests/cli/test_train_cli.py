@@ -155,3 +155,14 @@ def test_ctrl_c_saves_best_then_resume_finishes(tmp_path, arrays, monkeypatch):
     header = load_model(out)[1]
     assert header["training"]["epochs_run"] == 4 and header["training"]["interrupted"] is False
     assert not ckpt.exists()
+
+
+def test_train_without_validation_split(tmp_path, arrays):
+    out = tmp_path / "m.npz"
+    args = ["train", "--dataset", f"npz:{arrays}", "--out", str(out)] + FAST[:-3] + ["--val-fraction", "0", "-q"]
+    res = runner.invoke(app, args)
+    assert res.exit_code == 0, res.output
+    _, header = load_model(out)
+    assert header["temperature"] == 1.0 and header["metrics"]["validation"]["accuracy"] is None
+    res = runner.invoke(app, ["info", str(out), "--json"])
+    assert json.loads(res.stdout)["sha256"] == header["sha256"]
