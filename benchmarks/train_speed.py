@@ -1,8 +1,8 @@
 """Training and inference speed of the pure-numpy network ("lenet5" on 28x28 inputs).
 
 Prints images per second for training (batch 32, 64, 128; forward, loss, backward and an SGD
-momentum step; one process on one core, and two processes via ``DataParallel``), inference
-(batch 256, one process on one core) and single-image latency; FLOPs per image and the share of
+momentum step) and inference (batch 256), each with one process on one core and with two
+processes via ``DataParallel`` (the better is the headline figure), and single-image latency; FLOPs per image and the share of
 the machine's measured float32 matmul peak. When PyTorch is importable, the same architecture,
 batch and thread count in PyTorch (``torch.set_num_threads``), and the ratio numpy / PyTorch.
 
@@ -159,10 +159,14 @@ def numpy_entries(threads: int, stack: contextlib.ExitStack) -> tuple[dict, dict
     x = rng.random((INFER_BATCH, 1, 28, 28), dtype=np.float32)
     x1 = x[:1].copy()
 
-    # inference runs in this one process (the model pins BLAS to one thread): one core
+    # one process (the model pins BLAS to one thread): one core
     def infer():
         model.predict_proba(x, batch_size=INFER_BATCH)
-    entries[f"infer_b{INFER_BATCH}"] = (infer, INFER_BATCH, None)
+    entries[f"infer_1core_b{INFER_BATCH}"] = (infer, INFER_BATCH, None)
+    if threads >= 2:
+        dpi = stack.enter_context(DataParallel(model))
+        entries[f"infer_2proc_b{INFER_BATCH}"] = (
+            lambda: dpi.predict_proba(x, batch_size=INFER_BATCH), INFER_BATCH, None)
     extra[f"infer_b{INFER_BATCH}_per_cpu_second"] = best_rate(infer, INFER_BATCH, 1.0,
                                                                clock=time.process_time)
     extra["latency_ms"] = median_ms(lambda: model.predict_proba(x1))
@@ -227,6 +231,8 @@ def bench(threads: int, seconds: float) -> tuple[dict, dict | None]:
     res_np.update(np_extra)
     for b in TRAIN_BATCHES:
         res_np[f"train_b{b}"] = max(res_np[f"train_1core_b{b}"], res_np.get(f"train_2proc_b{b}", 0.0))
+    res_np[f"infer_b{INFER_BATCH}"] = max(res_np[f"infer_1core_b{INFER_BATCH}"],
+                                          res_np.get(f"infer_2proc_b{INFER_BATCH}", 0.0))
     res_t = None
     if t is not None:
         res_t = {k: v for (side, k), v in best.items() if side == "pytorch"}
@@ -266,14 +272,15 @@ def main(argv=None) -> int:
         r = "" if not t else f"{res_np[k] / t:8.2f}" if k != "latency_ms" else f"{t / res_np[k]:8.2f}"
         unit = "ms" if k == "latency_ms" else "img/s"
         print(f"{k + ' (' + unit + ')':24}{res_np[k]:12.1f}{(t if t else float('nan')):12.1f}{r}")
-    for b in TRAIN_BATCHES:
-        if f"train_2proc_b{b}" in res_np:
-            print(f"  numpy train_b{b}: 1 process on 1 core {res_np[f'train_1core_b{b}']:.0f}, "
-                  f"2 processes {res_np[f'train_2proc_b{b}']:.0f} img/s")
+    for k in [f"train_b{b}" for b in TRAIN_BATCHES] + [f"infer_b{INFER_BATCH}"]:
+        one, two = k.replace("_b", "_1core_b"), k.replace("_b", "_2proc_b")
+        if two in res_np:
+            print(f"  numpy {k}: 1 process on 1 core {res_np[one]:.0f}, "
+                  f"2 processes {res_np[two]:.0f} img/s")
     if res_t and "train_b64_1thread" in res_t:
         pairs = [(f"train_b{b}", res_np[f"train_1core_b{b}"], res_t[f"train_b{b}_1thread"])
                  for b in (64, 128)]
-        pairs.append((f"infer_b{INFER_BATCH}", res_np[f"infer_b{INFER_BATCH}"],
+        pairs.append((f"infer_b{INFER_BATCH}", res_np[f"infer_1core_b{INFER_BATCH}"],
                       res_t[f"infer_b{INFER_BATCH}_1thread"]))
         print("one core each (numpy 1 process, PyTorch 1 thread): "
               + ", ".join(f"{k} {a:.0f} vs {b:.0f}" for k, a, b in pairs))

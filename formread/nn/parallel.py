@@ -1,4 +1,4 @@
-"""Two-process data-parallel gradients: both CPU cores on one training batch.
+"""Two-process data parallelism: both CPU cores on one training (or inference) batch.
 
 Small convolutions keep a single BLAS thread busy but scale poorly across threads, so instead the
 batch is split in two: this process computes the gradient of its half while one worker process
@@ -18,6 +18,8 @@ Usage::
             loss, correct = dp.grad_step(xb, yb)
             optimizer.step()
 
+``predict_proba`` splits inference batches the same way (logits come back through shared memory).
+
 Dropout masks of the worker's half come from the worker's own generator (seeded by ``seed``),
 so a run is reproducible for a given seed but differs from a single-process run.
 """
@@ -36,24 +38,27 @@ import numpy as np
 from threadpoolctl import threadpool_limits
 
 from formread.errors import check_param
+from formread.nn.losses import softmax
 from formread.nn.model import Sequential, build_model
 
 __all__ = ["DataParallel"]
 
 
-def _layout(dtype, shapes, capacity, in_shape):
-    """Byte offsets of (params, grads, x, y) in the shared file, and its size."""
+def _layout(dtype, shapes, capacity, in_shape, classes):
+    """Byte offsets of (params, grads, x, y, logits) in the shared file, and its size."""
     item = np.dtype(dtype).itemsize
     total = sum(int(np.prod(s)) for s in shapes)
     img = int(np.prod(in_shape))
     offs = [0, total * item, 2 * total * item, (2 * total + capacity * img) * item]
-    size = offs[3] + capacity * 8
+    offs.append(offs[3] + capacity * 8)
+    size = offs[4] + capacity * classes * item
     return offs, size
 
 
-def _map(path, dtype, shapes, capacity, in_shape):
-    """Map the shared file: (param views, grad views, x buffer (capacity, *in_shape), y (capacity,))."""
-    offs, size = _layout(dtype, shapes, capacity, in_shape)
+def _map(path, dtype, shapes, capacity, in_shape, classes):
+    """Map the shared file: (param views, grad views, x buffer (capacity, *in_shape),
+    y (capacity,) int64, logits (capacity, classes))."""
+    offs, size = _layout(dtype, shapes, capacity, in_shape, classes)
     # plain ndarray views (not the np.memmap subclass, whose wrapping would slow every operation)
     mm = np.memmap(path, dtype=np.uint8, mode="r+", shape=(size,)).view(np.ndarray)
     total = sum(int(np.prod(s)) for s in shapes)
@@ -67,12 +72,14 @@ def _map(path, dtype, shapes, capacity, in_shape):
             at += k
         return out
     x = mm[offs[2]:offs[3]].view(dtype).reshape((capacity,) + tuple(in_shape))
-    y = mm[offs[3]:size].view(np.int64)
-    return split(offs[0]), split(offs[1]), x, y
+    y = mm[offs[3]:offs[4]].view(np.int64)
+    z = mm[offs[4]:size].view(dtype).reshape(capacity, classes)
+    return split(offs[0]), split(offs[1]), x, y, z
 
 
 def _worker_main() -> None:
-    """Worker process: one JSON set-up line on stdin, then "n smoothing" lines; answers on stdout."""
+    """Worker process: one JSON set-up line on stdin, then command lines ("g n smoothing": gradient
+    of x[:n], y[:n]; "p n": logits of x[:n]); one answer line each on stdout."""
     # Ctrl-C is for the parent: it stops training and then closes our input, which ends this loop.
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     inp, out = sys.stdin, sys.stdout
@@ -82,21 +89,26 @@ def _worker_main() -> None:
     with threadpool_limits(1):
         model = build_model(cfg["spec"], np.random.default_rng(cfg["seed"]), dtype=dtype)
         params = model.parameters()
-        pviews, gviews, xbuf, ybuf = _map(cfg["path"], dtype, shapes, cfg["capacity"], cfg["in_shape"])
+        pviews, gviews, xbuf, ybuf, zbuf = _map(cfg["path"], dtype, shapes, cfg["capacity"],
+                                                cfg["in_shape"], cfg["classes"])
         for p, v in zip(params, pviews):
             p.value = v  # weights are read from the shared file on every pass
         out.write("ready\n")
         out.flush()
         for line in inp:
-            if not line.strip():
+            words = line.split()
+            if not words:
                 break
-            n_text, smoothing_text = line.split()
-            n = int(n_text)
             try:
-                loss, correct = model.grad_step(xbuf[:n], ybuf[:n], float(smoothing_text))
-                for g, p in zip(gviews, params):
-                    np.copyto(g, p.grad)
-                out.write(f"ok {loss!r} {correct}\n")
+                n = int(words[1])
+                if words[0] == "p":
+                    zbuf[:n] = model.forward(xbuf[:n])
+                    out.write("ok 0 0\n")
+                else:
+                    loss, correct = model.grad_step(xbuf[:n], ybuf[:n], float(words[2]))
+                    for g, p in zip(gviews, params):
+                        np.copyto(g, p.grad)
+                    out.write(f"ok {loss!r} {correct}\n")
             except Exception as e:  # reported to the parent, which raises it
                 out.write("error " + f"{type(e).__name__}: {e}".replace("\n", " ") + "\n")
             out.flush()
@@ -162,12 +174,14 @@ class DataParallel:
             self._limits = threadpool_limits(1)
         dtype = np.dtype(self.model.dtype)
         shapes = [p.value.shape for p in self.model.parameters()]
-        _, size = _layout(dtype, shapes, capacity, in_shape)
+        classes = self.model.spec_classes()
+        _, size = _layout(dtype, shapes, capacity, in_shape, classes)
         folder = "/dev/shm" if os.path.isdir("/dev/shm") and os.access("/dev/shm", os.W_OK) else None
         fd, path = tempfile.mkstemp(prefix="formread-dp-", suffix=".bin", dir=folder)
         with os.fdopen(fd, "wb") as f:
             f.truncate(size)
-        self._pviews, self._gviews, self._xbuf, self._ybuf = _map(path, dtype, shapes, capacity, in_shape)
+        self._pviews, self._gviews, self._xbuf, self._ybuf, self._zbuf = _map(
+            path, dtype, shapes, capacity, in_shape, classes)
         env = dict(os.environ, OPENBLAS_NUM_THREADS="1", OMP_NUM_THREADS="1", MKL_NUM_THREADS="1")
         # the worker imports this same formread, installed or not
         root = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
@@ -177,7 +191,7 @@ class DataParallel:
         self._finalizer = weakref.finalize(self, _shutdown, proc, path)
         cfg = {"path": path, "dtype": dtype.str, "shapes": [list(s) for s in shapes],
                "spec": self.model.spec, "seed": self.seed, "capacity": capacity,
-               "in_shape": list(in_shape)}
+               "in_shape": list(in_shape), "classes": classes}
         proc.stdin.write(json.dumps(cfg) + "\n")
         proc.stdin.flush()
         ready = proc.stdout.readline().strip() == "ready"
@@ -206,36 +220,75 @@ class DataParallel:
             return self.model.grad_step(x, y, smoothing)
         n1 = n // 2
         n2 = n - n1
-        if self._proc is None or n2 > self._capacity or tuple(x.shape[1:]) != self._in_shape:
-            self._start(max(n2, self._capacity), x.shape[1:])
-        for v, p in zip(self._pviews, self.model.parameters()):
-            np.copyto(v, p.value)
-        np.copyto(self._xbuf[:n2], x[n1:], casting="unsafe")
-        self._ybuf[:n2] = y[n1:]
-        try:
-            self._proc.stdin.write(f"{n2} {float(smoothing)!r}\n")
-            self._proc.stdin.flush()
-        except OSError:
-            self.close_worker()
-            raise RuntimeError("data-parallel worker process has stopped") from None
+        self._send(x[n1:], f"g {n2} {float(smoothing)!r}", y[n1:])
         try:
             loss1, c1 = self.model.grad_step(x[:n1], y[:n1], smoothing)
         finally:  # always collect the worker's answer so the next step stays in step
-            try:
-                answer = self._proc.stdout.readline().split(" ", 2)
-            except BaseException:  # e.g. interrupted while waiting: the worker is out of step
-                self.close_worker()
-                raise
-        if answer[0] != "ok":
-            self.close_worker()
-            raise RuntimeError("data-parallel worker failed: " + (" ".join(answer[1:]).strip() or "stopped"))
-        loss2, c2 = float(answer[1]), int(answer[2])
+            loss2, c2 = self._receive()
         w1, w2 = n1 / n, n2 / n
         for p, g in zip(self.model.parameters(), self._gviews):
             p.grad *= p.grad.dtype.type(w1)
             p.grad += p.grad.dtype.type(w2) * g
-        return w1 * loss1 + w2 * loss2, c1 + c2
+        return w1 * loss1 + w2 * loss2, c2 + c1
 
+    def predict_proba(self, x: np.ndarray, batch_size: int = 256, temperature: float = 1.0
+                      ) -> np.ndarray:
+        """Like ``Sequential.predict_proba``, each batch split over the two processes.
+
+        x : (N, C, H, W) float -> (N, classes) float32 softmax(logits / temperature).
+        """
+        check_param(batch_size >= 1, "batch_size", "a positive integer", batch_size)
+        check_param(temperature > 0, "temperature", "a positive number", temperature)
+        x = np.asarray(x)
+        outs = []
+        for start in range(0, len(x), batch_size):
+            xb = x[start:start + batch_size]
+            n = len(xb)
+            if n < 2:
+                z = self.model.forward(xb)
+            else:
+                n1 = n // 2
+                n2 = n - n1
+                self._send(xb[n1:], f"p {n2}")
+                try:
+                    z1 = self.model.forward(xb[:n1])
+                finally:
+                    self._receive()
+                z = np.concatenate([z1, self._zbuf[:n2]], axis=0)
+            outs.append(softmax(z / z.dtype.type(temperature), axis=1).astype(np.float32))
+        if not outs:
+            return np.zeros((0, self.model.spec_classes()), dtype=np.float32)
+        return np.concatenate(outs, axis=0)
+
+    def _send(self, xpart: np.ndarray, command: str, ypart: np.ndarray | None = None) -> None:
+        """Put the worker's share of the batch (and the weights) in shared memory, then send the
+        command line: the worker reads the shared arrays only after the line arrives."""
+        n2 = len(xpart)
+        if self._proc is None or n2 > self._capacity or tuple(xpart.shape[1:]) != self._in_shape:
+            self._start(max(n2, self._capacity), xpart.shape[1:])
+        for v, p in zip(self._pviews, self.model.parameters()):
+            np.copyto(v, p.value)
+        np.copyto(self._xbuf[:n2], xpart, casting="unsafe")
+        if ypart is not None:
+            self._ybuf[:n2] = ypart
+        try:
+            self._proc.stdin.write(command + "\n")
+            self._proc.stdin.flush()
+        except OSError:
+            self.close_worker()
+            raise RuntimeError("data-parallel worker process has stopped") from None
+
+    def _receive(self) -> tuple[float, int]:
+        """The worker's answer to the last command: (loss, correct)."""
+        try:
+            answer = self._proc.stdout.readline().split(" ", 2)
+        except BaseException:  # e.g. interrupted while waiting: the worker is out of step
+            self.close_worker()
+            raise
+        if answer[0] != "ok":
+            self.close_worker()
+            raise RuntimeError("data-parallel worker failed: " + (" ".join(answer[1:]).strip() or "stopped"))
+        return float(answer[1]), int(answer[2])
 
 if __name__ == "__main__":
     _worker_main()

@@ -48,3 +48,17 @@ def test_parallel_bad_labels_raise_and_worker_stays_usable():
         assert np.isfinite(loss)
         proc = dp._proc
     assert proc.returncode == 0
+
+
+def test_parallel_predict_proba_matches_single_process():
+    model = build_model("lenet5", np.random.default_rng(0))
+    x = np.random.default_rng(2).random((45, 1, 28, 28), dtype=np.float32)
+    expect = model.predict_proba(x, batch_size=16, temperature=1.5)
+    with DataParallel(model) as dp:
+        got = dp.predict_proba(x, batch_size=16, temperature=1.5)  # batches of 16, 16 and 13
+        assert got.dtype == np.float32 and got.shape == (45, 10)
+        np.testing.assert_allclose(got, expect, rtol=1e-5, atol=1e-7)
+        assert dp.predict_proba(x[:1]).shape == (1, 10) and dp.predict_proba(x[:0]).shape == (0, 10)
+        # gradient steps still work after predictions (same worker)
+        loss, _ = dp.grad_step(x[:20], np.arange(20) % 10)
+        assert loss == pytest.approx(model.grad_step(x[:20], np.arange(20) % 10)[0], rel=1e-5)
