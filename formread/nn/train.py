@@ -535,6 +535,8 @@ def load_named(name: str, part: str = "train"):
     if name.startswith("npz:"):
         x, y = load_array_file(name.split(":", 1)[1])
         return Dataset(x, y, name)
+    if name not in ("digits", "mnist", "default") and not name.startswith("samples:"):
+        raise DataError(f"unknown dataset {name!r}: use default, mnist, digits, samples:DIR or npz:FILE")
     return load_dataset(name, part)
 
 
