@@ -2,9 +2,10 @@
 
 Prints images per second for training (batch 32, 64, 128; forward, loss, backward and an SGD
 momentum step) and inference (batch 256), each with one process on one core and with two
-processes via ``DataParallel`` (the better is the headline figure), and single-image latency; FLOPs per image and the share of
-the machine's measured float32 matmul peak. When PyTorch is importable, the same architecture,
-batch and thread count in PyTorch (``torch.set_num_threads``), and the ratio numpy / PyTorch.
+processes via ``DataParallel`` (the better is the headline figure), and single-image latency;
+FLOPs per image and the share of the machine's measured float32 matmul peak. When PyTorch is
+importable, the same architecture, batch and thread count in PyTorch (``torch.set_num_threads``;
+also one thread, for a per-core comparison), and the ratio numpy / PyTorch.
 
 Each figure is the best of several short timing windows, and the windows of all figures (numpy
 and PyTorch) are taken in turns, so that other work on a shared machine disturbs them alike.
