@@ -10,7 +10,7 @@ from typing import List, Optional
 
 import typer
 
-from .common import EXIT_PAGES_FAILED, ProgressBar, edge
+from .common import EXIT_PAGES_FAILED, ProgressBar, edge, fail
 
 
 def register(app: typer.Typer) -> None:
@@ -118,6 +118,9 @@ def tune_cmd(
 
     result = tune_ledger(outdir, truth, target=target)
     if write_layout is not None:
+        if not result["target_met"]:
+            fail(f"{write_layout}: left unchanged: no threshold keeps the error among accepted fields within "
+                 f"{_pct(target)} on these {result['fields']} fields")
         store_threshold(write_layout, result["threshold"])
         result["layout_written"] = str(write_layout)
     if as_json:

@@ -149,20 +149,38 @@ def test_score_json_text_curve_and_missing_truth_pages(setup, tmp_path):
     assert readings(setup["out"]) == before
 
 
+def _truth_from_ledger(out, path: Path, *, wrong: bool) -> Path:
+    """Truth equal to the ledger's readings (every field right), or every digit shifted (every field wrong)."""
+    recs: dict = {}
+    for (name, page), fields in readings(out).items():
+        if name.endswith(".png"):
+            recs[name] = {k: ("".join(str((int(c) + wrong) % 10) for c in v[0]) if v[0] else "1" * wrong)
+                          for k, v in fields.items()}
+    path.write_text("".join(json.dumps({"source": n, "page_number": 1, "fields": f}) + "\n"
+                            for n, f in recs.items()))
+    return path
+
+
 def test_tune_prints_figures_and_stores_the_threshold_keeping_comments(setup, tmp_path):
-    truth = _truth(tmp_path)
+    truth = _truth_from_ledger(setup["out"], tmp_path / "right.jsonl", wrong=False)
     layout = tmp_path / "layout.toml"
     layout.write_text(demo_layout().read_text())
-    res = runner.invoke(app, ["tune", str(setup["out"]), "--truth", str(truth), "--target", "0.5",
-                              "--write-layout", str(layout)])
+    res = runner.invoke(app, ["tune", str(setup["out"]), "--truth", str(truth), "--write-layout", str(layout)])
     assert res.exit_code == 0, res.output
     for word in ("threshold", "review rate", "error among accepted", "upper bound"):
         assert word in res.stdout
-    res = runner.invoke(app, ["tune", str(setup["out"]), "--truth", str(truth), "--target", "0.5", "--json"])
+    res = runner.invoke(app, ["tune", str(setup["out"]), "--truth", str(truth), "--json"])
     t = json.loads(res.stdout)
+    assert t["target_met"] and t["wrong_accepted"] == 0
     assert load_layout(layout).threshold == pytest.approx(min(1.0, t["threshold"]), abs=1e-6)
     kept = [line for line in demo_layout().read_text().splitlines() if line.startswith("#")]
     assert kept and all(line in layout.read_text() for line in kept)
+    # a target no threshold meets (every field wrong) leaves the layout alone
+    before = layout.read_text()
+    wrong = _truth_from_ledger(setup["out"], tmp_path / "wrong.jsonl", wrong=True)
+    res = runner.invoke(app, ["tune", str(setup["out"]), "--truth", str(wrong), "--write-layout", str(layout)])
+    _one_line_error(res, "left unchanged")
+    assert layout.read_text() == before
 
 
 def test_tune_from_the_clerks_reviewed_fields(setup, tmp_path):
