@@ -65,17 +65,17 @@ def test_demo_without_its_forms_is_a_one_line_error(tmp_path, monkeypatch):
 
 def test_demo_make_writes_a_fresh_set(tmp_path):
     out = tmp_path / "fresh"
-    res = runner.invoke(app, ["demo", "make", "--count", "2", "--seed", "11", str(out), "-q"])
+    res = runner.invoke(app, ["demo", "make", "--count", "1", "--seed", "11", str(out), "-q"])
     assert res.exit_code == 0, res.output
     truth = (out / "truth.jsonl").read_text().splitlines()
-    assert len(truth) == 2 and (out / "layout.toml").is_file()
+    assert len(truth) == 1 and (out / "layout.toml").is_file()
     for rec in map(json.loads, truth):
         assert (out / rec["source"]).is_file()
     # a folder holding something else is refused with one line
     other = tmp_path / "other"
     other.mkdir()
     (other / "mine.txt").write_text("keep me")
-    res = runner.invoke(app, ["demo", "make", "--count", "2", str(other), "-q"])
+    res = runner.invoke(app, ["demo", "make", "--count", "1", str(other), "-q"])
     assert res.exit_code == 1 and (other / "mine.txt").read_text() == "keep me"
 
 
