@@ -170,11 +170,13 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
     aug = AugmentConfig(**base_cfg["augment"]) if isinstance(base_cfg.get("augment"), dict) else AugmentConfig()
     cfg = TrainConfig(epochs=epochs, lr=lr, optimizer="adam", schedule="cosine", warmup=0,
                       batch_size=int(base_cfg.get("batch_size", 64)), val_fraction=0.1,
+                      label_smoothing=float(base_cfg.get("label_smoothing", 0.0)),
                       patience=0, augment=aug, seed=seed)
     result = train(new, x_mix, y_mix, cfg, progress=progress)
 
     local_after = _accuracy(new, x_hold, y_hold)
-    original_after = {p: _accuracy(new, d.x, d.y) for p, d in original_tests.items()}
+    figures = {p: evaluate(new, d.x, d.y, result.temperature) for p, d in original_tests.items()}
+    original_after = {p: float(ev["accuracy"]) for p, ev in figures.items()}
 
     gain = local_after - local_before
     drops = {p: original_before[p] - original_after[p] for p in original_tests}
@@ -192,9 +194,10 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
     out_path = Path(out) if out is not None else next_version_path(model_path)
     if out_path.resolve() == model_path.resolve():
         raise DataError(f"{out_path}: the new version must not overwrite the model in use")
-    metrics = dict(header.get("metrics") or {})
-    for p, acc in original_after.items():
-        metrics[p] = dict(metrics.get(p) or {}, accuracy=acc)
+    metrics = {p: {k: ev[k] for k in ("n", "accuracy", "ece_raw", "ece", "nll_raw", "nll")}
+               for p, ev in figures.items()}
+    metrics["validation"] = {"n": int(len(result.val_indices)), "accuracy": result.val_accuracy,
+                             "ece_raw": result.ece_val_raw, "ece": result.ece_val_calibrated}
     metrics["local:held_out"] = {"n": int(len(hold_idx)), "accuracy": local_after, "before": local_before}
     training = dict(header.get("training") or {})
     training["retrained"] = {
