@@ -1,48 +1,67 @@
 """From calibrated digit probabilities to field readings, confidences and decisions.
 
 The network gives, for every digit image of every candidate segmentation of a
-field, calibrated probabilities over 0-9.  This module turns them into one reading
-per field, a confidence, and a decision (``accepted`` or ``review`` with a reason),
-using the field's own rules and the relations between fields.  Pure numpy/python.
+field, probabilities over 0-9 (temperature-scaled on clean held-out digits).  This
+module turns them into one reading per field, a confidence, and a decision
+(``accepted`` or ``review`` with a reason), using the field's own rules and the
+relations between fields.  Pure numpy/python.  The few numbers of the model are a
+:class:`ConfidenceModel`; :data:`CONFIDENCE_MODEL` holds the values fitted on
+development demo sets (see its notes), :data:`PLAIN` switches every addition off.
 
 Probability model
 -----------------
-A field's evidence is a list of candidate segmentations ``c`` with a cost; the
-segmentation prior is ``w_c = softmax(-cost_c / cost_scale)``.  Given ``c``, the
-digits at its non-blank positions are independent with the calibrated
-probabilities ``probs[k]``; blank cells (boxed fields) contribute no digit.  So
-``P(s) = sum_c w_c * prod_k probs_c[k, s_k]`` over the segmentations ``c`` that
-produce string ``s``; over *all* strings of all segmentations this sums to 1.
+1. *Digits.*  Each digit's probabilities get an extra temperature
+   (``p ** (1 / T)``, renormalised; ``temperature_boxed`` / ``temperature_open``):
+   digits cut from scans are misread more often than the model's own calibration
+   on clean digits says (on development cards, digits read at 0.99-0.999 were right
+   only ~91% of the time).
+2. *Segmentations.*  Candidate ``c`` of a field gets the weight
+   ``w_c ~ exp(-cost_c / prior_scale) * prod_k (max_d p_ck(d)) ** digitness``:
+   the segmentation prior (sharpened: costs are only roughly scaled log priors)
+   times how much each piece looks like one clean digit (a fragment or two touching
+   digits rarely gets a sure reading).  Weights sum to 1.
+3. *Strings.*  Given ``c`` the digits at its non-blank positions are independent,
+   so ``P(s) = sum_c w_c * prod_k p_ck(s_k)`` over the candidates producing string
+   ``s``; over all strings of all candidates this sums to 1.  For every candidate its
+   ``max_strings`` most probable strings are enumerated exactly (a beam trying the
+   top ``top_per_position`` digits per position).
+4. *Rules as evidence.*  Written values rarely break the field's rules, so a string
+   that breaks one keeps only ``rule_slack`` of its mass, and the mass of strings
+   never enumerated (rules unknown) counts ``tail_weight``.
 
-Field stage: for every candidate, its ``max_strings`` most probable strings are
-enumerated exactly (a beam over positions, trying the top ``top_per_position``
-digits of each position).  The reading is the most probable enumerated string
-that satisfies the field's own rules (length, range, date, check digit); when none
-does, the most probable string is kept and the field goes to review.
+Field stage: the reading is the most probable enumerated string that keeps the
+field's own rules (length, range, date, check digit); when none does, the most
+probable string is kept and the field goes to review.
 
-**Confidence** is ``P(reading) / Z`` where ``Z`` is the total probability of every
-digit string of every candidate segmentation, i.e. of the strings considered that
-satisfy the rules, those that break them, *and* the tail that was not enumerated.
-``Z`` is 1 by construction, so the confidence is simply ``P(reading)``: when the
-likely readings break the rules, their mass stays in the denominator and the
-confidence is low.  ``alternatives`` gives the enumerated strings (passing or not)
-with the same probabilities, best first.
+**Confidence** (field stage) is the posterior probability of the reading under this
+model: ``P(reading) / (P(keep rules) + rule_slack * P(break rules) + tail_weight *
+P(not enumerated))`` (the reading's own mass counts ``rule_slack`` when it breaks a
+rule).  With :data:`PLAIN` the denominator is 1 and the confidence is ``P(reading)``.
+``alternatives`` gives the enumerated strings (passing or not) with their
+unweighted probabilities ``P(s)``, best first.
 
-Relation stage: fields linked by relations (only relations whose fields all have
-a non-empty reading) are decided jointly.  For each connected group, each field
-offers its top ``relation_top`` rule-satisfying strings (fewer when the group is
-large, so that at most ``max_combinations`` combinations are tried; a field with
-none offers its rule-breaking reading).  The combination with the highest product
-of probabilities that satisfies every relation of the group is chosen.  A field's
-confidence becomes the total probability of the satisfying combinations in which
-it has its chosen string, normalised over *all* combinations of all strings of the
-group's fields (again total 1; combinations using strings outside the top ones
-count as not satisfying).  So a relation can fix a reading, and it can only lower
-a confidence, never raise it.  This is consistent with the field stage: mass that
-breaks a rule stays in the denominator.  (Normalising over the satisfying
-combinations only, the probability *given* that the relations hold, was tried and
-dropped: over the few strings considered it gave confidence near 1 to wrong
-readings whenever the true string lay outside them.)
+Relation stage: fields linked by relations (only relations whose fields all have a
+non-empty reading) are decided jointly, as checks between independently read
+fields.  For each connected group, each field offers its top ``relation_top``
+rule-keeping strings (fewer when the group is large, so that at most
+``max_combinations`` combinations are tried; a field with none offers its
+rule-breaking reading).  A combination's weight is the product of its strings'
+weighted masses; the one with the highest weight that satisfies every relation of
+the group is chosen.  A field's confidence becomes the weight of the satisfying
+combinations in which it has its chosen string, over the weight of *all*
+combinations: satisfying ones fully, examined ones that break a relation times
+``relation_slack`` (a writer's slip), and combinations with a string not examined
+times ``tail_weight``.  So a relation that holds between fields read independently
+is strong evidence that each is right (a misreading rarely keeps an equality), and
+one uncertain field whose alternatives break the relation no longer drags down the
+others; a relation that fails for every combination tried sends the group's fields
+to review as ``rule_failed:relation``.  (``relation_slack = tail_weight = 1`` gives
+the joint probability of the readings *and* the relations holding, which lowered
+every related field's confidence to the product of all of them.)
+
+The confidence is what :mod:`formread.read.tune` thresholds: a number in [0, 1]
+that ranks fields by how likely their reading is right, calibrated on development
+demo sets only up to the accuracy of the fitted constants above.
 
 Decision: ``accepted`` when the confidence reaches the threshold (the field's own
 ``threshold``, else the page threshold) and every rule and relation holds and the
@@ -52,6 +71,7 @@ of :data:`REASONS`.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from dataclasses import dataclass, field
@@ -64,7 +84,7 @@ from formread.read.rules import CompiledRules, FieldRules, check_value
 __all__ = [
     "CandidateEvidence", "FieldEvidence", "FieldReading", "decode_page", "decode_field",
     "unregistered_page", "evidence_from_digits", "kbest_strings", "REASONS", "ACCEPTED", "REVIEW",
-    "DEFAULT_THRESHOLD",
+    "DEFAULT_THRESHOLD", "ConfidenceModel", "CONFIDENCE_MODEL", "PLAIN",
 ]
 
 ACCEPTED = "accepted"
@@ -83,6 +103,63 @@ N_ALTERNATIVES = 5
 DEFAULT_THRESHOLD = 0.9
 """Page threshold when neither the caller nor the layout gives one."""
 _FLOOR = 1e-300
+
+
+@dataclass(frozen=True)
+class ConfidenceModel:
+    """The few numbers that turn network outputs into field confidences (see the module docstring).
+
+    Attributes
+    ----------
+    temperature_boxed, temperature_open : float > 0
+        Extra temperature on the digit probabilities of boxed / open fields
+        (``p ** (1 / T)``, renormalised).  The model file's temperature is fitted on
+        clean held-out digits; digits cut from scans are less sure than it says.
+    prior_scale : float > 0
+        Segmentation prior ``exp(-cost / prior_scale)`` (smaller = sharper).
+    digitness : float >= 0
+        Weight of ``sum_k log max_d p_k(d)`` (how much each piece of a split looks
+        like one clean digit) in the weight of an open-field segmentation.
+    rule_slack : float in (0, 1]
+        Prior weight of a string that breaks the field's own rules (a writer's slip),
+        against 1 for a string that keeps them.
+    relation_slack : float in (0, 1]
+        The same for a combination of the group's strings that breaks a relation.
+    tail_weight : float in [0, 1]
+        Weight of the probability mass of strings (or combinations) never examined,
+        whose rules are unknown.
+    """
+
+    temperature_boxed: float = 1.0
+    temperature_open: float = 1.0
+    prior_scale: float = 1.0
+    digitness: float = 0.0
+    rule_slack: float = 1.0
+    relation_slack: float = 1.0
+    tail_weight: float = 1.0
+
+    def __post_init__(self):
+        for k in ("temperature_boxed", "temperature_open", "prior_scale"):
+            check_param(getattr(self, k) > 0, k, "positive", getattr(self, k))
+        check_param(self.digitness >= 0, "digitness", ">= 0", self.digitness)
+        check_param(0 < self.rule_slack <= 1, "rule_slack", "in (0, 1]", self.rule_slack)
+        check_param(0 < self.relation_slack <= 1, "relation_slack", "in (0, 1]", self.relation_slack)
+        check_param(0 <= self.tail_weight <= 1, "tail_weight", "in [0, 1]", self.tail_weight)
+
+
+PLAIN = ConfidenceModel()
+"""No extra temperature, prior as given, rules as filters only: confidence = P(reading)."""
+CONFIDENCE_MODEL = ConfidenceModel(temperature_boxed=1.9, temperature_open=1.7, prior_scale=0.25, digitness=3.0,
+                                   rule_slack=0.003, relation_slack=0.003, tail_weight=0.03)
+"""The model :func:`decode_page` uses by default.
+
+Fitted with the shipped model (``models/default.npz``) on development demo sets only
+(``formread demo make --count 60 --seed 101`` and ``--count 120 --seed 102``; never on
+the shipped set, seed 7, nor the check set, seed 11) by coordinate search over a grid
+of each value, minimising the review rate at the threshold ``formread tune`` chooses
+for 0.5% error among accepted fields plus the error at 15% review
+(``benchmarks/decision_quality.py`` measures both).  Refit after retraining the network
+or when local scans differ much from the demo's."""
 
 
 @dataclass
@@ -245,9 +322,11 @@ class _State:
     interior_blank: list[bool]
     doubtful: bool
     rules: FieldRules
+    denom: float = 1.0               # weighted mass of every string (see _weighted_total)
 
 
-def _normalise(name: str, i: int, cand: CandidateEvidence) -> tuple[np.ndarray, list[int], bool]:
+def _normalise(name: str, i: int, cand: CandidateEvidence, temperature: float = 1.0
+               ) -> tuple[np.ndarray, list[int], bool]:
     p = np.asarray(cand.probs, dtype=np.float64)
     if p.ndim == 1 and p.size == 0:
         p = p.reshape(0, 10)
@@ -255,6 +334,10 @@ def _normalise(name: str, i: int, cand: CandidateEvidence) -> tuple[np.ndarray, 
                 f"{name}.candidates[{i}].probs", "a finite non-negative (K, 10) array", p.shape)
     s = p.sum(axis=1, keepdims=True)
     p = np.where(s > 0, p / np.where(s > 0, s, 1.0), 0.1)
+    if temperature != 1.0 and p.size:
+        lp = np.log(np.maximum(p, _FLOOR)) / temperature
+        p = np.exp(lp - lp.max(axis=1, keepdims=True))
+        p /= p.sum(axis=1, keepdims=True)
     k = p.shape[0]
     if cand.blank is None:
         pos = list(range(k))
@@ -281,20 +364,34 @@ def _first_failure(rules: dict[str, bool]) -> str | None:
     return None
 
 
-def _field_state(ev: FieldEvidence | None, fr: FieldRules, *, top: int, limit: int, cost_scale: float) -> _State:
+def _weight(opt: _Option, model: ConfidenceModel) -> float:
+    """Prior weight of a string: 1 when it keeps the field's rules, ``rule_slack`` when it breaks one."""
+    return 1.0 if model.rule_slack == 1.0 or opt.ok else model.rule_slack
+
+
+_CHECKED_TAIL = 1e-7
+"""Enumerated strings beyond this remaining mass are not checked against the rules (counted as tail)."""
+
+
+def _field_state(ev: FieldEvidence | None, fr: FieldRules, *, top: int, limit: int,
+                 model: ConfidenceModel) -> _State:
     name = fr.name
     if ev is None or not ev.candidates:
         reading = FieldReading(name, None, 0.0, detail=(ev.reason if ev else "no evidence for this field"))
         return _State(reading, [], None, [], [], [], True, fr)
+    temp = model.temperature_open if fr.kind == "open" else model.temperature_boxed
     probs, positions, interior = [], [], []
     for i, cand in enumerate(ev.candidates):
-        p, pos, inner = _normalise(name, i, cand)
+        p, pos, inner = _normalise(name, i, cand, temp)
         probs.append(p)
         positions.append(pos)
         interior.append(inner)
     costs = np.array([float(c.cost) for c in ev.candidates], dtype=np.float64)
     check_param(bool(np.isfinite(costs).all()), f"{name}.candidates[].cost", "finite numbers", costs.tolist())
-    z = -costs / cost_scale
+    z = -costs / model.prior_scale
+    if model.digitness:
+        z = z + model.digitness * np.array([float(np.log(np.maximum(p[pos].max(axis=1), _FLOOR)).sum())
+                                            if pos else 0.0 for p, pos in zip(probs, positions)])
     w = np.exp(z - z.max())
     w /= w.sum()
     mass: dict[str, float] = {}
@@ -315,8 +412,25 @@ def _field_state(ev: FieldEvidence | None, fr: FieldRules, *, top: int, limit: i
     reading = FieldReading(name, chosen.string, 0.0, detail=ev.reason,
                            alternatives=[(o.string, o.prob) for o in options[:N_ALTERNATIVES]])
     st = _State(reading, options, None, probs, positions, interior, bool(ev.doubtful), fr)
-    _set_choice(st, chosen, chosen.prob)
+    st.denom = _weighted_total(options, model)
+    _set_choice(st, chosen, _weight(chosen, model) * chosen.prob / st.denom)
     return st
+
+
+def _weighted_total(options: list[_Option], model: ConfidenceModel) -> float:
+    """``P(keeps rules) + rule_slack * P(breaks them) + tail_weight * P(not examined)``; 1 for PLAIN."""
+    total = 1.0
+    if model.rule_slack == 1.0 and model.tail_weight == 1.0:
+        return total
+    left = sum(o.prob for o in options)
+    seen = 0.0
+    for o in options:
+        if left <= _CHECKED_TAIL:
+            break
+        seen += _weight(o, model) * o.prob
+        left -= o.prob
+    tail = max(0.0, 1.0 - sum(o.prob for o in options)) + max(0.0, left)
+    return max(seen + model.tail_weight * tail, _FLOOR)
 
 
 def _set_choice(st: _State, opt: _Option, confidence: float) -> None:
@@ -357,7 +471,7 @@ def _components(relations, names: set[str]) -> list[tuple[list[str], list]]:
 
 
 def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, relation_top: int,
-                     max_combinations: int) -> None:
+                     max_combinations: int, model: ConfidenceModel) -> None:
     applicable = [rel for rel in compiled.relations
                   if all(f in states and states[f].reading.reading for f in rel.fields)]
     names = {f for rel in applicable for f in rel.fields}
@@ -368,22 +482,30 @@ def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, rela
             st = states[f]
             ok = list(itertools.islice((o for o in st.options if o.string and o.ok), n))
             offers.append(ok or [st.chosen])
-        best, best_p = None, -1.0
+        weighted = [[_weight(o, model) * o.prob for o in offer] for offer in offers]
+        best, best_p, sat = None, -1.0, 0.0
         sat_mass = [dict() for _ in fields]
-        for combo in itertools.product(*offers):
+        for idx in itertools.product(*[range(len(o)) for o in offers]):
+            combo = [offers[i][j] for i, j in enumerate(idx)]
             values = {f: int(o.string) for f, o in zip(fields, combo)}
             if not all(rel.holds(values) for rel in rels):
                 continue
-            pj = math.prod(o.prob for o in combo)
+            pj = math.prod(weighted[i][j] for i, j in enumerate(idx))
+            sat += pj
             for i, o in enumerate(combo):
                 sat_mass[i][o.string] = sat_mass[i].get(o.string, 0.0) + pj
             if pj > best_p:
                 best, best_p = combo, pj
         if best is not None:
+            # every combination's weighted mass: satisfying ones count fully, examined ones that break
+            # a relation count relation_slack, combinations with an unexamined string count tail_weight
+            offered = math.prod(sum(ws) for ws in weighted)
+            total = math.prod(states[f].denom for f in fields)
+            denom = sat + model.relation_slack * max(0.0, offered - sat) + model.tail_weight * max(0.0, total - offered)
             for i, (f, o) in enumerate(zip(fields, best)):
                 st = states[f]
                 st.reading.rules["relation"] = True
-                _set_choice(st, o, sat_mass[i][o.string])
+                _set_choice(st, o, sat_mass[i][o.string] / max(denom, _FLOOR))
         else:
             current = {f: int(states[f].chosen.string) for f in fields
                        if states[f].chosen.string.isascii() and states[f].chosen.string.isdigit()}
@@ -415,11 +537,20 @@ def _decide(st: _State, threshold: float) -> None:
     r.decision = ACCEPTED if reason is None else REVIEW
 
 
+def _model(model: ConfidenceModel | None, cost_scale: float | None) -> ConfidenceModel:
+    m = CONFIDENCE_MODEL if model is None else model
+    check_param(isinstance(m, ConfidenceModel), "model", "a ConfidenceModel", type(m).__name__)
+    if cost_scale is not None:
+        check_param(cost_scale > 0, "cost_scale", "positive", cost_scale)
+        m = dataclasses.replace(m, prior_scale=float(cost_scale))
+    return m
+
+
 def decode_field(evidence: FieldEvidence | None, rules: FieldRules, *, threshold: float,
                  top_per_position: int = TOP_PER_POSITION, max_strings: int = MAX_STRINGS,
-                 cost_scale: float = 1.0) -> FieldReading:
+                 cost_scale: float | None = None, model: ConfidenceModel | None = None) -> FieldReading:
     """Decode one field on its own (its own rules only, no relations); see :func:`decode_page`."""
-    st = _field_state(evidence, rules, top=top_per_position, limit=max_strings, cost_scale=cost_scale)
+    st = _field_state(evidence, rules, top=top_per_position, limit=max_strings, model=_model(model, cost_scale))
     _decide(st, threshold)
     return st.reading
 
@@ -427,8 +558,8 @@ def decode_field(evidence: FieldEvidence | None, rules: FieldRules, *, threshold
 def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRules, layout, *,
                 threshold: float | None = None, top_per_position: int = TOP_PER_POSITION,
                 max_strings: int = MAX_STRINGS, relation_top: int = RELATION_TOP,
-                max_combinations: int = MAX_COMBINATIONS, cost_scale: float = 1.0
-                ) -> dict[str, FieldReading]:
+                max_combinations: int = MAX_COMBINATIONS, cost_scale: float | None = None,
+                model: ConfidenceModel | None = None) -> dict[str, FieldReading]:
     """Read every field of a registered page.
 
     Parameters
@@ -443,8 +574,12 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
         when ``threshold`` is None (and :data:`DEFAULT_THRESHOLD` when both are).
     threshold : float in [0, 1] or None
         Page threshold (a field's own ``threshold`` takes precedence).
-    top_per_position, max_strings, relation_top, max_combinations, cost_scale
-        Search sizes and the scale of segmentation costs (see the module docstring).
+    top_per_position, max_strings, relation_top, max_combinations
+        Search sizes (see the module docstring).
+    cost_scale : float or None
+        Overrides the model's ``prior_scale`` when given.
+    model : ConfidenceModel or None
+        Default :data:`CONFIDENCE_MODEL`; :data:`PLAIN` gives confidence = P(reading).
 
     Returns
     -------
@@ -456,12 +591,13 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
     check_param(top_per_position >= 1 and max_strings >= 1 and relation_top >= 1 and max_combinations >= 1,
                 "search sizes", "positive integers",
                 (top_per_position, max_strings, relation_top, max_combinations))
-    check_param(cost_scale > 0, "cost_scale", "positive", cost_scale)
+    m = _model(model, cost_scale)
     states = {}
     for f in layout.fields:
         states[f.name] = _field_state(evidence.get(f.name), compiled_rules.fields[f.name], top=top_per_position,
-                                      limit=max_strings, cost_scale=cost_scale)
-    _apply_relations(states, compiled_rules, relation_top=relation_top, max_combinations=max_combinations)
+                                      limit=max_strings, model=m)
+    _apply_relations(states, compiled_rules, relation_top=relation_top, max_combinations=max_combinations,
+                     model=m)
     for st in states.values():
         _decide(st, float(thr))
     return {name: st.reading for name, st in states.items()}

@@ -12,8 +12,9 @@ from hypothesis import strategies as st
 
 from formread.errors import ParameterError
 from formread.read.checkdigits import luhn_compute, luhn_valid
-from formread.read.decode import (CandidateEvidence, FieldEvidence, decode_field, decode_page,
-                                  evidence_from_digits, kbest_strings, unregistered_page)
+from formread.read.decode import (CONFIDENCE_MODEL, PLAIN, CandidateEvidence, ConfidenceModel, FieldEvidence,
+                                  decode_field, decode_page, evidence_from_digits, kbest_strings,
+                                  unregistered_page)
 from formread.read.rules import compile_rules
 
 
@@ -56,6 +57,15 @@ def ev(name, *cands, doubtful=False):
                          doubtful=doubtful)
 
 
+def plain_page(*args, **kw):
+    """The plain model: confidence = P(reading), rules and relations as filters (exact arithmetic)."""
+    return decode_page(*args, model=PLAIN, **kw)
+
+
+def plain_field(*args, **kw):
+    return decode_field(*args, model=PLAIN, **kw)
+
+
 def test_kbest_strings_match_brute_force():
     rng = np.random.default_rng(0)
     for k in (1, 2, 4):
@@ -78,7 +88,7 @@ def test_luhn_rule_picks_the_second_best_string():
     assert luhn_valid(true) and not luhn_valid(true[:-1] + wrong)
     probs = table(*true[:-1], {int(wrong): 0.6, int(true[-1]): 0.35})
     lay = FakeLayout([FakeField("card", cells=10, rules={"check": "luhn"})])
-    out = decode_page({"card": ev("card", probs)}, compile_rules(lay), lay)
+    out = plain_page({"card": ev("card", probs)}, compile_rules(lay), lay)
     r = out["card"]
     assert r.alternatives[0][0] == true[:-1] + wrong          # the network's favourite breaks Luhn
     assert r.reading == true
@@ -96,7 +106,7 @@ def test_confidence_is_the_string_probability_over_all_strings():
     # two segmentations: "17" (cost 0) and "7" (cost ln 3) -> priors 0.75 and 0.25
     a = CandidateEvidence(table({1: 0.9}, {7: 0.8}), cost=0.0)
     b = CandidateEvidence(table({7: 0.6}), cost=math.log(3))
-    r = decode_page({"n": ev("n", a, b)}, c, lay, threshold=0.5)["n"]
+    r = plain_page({"n": ev("n", a, b)}, c, lay, threshold=0.5)["n"]
     assert r.reading == "17"
     assert r.confidence == pytest.approx(0.75 * 0.9 * 0.8)
     assert r.decision == "accepted"
@@ -108,20 +118,20 @@ def test_same_string_from_two_segmentations_adds_up():
     lay = FakeLayout([FakeField("n", kind="open", cells=None, max_digits=3)])
     a = CandidateEvidence(table({4: 0.5}, {2: 0.5}), cost=0.0)
     b = CandidateEvidence(table({4: 0.5}, {2: 0.5}), cost=0.0)
-    r = decode_page({"n": ev("n", a, b)}, compile_rules(lay), lay)["n"]
+    r = plain_page({"n": ev("n", a, b)}, compile_rules(lay), lay)["n"]
     assert r.reading == "42" and r.confidence == pytest.approx(0.25)
 
 
 def test_rule_violating_mass_keeps_confidence_low():
     # every string considered is out of range: the best is kept and the field goes to review
     lay = FakeLayout([FakeField("age", cells=2, rules={"range": [96, 99]})])
-    r = decode_page({"age": ev("age", sure("95"))}, compile_rules(lay), lay)["age"]
+    r = plain_page({"age": ev("age", sure("95"))}, compile_rules(lay), lay)["age"]
     assert r.reading == "95" and r.rules == {"range": False}
     assert r.reason == "rule_failed:range" and r.decision == "review"
     lay = FakeLayout([FakeField("age", cells=2, rules={"range": [1, 20]})])
     # the in-range reading "15" exists only far down the list, so its confidence is tiny
     probs = table({9: 0.7, 1: 0.2}, {5: 0.98})
-    r = decode_page({"age": ev("age", probs)}, compile_rules(lay), lay)["age"]
+    r = plain_page({"age": ev("age", probs)}, compile_rules(lay), lay)["age"]
     assert r.reading == "15" and r.confidence == pytest.approx(0.2 * 0.98)
     assert r.reason == "low_confidence"
 
@@ -137,7 +147,7 @@ def test_relation_fixes_a_misread_litres_field():
     evidence = {"previous_reading": ev("previous_reading", sure("100", 0.995)),
                 "current_reading": ev("current_reading", sure("120", 0.995)),
                 "litres_used": ev("litres_used", table({2: 0.99}, {6: 0.6, 0: 0.38}))}
-    out = decode_page(evidence, compile_rules(lay), lay, threshold=0.3)
+    out = plain_page(evidence, compile_rules(lay), lay, threshold=0.3)
     lit = out["litres_used"]
     assert lit.alternatives[0][0] == "26"
     assert lit.reading == "20" and lit.rules == {"relation": True}
@@ -156,7 +166,7 @@ def test_relation_that_cannot_hold_sends_its_fields_to_review():
     evidence = {"previous_reading": ev("previous_reading", sure("100", 0.999)),
                 "current_reading": ev("current_reading", sure("120", 0.999)),
                 "litres_used": ev("litres_used", sure("55", 0.999))}
-    out = decode_page(evidence, compile_rules(lay), lay)
+    out = plain_page(evidence, compile_rules(lay), lay)
     for r in out.values():
         assert r.rules["relation"] is False and r.reason == "rule_failed:relation"
     assert out["litres_used"].reading == "55"
@@ -166,14 +176,14 @@ def test_thresholds_field_overrides_page_and_equality_accepts():
     lay = FakeLayout([FakeField("a", cells=1), FakeField("b", cells=1, threshold=0.95)])
     c = compile_rules(lay)
     evidence = {"a": ev("a", table({3: 0.9})), "b": ev("b", table({3: 0.9}))}
-    out = decode_page(evidence, c, lay, threshold=0.9)
+    out = plain_page(evidence, c, lay, threshold=0.9)
     assert out["a"].decision == "accepted" and out["a"].threshold == 0.9
     assert out["b"].reason == "low_confidence" and out["b"].threshold == 0.95
-    out = decode_page(evidence, c, lay)          # falls back to layout.threshold (0.9)
+    out = plain_page(evidence, c, lay)          # falls back to layout.threshold (0.9)
     assert out["a"].decision == "accepted"
-    assert decode_page(evidence, c, lay, threshold=0.91)["a"].reason == "low_confidence"
+    assert plain_page(evidence, c, lay, threshold=0.91)["a"].reason == "low_confidence"
     with pytest.raises(ParameterError):
-        decode_page(evidence, c, lay, threshold=1.5)
+        plain_page(evidence, c, lay, threshold=1.5)
 
 
 def test_doubtful_segmentation_and_interior_blanks():
@@ -181,7 +191,7 @@ def test_doubtful_segmentation_and_interior_blanks():
     c = compile_rules(lay)
     blank_mid = CandidateEvidence(sure("1234"), blank=np.array([False, True, False, False]))
     evidence = {"a": ev("a", sure("1234"), doubtful=True), "b": ev("b", blank_mid)}
-    out = decode_page(evidence, c, lay, threshold=0.5)
+    out = plain_page(evidence, c, lay, threshold=0.5)
     assert out["a"].reason == "segmentation_doubtful" and out["a"].reading == "1234"
     assert out["b"].reason == "segmentation_doubtful" and out["b"].reading == "134"
     assert out["b"].positions == [0, 2, 3]
@@ -192,7 +202,7 @@ def test_doubtful_segmentation_and_interior_blanks():
 def test_leading_and_trailing_blanks_are_fine():
     lay = FakeLayout([FakeField("a", cells=5, rules={"range": [0, 999]})])
     cand = CandidateEvidence(sure("00420"), blank=np.array([True, True, False, False, True]))
-    r = decode_page({"a": ev("a", cand)}, compile_rules(lay), lay, threshold=0.9)["a"]
+    r = plain_page({"a": ev("a", cand)}, compile_rules(lay), lay, threshold=0.9)["a"]
     assert r.reading == "42" and r.decision == "accepted" and r.positions == [2, 3]
 
 
@@ -205,7 +215,7 @@ def test_empty_fields():
                 # open field: "nothing written" (cost 0) against one faint stroke (cost 1)
                 "open_opt": ev("open_opt", CandidateEvidence(np.zeros((0, 10))),
                                CandidateEvidence(sure("1"), cost=1.0))}
-    out = decode_page(evidence, c, lay, threshold=0.9)
+    out = plain_page(evidence, c, lay, threshold=0.9)
     assert out["opt"].reading == "" and out["opt"].confidence == 1.0 and out["opt"].decision == "accepted"
     assert out["req"].reading == "" and out["req"].reason == "missing"
     assert out["open_opt"].reading == ""
@@ -215,7 +225,7 @@ def test_empty_fields():
 
 def test_empty_optional_field_skips_its_relation():
     lay = FakeLayout([FakeField("a", cells=2), FakeField("b", cells=2, optional=True)], relations=["a >= b"])
-    out = decode_page({"a": ev("a", sure("10", 0.999)), "b": ev("b", CandidateEvidence(sure("99"),
+    out = plain_page({"a": ev("a", sure("10", 0.999)), "b": ev("b", CandidateEvidence(sure("99"),
                       blank=np.ones(2, bool)))}, compile_rules(lay), lay)
     assert "relation" not in out["a"].rules and out["a"].decision == "accepted"
     assert out["b"].reading == "" and out["b"].decision == "accepted"
@@ -223,7 +233,7 @@ def test_empty_optional_field_skips_its_relation():
 
 def test_decode_field_alone_and_records_are_json():
     lay = FakeLayout([FakeField("a", cells=2)])
-    r = decode_field(ev("a", sure("42")), compile_rules(lay).fields["a"], threshold=0.9)
+    r = plain_field(ev("a", sure("42")), compile_rules(lay).fields["a"], threshold=0.9)
     assert r.reading == "42" and r.decision == "accepted"
     rec = json.loads(json.dumps(r.to_record()))
     assert rec["alternatives"][0][0] == "42" and rec["digit_probs"][0][0] == [4, 0.98]
@@ -264,14 +274,14 @@ def test_evidence_from_digits_uses_blank_for_boxed_only():
 def test_bad_probabilities_are_refused():
     lay = FakeLayout([FakeField("a", cells=2)])
     with pytest.raises(ParameterError, match="a.candidates"):
-        decode_page({"a": ev("a", np.ones((2, 9)))}, compile_rules(lay), lay)
+        plain_page({"a": ev("a", np.ones((2, 9)))}, compile_rules(lay), lay)
     with pytest.raises(ParameterError):
-        decode_page({"a": ev("a", np.full((2, 10), np.nan))}, compile_rules(lay), lay)
+        plain_page({"a": ev("a", np.full((2, 10), np.nan))}, compile_rules(lay), lay)
 
 
 def test_no_threshold_anywhere_uses_the_default():
     lay = FakeLayout([FakeField("a", cells=1)], threshold=None)
-    r = decode_page({"a": ev("a", table({3: 0.9}))}, compile_rules(lay), lay)["a"]
+    r = plain_page({"a": ev("a", table({3: 0.9}))}, compile_rules(lay), lay)["a"]
     assert r.threshold == 0.9 and r.decision == "accepted"
     assert unregistered_page(lay)["a"].threshold == 0.9
 
@@ -307,3 +317,122 @@ def test_decisions_are_consistent_on_random_pages(seed, thr):
     for rel in c.relations:      # every relation reported as holding does hold on the final readings
         if all(out[f].rules.get("relation") for f in rel.fields):
             assert rel.holds({f: int(out[f].reading) for f in rel.fields})
+
+
+# ---------------------------------------------------------------- the confidence model
+
+CHECKS = ConfidenceModel(relation_slack=0.01, rule_slack=0.01, tail_weight=0.01)
+"""Relations and rules as evidence, no extra temperature or prior change: hand-checkable."""
+
+
+def test_a_relation_that_holds_keeps_confident_fields_confident():
+    lay = meter_layout()
+    evidence = {"previous_reading": ev("previous_reading", sure("100", 0.999)),
+                "current_reading": ev("current_reading", sure("120", 0.999)),
+                "litres_used": ev("litres_used", table({2: 0.999}, {6: 0.55, 0: 0.44}))}
+    plain = plain_page(evidence, compile_rules(lay), lay, threshold=0.9)
+    out = decode_page(evidence, compile_rules(lay), lay, threshold=0.9, model=CHECKS)
+    # joint probability: the uncertain litres field drags both meter readings down
+    assert plain["previous_reading"].confidence == pytest.approx(0.44 * 0.999 ** 7, rel=0.02)
+    assert plain["previous_reading"].decision == "review"
+    for name, want in (("previous_reading", "100"), ("current_reading", "120"), ("litres_used", "20")):
+        r = out[name]
+        assert r.reading == want and r.rules["relation"] is True
+        # "26" breaks the relation (weight 0.01), so P(20 | relation) = 0.44 / (0.44 + 0.01 * 0.55) about
+        assert r.confidence == pytest.approx(0.44 / (0.44 + 0.01 * 0.55), abs=0.01)
+        assert r.decision == "accepted"
+
+
+def test_a_relation_that_fails_sends_its_fields_to_review_with_any_model():
+    lay = meter_layout()
+    evidence = {"previous_reading": ev("previous_reading", sure("100", 0.999)),
+                "current_reading": ev("current_reading", sure("120", 0.999)),
+                "litres_used": ev("litres_used", sure("55", 0.999))}
+    for model in (CHECKS, CONFIDENCE_MODEL):
+        out = decode_page(evidence, compile_rules(lay), lay, threshold=0.5, model=model)
+        for r in out.values():
+            assert r.rules["relation"] is False and r.reason == "rule_failed:relation" and r.decision == "review"
+
+
+def test_an_uncertain_relation_stays_uncertain():
+    # litres "20" and "26" both read at about one half, and the meters disagree with both equally little:
+    # cur - prev = 20 is possible only when current reads 120 (0.5) instead of 126 (0.5)
+    lay = meter_layout()
+    evidence = {"previous_reading": ev("previous_reading", sure("100", 0.999)),
+                "current_reading": ev("current_reading", table({1: 0.999}, {2: 0.999}, {0: 0.5, 6: 0.49})),
+                "litres_used": ev("litres_used", table({2: 0.999}, {6: 0.5, 0: 0.49}))}
+    out = decode_page(evidence, compile_rules(lay), lay, threshold=0.9, model=CHECKS)
+    assert {out["current_reading"].reading, out["litres_used"].reading} in ({"120", "20"}, {"126", "26"})
+    for r in out.values():
+        assert r.rules["relation"] is True
+    assert out["current_reading"].confidence < 0.6 and out["current_reading"].decision == "review"
+    assert out["previous_reading"].confidence > 0.95          # right whichever pair is true
+
+
+def test_sharp_prior_and_digitness_favour_the_split_with_confident_digits():
+    lay = FakeLayout([FakeField("plot", kind="open", cells=None, max_digits=3, rules={"length": [1, 3]})])
+    c = compile_rules(lay)
+    # "189" (cost 0, every digit sure), "49" and "14" (a little dearer, one piece a poor digit)
+    a = CandidateEvidence(table({1: 0.995}, {8: 0.995}, {9: 0.995}), cost=0.0)
+    b = CandidateEvidence(table({4: 0.6, 1: 0.3}, {9: 0.995}), cost=0.1)
+    d = CandidateEvidence(table({1: 0.995}, {4: 0.5, 8: 0.45}), cost=0.2)
+    plain = plain_page({"plot": ev("plot", a, b, d)}, c, lay)["plot"]
+    assert plain.reading == "189" and plain.confidence < 0.4           # the flat prior spreads the mass
+    sharp = ConfidenceModel(prior_scale=0.25, digitness=3.0)
+    r = decode_page({"plot": ev("plot", a, b, d)}, c, lay, model=sharp)["plot"]
+    w = np.array([math.exp(-0.0 / 0.25) * 0.995 ** 9, math.exp(-0.1 / 0.25) * (0.6 * 0.995) ** 3,
+                  math.exp(-0.2 / 0.25) * (0.995 * 0.5) ** 3])
+    assert r.reading == "189" and r.candidate == 0
+    assert r.confidence == pytest.approx(w[0] / w.sum() * 0.995 ** 3, rel=1e-9)
+    assert r.confidence > 0.8 > 2 * plain.confidence
+    # a cheap split whose pieces read as nothing in particular loses to a dearer one that reads clearly
+    junk = CandidateEvidence(table({1: 0.3, 7: 0.3}, {4: 0.3, 9: 0.3}), cost=0.0)
+    clean = CandidateEvidence(table({4: 0.99}), cost=0.2)
+    plain = plain_page({"plot": ev("plot", junk, clean)}, c, lay)["plot"]
+    assert plain.reading == "4" and plain.confidence == pytest.approx(0.99 / (1 + math.exp(0.2)))
+    r = decode_page({"plot": ev("plot", junk, clean)}, c, lay, model=sharp)["plot"]
+    assert r.reading == "4" and r.candidate == 1 and r.confidence > 0.98
+
+
+def test_extra_temperature_softens_sure_digits():
+    lay = FakeLayout([FakeField("a", cells=2)])
+    evidence = {"a": ev("a", table({4: 0.999}, {2: 0.999}))}
+    hot = ConfidenceModel(temperature_boxed=2.0)
+    r = decode_page(evidence, compile_rules(lay), lay, model=hot)["a"]
+    # p ** (1 / 2) renormalised: 0.999 against nine times 0.001 / 9
+    one = math.sqrt(0.999) / (math.sqrt(0.999) + 9 * math.sqrt(0.001 / 9))
+    assert r.confidence == pytest.approx(one ** 2, rel=1e-9)
+    assert r.digit_probs[0][0] == (4, pytest.approx(one))
+    assert ConfidenceModel(temperature_open=2.0) != hot          # open fields have their own
+    r = decode_page(evidence, compile_rules(lay), lay, model=ConfidenceModel(temperature_open=2.0))["a"]
+    assert r.confidence == pytest.approx(0.999 ** 2)
+
+
+def test_rule_slack_moves_the_mass_of_rule_breaking_strings_to_the_reading():
+    payload = "799273987"
+    true = payload + luhn_compute(payload)
+    wrong = str((int(true[-1]) + 5) % 10)
+    probs = table(*true[:-1], {int(wrong): 0.6, int(true[-1]): 0.35})
+    lay = FakeLayout([FakeField("card", cells=10, rules={"check": "luhn"})])
+    plain = plain_page({"card": ev("card", probs)}, compile_rules(lay), lay)["card"]
+    r = decode_page({"card": ev("card", probs)}, compile_rules(lay), lay, model=CHECKS)["card"]
+    assert r.reading == plain.reading == true
+    assert r.confidence > plain.confidence
+    assert r.alternatives == plain.alternatives                # alternatives stay plain P(s)
+    # a network sure of the rule-breaking string keeps the reading far from sure
+    probs = table(*true[:-1], {int(wrong): 0.98, int(true[-1]): 0.01})
+    r = decode_page({"card": ev("card", probs)}, compile_rules(lay), lay, model=CHECKS)["card"]
+    assert r.reading == true and r.confidence < 0.6 and r.reason == "low_confidence"
+
+
+def test_confidence_model_values_are_checked():
+    for bad in ({"temperature_boxed": 0.0}, {"prior_scale": -1.0}, {"digitness": -0.5}, {"rule_slack": 0.0},
+                {"relation_slack": 1.5}, {"tail_weight": 2.0}):
+        with pytest.raises(ParameterError):
+            ConfidenceModel(**bad)
+    lay = FakeLayout([FakeField("a", cells=1)])
+    with pytest.raises(ParameterError, match="model"):
+        decode_page({"a": ev("a", table({3: 0.9}))}, compile_rules(lay), lay, model="sharp")
+    # cost_scale still overrides the prior scale (older callers)
+    r = decode_page({"a": ev("a", table({3: 0.9}))}, compile_rules(lay), lay, cost_scale=2.0, model=PLAIN)["a"]
+    assert r.confidence == pytest.approx(0.9)
