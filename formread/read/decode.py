@@ -10,11 +10,12 @@ development demo sets (see its notes), :data:`PLAIN` switches every addition off
 
 Probability model
 -----------------
-1. *Digits.*  Each digit's probabilities get an extra temperature
-   (``p ** (1 / T)``, renormalised; ``temperature_boxed`` / ``temperature_open``):
-   digits cut from scans are misread more often than the model's own calibration
-   on clean digits says (on development cards, digits read at 0.99-0.999 were right
-   only ~91% of the time).
+1. *Digits.*  Each digit's probabilities go through a reliability map
+   (``digit_calibration``: the top digit's error ``1 - max p`` is replaced by the
+   error rate measured for digits read that sure, see :data:`DIGIT_RELIABILITY`),
+   optionally after an extra temperature (``temperature_boxed`` / ``temperature_open``):
+   digits cut from scans are misread more often than the model's own calibration on
+   clean digits says.
 2. *Segmentations.*  Candidate ``c`` of a field gets the weight
    ``w_c ~ exp(-cost_c / prior_scale) * prod_k (max_d p_ck(d)) ** digitness``:
    the segmentation prior (sharpened: costs are only roughly scaled log priors)
@@ -26,16 +27,17 @@ Probability model
    ``max_strings`` most probable strings are enumerated exactly (a beam trying the
    top ``top_per_position`` digits per position).
 4. *Rules as evidence.*  Written values rarely break the field's rules, so a string
-   that breaks one keeps only ``rule_slack`` of its mass, and the mass of strings
-   never enumerated (rules unknown) counts ``tail_weight``.
+   that breaks one keeps only ``rule_slack`` of its mass; the mass of strings never
+   enumerated (rules unknown) is weighed as the enumerated strings are on average
+   (by count: ``r + rule_slack * (1 - r)`` with ``r`` the share that keep the rules).
 
 Field stage: the reading is the most probable enumerated string that keeps the
 field's own rules (length, range, date, check digit); when none does, the most
 probable string is kept and the field goes to review.
 
 **Confidence** (field stage) is the posterior probability of the reading under this
-model: ``P(reading) / (P(keep rules) + rule_slack * P(break rules) + tail_weight *
-P(not enumerated))`` (the reading's own mass counts ``rule_slack`` when it breaks a
+model: ``P(reading) / (P(keep rules) + rule_slack * P(break rules) + (r + rule_slack
+* (1 - r)) * P(not enumerated))`` (the reading's own mass counts ``rule_slack`` when it breaks a
 rule).  With :data:`PLAIN` the denominator is 1 and the confidence is ``P(reading)``.
 ``alternatives`` gives the enumerated strings (passing or not) with their
 unweighted probabilities ``P(s)``, best first.
@@ -84,7 +86,7 @@ from formread.read.rules import CompiledRules, FieldRules, check_value
 __all__ = [
     "CandidateEvidence", "FieldEvidence", "FieldReading", "decode_page", "decode_field",
     "unregistered_page", "evidence_from_digits", "kbest_strings", "REASONS", "ACCEPTED", "REVIEW",
-    "DEFAULT_THRESHOLD", "ConfidenceModel", "CONFIDENCE_MODEL", "PLAIN",
+    "DEFAULT_THRESHOLD", "ConfidenceModel", "CONFIDENCE_MODEL", "PLAIN", "DIGIT_RELIABILITY",
 ]
 
 ACCEPTED = "accepted"
@@ -126,8 +128,15 @@ class ConfidenceModel:
     relation_slack : float in (0, 1]
         The same for a combination of the group's strings that breaks a relation.
     tail_weight : float in [0, 1]
-        Weight of the probability mass of strings (or combinations) never examined,
-        whose rules are unknown.
+        Weight of the probability mass of combinations of strings never examined in
+        the relation stage, whether they keep the relations being unknown.  (In the
+        field stage, strings never examined are weighed by the share of examined
+        ones that keep the rules.)
+    digit_calibration : tuple of (float, float) pairs, or None
+        A reliability map for each digit's error ``e = 1 - max_d p(d)``: knots
+        ``(log10 e, log10 e')`` interpolated piecewise linearly (ends held flat);
+        the top digit gets ``1 - e'`` and the others share ``e'`` in their
+        proportions.  Applied after the temperatures.  None = no map.
     """
 
     temperature_boxed: float = 1.0
@@ -137,6 +146,7 @@ class ConfidenceModel:
     rule_slack: float = 1.0
     relation_slack: float = 1.0
     tail_weight: float = 1.0
+    digit_calibration: tuple | None = None
 
     def __post_init__(self):
         for k in ("temperature_boxed", "temperature_open", "prior_scale"):
@@ -145,21 +155,59 @@ class ConfidenceModel:
         check_param(0 < self.rule_slack <= 1, "rule_slack", "in (0, 1]", self.rule_slack)
         check_param(0 < self.relation_slack <= 1, "relation_slack", "in (0, 1]", self.relation_slack)
         check_param(0 <= self.tail_weight <= 1, "tail_weight", "in [0, 1]", self.tail_weight)
+        if self.digit_calibration is not None:
+            k = np.asarray(self.digit_calibration, dtype=np.float64)
+            check_param(k.ndim == 2 and k.shape[1] == 2 and len(k) >= 2 and bool(np.all(np.diff(k[:, 0]) > 0))
+                        and bool(np.all(np.diff(k[:, 1]) >= 0)) and bool(np.all(k <= 0)),
+                        "digit_calibration", "increasing (log10 e, log10 e') knots <= 0, nondecreasing e'",
+                        self.digit_calibration)
+
+    def calibrate(self, p: np.ndarray) -> np.ndarray:
+        """Apply the digit reliability map to ``p`` of shape (K, 10) (rows summing to 1); a new array."""
+        if self.digit_calibration is None or not p.size:
+            return p
+        k = np.asarray(self.digit_calibration, dtype=np.float64)
+        top = p.argmax(axis=1)
+        rows = np.arange(p.shape[0])
+        e = np.clip(1.0 - p[rows, top], 1e-15, 0.9)
+        e_new = np.minimum(10.0 ** np.interp(np.log10(e), k[:, 0], k[:, 1]), 0.9)
+        rest = p.copy()
+        rest[rows, top] = 0.0
+        s = rest.sum(axis=1)
+        rest = np.where(s[:, None] > 0, rest / np.where(s > 0, s, 1.0)[:, None], 1.0 / 9.0)
+        rest[rows, top] = 0.0
+        out = rest * e_new[:, None]
+        out[rows, top] = 1.0 - e_new
+        return out
 
 
 PLAIN = ConfidenceModel()
 """No extra temperature, prior as given, rules as filters only: confidence = P(reading)."""
-CONFIDENCE_MODEL = ConfidenceModel(temperature_boxed=1.9, temperature_open=1.7, prior_scale=0.25, digitness=3.0,
-                                   rule_slack=0.003, relation_slack=0.003, tail_weight=0.03)
+DIGIT_RELIABILITY = ((-7.0, -2.9), (-5.0, -2.9), (-4.25, -2.1), (-3.25, -1.6), (-2.75, -1.3), (-2.25, -1.05),
+                     (-1.75, -0.95), (-1.25, -0.66), (-0.75, -0.47), (-0.25, -0.3))
+"""Knots ``(log10 e, log10 e')`` of the digit reliability map of :data:`CONFIDENCE_MODEL`.
+
+Measured on 6008 digits of development demo cards whose segmentation had the right
+number of digits (``formread demo make --count 60 --seed 101`` and ``--count 120 --seed 102``,
+shipped model): the share of misread digits per band of ``log10(1 - max p)``, smoothed
+to be nondecreasing.  E.g. digits read at 0.99-0.999 were wrong 3-5% of the time, not
+0.1-1%, and even digits read at 0.99999 or more were wrong about 0.13% of the time
+(the error floor of ``-2.9``)."""
+
+CONFIDENCE_MODEL = ConfidenceModel(prior_scale=0.25, digitness=3.0, rule_slack=0.03, relation_slack=0.003,
+                                   tail_weight=0.01, digit_calibration=DIGIT_RELIABILITY)
 """The model :func:`decode_page` uses by default.
 
 Fitted with the shipped model (``models/default.npz``) on development demo sets only
-(``formread demo make --count 60 --seed 101`` and ``--count 120 --seed 102``; never on
-the shipped set, seed 7, nor the check set, seed 11) by coordinate search over a grid
-of each value, minimising the review rate at the threshold ``formread tune`` chooses
-for 0.5% error among accepted fields plus the error at 15% review
-(``benchmarks/decision_quality.py`` measures both).  Refit after retraining the network
-or when local scans differ much from the demo's."""
+(``formread demo make --count 60 --seed 101`` and ``--count 120 --seed 102``, 1080 fields;
+never on the shipped set, seed 7, nor the check set, seed 11): the digit map is
+:data:`DIGIT_RELIABILITY` (no extra temperature: a temperature that fitted the
+0.99-0.999 band, about 1.9, made the surest digits far too doubtful); the other values
+by coordinate search over a grid of each, minimising the review rate at the threshold
+``formread tune`` chooses for 0.5% error among accepted fields plus the error at 15%
+review (``benchmarks/decision_quality.py fast`` measures both).  On those sets the field
+confidences came out calibrated within a few points per band.  Refit after retraining
+the network or when local scans differ much from the demo's."""
 
 
 @dataclass
@@ -325,8 +373,8 @@ class _State:
     denom: float = 1.0               # weighted mass of every string (see _weighted_total)
 
 
-def _normalise(name: str, i: int, cand: CandidateEvidence, temperature: float = 1.0
-               ) -> tuple[np.ndarray, list[int], bool]:
+def _normalise(name: str, i: int, cand: CandidateEvidence, temperature: float = 1.0,
+               model: ConfidenceModel | None = None) -> tuple[np.ndarray, list[int], bool]:
     p = np.asarray(cand.probs, dtype=np.float64)
     if p.ndim == 1 and p.size == 0:
         p = p.reshape(0, 10)
@@ -338,6 +386,8 @@ def _normalise(name: str, i: int, cand: CandidateEvidence, temperature: float = 
         lp = np.log(np.maximum(p, _FLOOR)) / temperature
         p = np.exp(lp - lp.max(axis=1, keepdims=True))
         p /= p.sum(axis=1, keepdims=True)
+    if model is not None:
+        p = model.calibrate(p)
     k = p.shape[0]
     if cand.blank is None:
         pos = list(range(k))
@@ -382,7 +432,7 @@ def _field_state(ev: FieldEvidence | None, fr: FieldRules, *, top: int, limit: i
     temp = model.temperature_open if fr.kind == "open" else model.temperature_boxed
     probs, positions, interior = [], [], []
     for i, cand in enumerate(ev.candidates):
-        p, pos, inner = _normalise(name, i, cand, temp)
+        p, pos, inner = _normalise(name, i, cand, temp, model)
         probs.append(p)
         positions.append(pos)
         interior.append(inner)
@@ -418,19 +468,27 @@ def _field_state(ev: FieldEvidence | None, fr: FieldRules, *, top: int, limit: i
 
 
 def _weighted_total(options: list[_Option], model: ConfidenceModel) -> float:
-    """``P(keeps rules) + rule_slack * P(breaks them) + tail_weight * P(not examined)``; 1 for PLAIN."""
-    total = 1.0
-    if model.rule_slack == 1.0 and model.tail_weight == 1.0:
-        return total
+    """``P(keeps rules) + rule_slack * P(breaks them) + w * P(not examined)``; 1 for PLAIN.
+
+    The strings not examined are weighed like the examined ones by count: ``w = r +
+    rule_slack * (1 - r)`` with ``r`` the share of examined strings that keep the rules
+    (all of them for a field without rules, about a tenth for a check digit).
+    """
+    if model.rule_slack == 1.0:
+        return 1.0
     left = sum(o.prob for o in options)
-    seen = 0.0
+    seen, n, n_ok = 0.0, 0, 0
     for o in options:
         if left <= _CHECKED_TAIL:
             break
-        seen += _weight(o, model) * o.prob
+        wt = _weight(o, model)
+        seen += wt * o.prob
+        n += 1
+        n_ok += wt == 1.0
         left -= o.prob
     tail = max(0.0, 1.0 - sum(o.prob for o in options)) + max(0.0, left)
-    return max(seen + model.tail_weight * tail, _FLOOR)
+    r = n_ok / n if n else 1.0
+    return max(seen + (r + model.rule_slack * (1.0 - r)) * tail, _FLOOR)
 
 
 def _set_choice(st: _State, opt: _Option, confidence: float) -> None:

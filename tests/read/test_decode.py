@@ -436,3 +436,22 @@ def test_confidence_model_values_are_checked():
     # cost_scale still overrides the prior scale (older callers)
     r = decode_page({"a": ev("a", table({3: 0.9}))}, compile_rules(lay), lay, cost_scale=2.0, model=PLAIN)["a"]
     assert r.confidence == pytest.approx(0.9)
+
+
+def test_digit_reliability_map():
+    m = ConfidenceModel(digit_calibration=((-4.0, -2.0), (-1.0, -0.5)))
+    p = np.array([[0.999, 0.0005, 0.0005] + [0.0] * 7,          # e = 1e-3 -> 10 ** -1.5
+                  [0.0, 1.0] + [0.0] * 8])                        # e = 0 -> held flat at 10 ** -2, shared evenly
+    q = m.calibrate(p)
+    e = 10 ** -1.5
+    assert q[0].tolist() == pytest.approx([1 - e, e / 2, e / 2] + [0.0] * 7)
+    assert q[1, 1] == pytest.approx(0.99) and q[1, 0] == pytest.approx(0.01 / 9)
+    assert q.sum(axis=1) == pytest.approx([1.0, 1.0])
+    # the shipped map: a digit read at 0.999 is right about 96.5% of the time, never surer than 99.87%
+    lay = FakeLayout([FakeField("a", cells=1)])
+    for sure_p, lo, hi in ((0.999, 0.96, 0.97), (1.0, 0.998, 0.9988)):
+        r = decode_page({"a": ev("a", table({7: sure_p}))}, compile_rules(lay), lay, model=CONFIDENCE_MODEL)["a"]
+        assert lo < r.confidence < hi
+    for bad in (((-1.0, -2.0),), ((-1.0, -2.0), (-2.0, -1.0)), ((-3.0, -1.0), (-1.0, -2.0)), ((-2.0, 0.5), (-1, 1))):
+        with pytest.raises(ParameterError):
+            ConfidenceModel(digit_calibration=bad)
