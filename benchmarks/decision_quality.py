@@ -99,14 +99,14 @@ def _figures(conf, correct, eligible, thresholds) -> list[dict]:
     return rows
 
 
-def _report(per_field: dict, thresholds, target: float) -> dict:
+def _report(per_field: dict, thresholds, target: float, run_threshold: float | None = None) -> dict:
     from formread.read.tune import choose_threshold
 
     allc = np.concatenate([v["conf"] for v in per_field.values()])
     allk = np.concatenate([v["correct"] for v in per_field.values()])
     alle = np.concatenate([v["eligible"] for v in per_field.values()])
     tr = choose_threshold(allc, allk, alle, target=target)
-    ts = sorted(set(thresholds) | {tr.threshold})
+    ts = sorted(set(thresholds) | {tr.threshold} | ({run_threshold} if run_threshold is not None else set()))
     out = {"fields": int(allc.size), "field_accuracy_before_review": float(allk.mean()),
            "tune": tr.summary(), "all": _figures(allc, allk, alle, ts), "per_field": {}}
     for name, v in per_field.items():
@@ -117,6 +117,11 @@ def _report(per_field: dict, thresholds, target: float) -> dict:
 
 def _print(rep: dict, head: str) -> None:
     print(head)
+    if "score" in rep:
+        sc = rep["score"]
+        print(f"  formread score at the run's threshold {sc['threshold']}: review {sc['review_rate']:.1%}  "
+              f"error among accepted {sc['error_among_accepted']:.2%} ({sc['wrong_accepted']}/{sc['accepted']})  "
+              f"accuracy before review {sc['field_accuracy_before_review']:.1%}  digits {sc['digit_accuracy']:.1%}")
     t = rep["tune"]
     print(f"  fields {rep['fields']}  accuracy before review {rep['field_accuracy_before_review']:.1%}")
     print(f"  tuned threshold (target {t['target']:.2%}): {t['threshold']:.6f}  review {t['review_rate']:.1%}  "
@@ -146,7 +151,7 @@ def run_cli(args, work: Path) -> dict:
     tune = json.loads(_formread("tune", str(out), "--truth", str(d / "truth.jsonl"),
                                 "--target", str(args.target), "--json"))
     records = [json.loads(line) for line in (out / "fields.jsonl").read_text().splitlines() if line.strip()]
-    rep = _report(_per_field(records, d / "truth.jsonl"), THRESHOLDS, args.target)
+    rep = _report(_per_field(records, d / "truth.jsonl"), THRESHOLDS, args.target, args.threshold)
     rep.update(set=str(d), out=str(out), read_seconds=seconds, score=score, formread_tune=tune)
     return rep
 
@@ -237,7 +242,7 @@ def run_fast(args, work: Path) -> dict:
     t0 = time.perf_counter()
     records = decode_cached(pages, d / "layout.toml", args.threshold)
     seconds = time.perf_counter() - t0
-    rep = _report(_per_field(records, d / "truth.jsonl"), THRESHOLDS, args.target)
+    rep = _report(_per_field(records, d / "truth.jsonl"), THRESHOLDS, args.target, args.threshold)
     rep.update(set=str(d), decode_seconds=seconds)
     return rep
 
