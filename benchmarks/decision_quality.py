@@ -20,7 +20,8 @@ threshold it would choose on the set (target ``--target``, default 0.5%).
 per page (library calls, as ``formread read`` does) and the evidence is cached in
 ``WORK/evidence.npz``; every later run only re-decodes with the current
 ``formread/read/decode.py`` and scores in-process (same curve and threshold choice
-as ``formread tune``), which takes about a second::
+as ``formread tune``), which takes about a second (the cache keeps the segmentation
+of the time it was made: delete ``WORK/evidence_*.npz`` after changing imaging)::
 
     python benchmarks/decision_quality.py fast --seed 101 --count 60 [--work DIR] [--threshold T]
 
