@@ -7,6 +7,10 @@ A layout field may carry ``[fields.rules]`` (DEVELOPERS.md):
 - ``date = "DDMMYYYY"``: a real Gregorian calendar date in one of the patterns
   ``DDMMYYYY``, ``MMDDYYYY``, ``YYYYMMDD``, ``DDMMYY``, ``YYMMDD`` (``YY`` means
   20YY, so ``00`` is the leap year 2000);
+- ``years = [2025, 2027]`` (only with ``date``): the date's year must lie in this
+  window, both ends included.  A plausible window (e.g. the current season) turns
+  a confidently misread year digit ("2726" for "2026") from an accepted real date
+  into a rule failure, and lets the reader prefer an alternative inside the window;
 - ``check = "luhn"``: a check digit, one of :data:`CHECKS`;
 - ``optional = true``: empty allowed (same as the field's own ``optional``).
 
@@ -16,7 +20,7 @@ never fails half-way on a bad layout.  Errors are :class:`RuleError` with one li
 ``"<layout file>: field 'x': <problem>"`` or ``"<layout file>: relation '<text>': <problem>"``.
 
 Results of a check are ``dict[rule name, bool]`` with rule names ``length``,
-``range``, ``date`` and the check scheme's own name (``luhn``, ``mod11-2``, ...).
+``range``, ``date``, ``years`` and the check scheme's own name (``luhn``, ``mod11-2``, ...).
 An empty value is checked only for presence: ``{}`` when the field is optional,
 ``{"required": False}`` when it is not.
 """
@@ -36,7 +40,7 @@ __all__ = ["FieldRules", "CompiledRules", "compile_rules", "check_field", "check
 CHECKS = tuple(SCHEMES)
 """Check-digit schemes a layout may name."""
 DATE_PATTERNS = ("DDMMYYYY", "MMDDYYYY", "YYYYMMDD", "DDMMYY", "YYMMDD")
-RULE_NAMES = ("length", "range", "date", "check", "optional")
+RULE_NAMES = ("length", "range", "date", "years", "check", "optional")
 
 
 @dataclass(frozen=True)
@@ -49,6 +53,7 @@ class FieldRules:
     length: tuple[int, int] | None = None
     range: tuple[int, int] | None = None
     date: str | None = None
+    years: tuple[int, int] | None = None
     check: str | None = None
     threshold: float | None = None
 
@@ -81,7 +86,7 @@ def _compile_field(src: str, f) -> FieldRules:
     unknown = sorted(set(rules) - set(RULE_NAMES))
     if unknown:
         raise bad(f"unknown rule {unknown[0]!r} (known: {', '.join(RULE_NAMES)})")
-    length = rng = date = check = None
+    length = rng = date = years = check = None
     if "length" in rules:
         v = rules["length"]
         if _is_int(v):
@@ -106,6 +111,16 @@ def _compile_field(src: str, f) -> FieldRules:
             raise bad(f"rule 'date' must be one of {', '.join(DATE_PATTERNS)}; got {date!r}")
         if length is not None and not length[0] <= len(date) <= length[1]:
             raise bad(f"rule 'length' {list(length)} cannot hold a {date} date")
+    if "years" in rules:
+        v = rules["years"]
+        if date is None:
+            raise bad("rule 'years' needs a 'date' rule (it bounds the date's year)")
+        if not (isinstance(v, (list, tuple)) and len(v) == 2 and all(_is_int(x) for x in v)
+                and 1 <= v[0] <= v[1]):
+            raise bad(f"rule 'years' must be [first, last] years with 1 <= first <= last; got {v!r}")
+        if "YYYY" not in date and (v[1] < 2000 or v[0] > 2099):
+            raise bad(f"rule 'years' {list(v)} holds no year of a {date} date (YY means 2000-2099)")
+        years = (int(v[0]), int(v[1]))
     if "check" in rules:
         check = rules["check"]
         if check not in SCHEMES:
@@ -116,7 +131,7 @@ def _compile_field(src: str, f) -> FieldRules:
             raise bad(f"rule 'optional' must be true or false; got {rules['optional']!r}")
         optional = optional or rules["optional"]
     return FieldRules(name=name, kind=getattr(f, "kind", "boxed"), optional=optional, length=length,
-                      range=rng, date=date, check=check, threshold=getattr(f, "threshold", None))
+                      range=rng, date=date, years=years, check=check, threshold=getattr(f, "threshold", None))
 
 
 def compile_rules(layout) -> CompiledRules:
@@ -155,16 +170,23 @@ def compile_rules(layout) -> CompiledRules:
                          _by_field={k: tuple(v) for k, v in by_field.items()})
 
 
-def _valid_date(value: str, pattern: str) -> bool:
+def _date_parts(value: str, pattern: str) -> tuple[int, int, int] | None:
+    """(year, month, day) of ``value`` read with ``pattern``; None if not that many digits."""
     if len(value) != len(pattern) or not value.isascii() or not value.isdigit():
-        return False
+        return None
     part = {}
     for key in ("DD", "MM", "YYYY", "YY"):
         i = pattern.find(key)
         if i >= 0 and not (key == "YY" and "YYYY" in pattern):
             part[key] = int(value[i:i + len(key)])
-    year = part.get("YYYY", 2000 + part.get("YY", 0))
-    month, day = part["MM"], part["DD"]
+    return part.get("YYYY", 2000 + part.get("YY", 0)), part["MM"], part["DD"]
+
+
+def _valid_date(value: str, pattern: str) -> bool:
+    parts = _date_parts(value, pattern)
+    if parts is None:
+        return False
+    year, month, day = parts
     if year < 1 or not 1 <= month <= 12:
         return False
     # calendar.monthrange applies the Gregorian leap rule (proleptic)
@@ -190,6 +212,9 @@ def check_value(rules: FieldRules, value: str) -> dict[str, bool]:
         out["range"] = digits and rules.range[0] <= int(value) <= rules.range[1]
     if rules.date is not None:
         out["date"] = _valid_date(value, rules.date)
+        if rules.years is not None:
+            parts = _date_parts(value, rules.date)
+            out["years"] = parts is not None and rules.years[0] <= parts[0] <= rules.years[1]
     if rules.check is not None:
         out[rules.check] = SCHEMES[rules.check][1](value)
     return out

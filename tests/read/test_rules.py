@@ -65,6 +65,20 @@ def test_dates_and_the_gregorian_leap_rule():
     assert check_field(c, "s", "290201") == {"date": False}
 
 
+def test_year_window_bounds_the_date_year():
+    c = compile_rules(layout(d={"date": "DDMMYYYY", "years": [2025, 2027]}, s={"date": "YYMMDD", "years": [2024, 2024]}))
+    assert check_field(c, "d", "05032026") == {"date": True, "years": True}
+    assert check_field(c, "d", "01012025") == {"date": True, "years": True}     # both ends included
+    assert check_field(c, "d", "31122027") == {"date": True, "years": True}
+    assert check_field(c, "d", "05032726") == {"date": True, "years": False}    # a misread year digit
+    assert check_field(c, "d", "31122024") == {"date": True, "years": False}
+    assert check_field(c, "d", "31022026") == {"date": False, "years": True}    # the window says nothing of the day
+    assert check_field(c, "d", "0503202") == {"date": False, "years": False}
+    assert check_field(c, "s", "240229") == {"date": True, "years": True}      # YY = 20YY
+    assert check_field(c, "s", "250101") == {"date": True, "years": False}
+    assert c.fields["d"].years == (2025, 2027)
+
+
 def test_check_digit_rules():
     c = compile_rules(layout(a={"check": "luhn"}, b={"check": "mod11-2"}, g={"check": "gs1"}))
     # ISO/IEC 7812-1 annex B: 7992739871 -> 3
@@ -103,6 +117,11 @@ def test_combined_rules():
     ({"date": "DD/MM/YYYY"}, "rule 'date'"),
     ({"date": "DDMMYYYY", "length": 6}, "cannot hold"),
     ({"check": "crc32"}, "rule 'check'"),
+    ({"years": [2025, 2027]}, "needs a 'date' rule"),
+    ({"date": "DDMMYYYY", "years": [2027, 2025]}, "rule 'years'"),
+    ({"date": "DDMMYYYY", "years": 2026}, "rule 'years'"),
+    ({"date": "DDMMYYYY", "years": [2025.0, 2027]}, "rule 'years'"),
+    ({"date": "DDMMYY", "years": [1990, 1999]}, "holds no year"),
     ({"optional": "yes"}, "rule 'optional'"),
 ])
 def test_bad_rules_name_file_and_field(rules, fragment):
@@ -190,7 +209,7 @@ rule = "current >= previous"
     with pytest.raises(RuleError) as e:
         compile_rules(parse_layout(text, "meter.toml"))
     assert str(e.value) == ("meter.toml: field 'current': unknown rule 'lenght' "
-                            "(known: length, range, date, check, optional)")
+                            "(known: length, range, date, years, check, optional)")
     c = compile_rules(parse_layout(text.replace("lenght", "length"), "meter.toml"))
     assert c.source == "meter.toml" and [r.text for r in c.relations] == ["current >= previous"]
     assert check_field(c, "current", "123") == {"length": False}
