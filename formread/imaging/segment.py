@@ -571,7 +571,8 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
 
 
 def _open_doubt(candidates: list, field, dh: float) -> tuple[bool, str | None]:
-    """Doubt an open field when rival splits of another length cost nearly as much, or every split keeps a too-wide digit."""
+    """Doubt an open field when rival splits of another length cost nearly as much,
+    or when every split keeps a too-wide digit."""
     best = candidates[0]
     k = len(best.boxes)
     if k > field.max_digits:

@@ -203,12 +203,13 @@ def test_outdir_rules(tmp_path):
 
 def test_layout_follows_the_contract():
     doc = tomllib.loads(demo_layout_path().read_text())
-    assert doc["form"]["binarize"] == "auto" and doc["form"]["threshold"] == 0.9
+    assert doc["form"]["binarize"] == "auto" and doc["form"]["threshold"] == 0.8962
     assert {"x", "y", "w", "h"} == set(doc["form"]["header"])
     assert len(doc["marks"]) == 4
     fields = {f["name"]: f for f in doc["fields"]}
     assert fields["member_number"]["rules"] == {"length": 8, "check": "luhn"}
     assert fields["reading_date"]["rules"]["date"] == "DDMMYYYY"
+    assert fields["reading_date"]["rules"]["years"] == [2025, 2027]   # the demo dates are in 2026
     assert fields["plot_number"]["rules"]["range"] == [1, 240]
     assert fields["litres_used"]["optional"] and not fields["plot_number"]["optional"]
     assert {r["rule"] for r in doc["relations"]} == {"current_reading >= previous_reading",
@@ -217,7 +218,7 @@ def test_layout_follows_the_contract():
     assert [f.name for f in lay.fields] == list(fields)
     assert lay.header is not None and len(lay.marks) == 4
     assert dict(lay.fields[1].rules)["check"] == "luhn"
-    assert lay.binarize == "auto" and lay.threshold == pytest.approx(0.9)
+    assert lay.binarize == "auto" and lay.threshold == pytest.approx(0.8962)
     # the card printer draws exactly the layout's geometry
     card = read_card_layout()
     for f, g in zip(lay.fields, card.fields):

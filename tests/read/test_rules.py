@@ -66,7 +66,8 @@ def test_dates_and_the_gregorian_leap_rule():
 
 
 def test_year_window_bounds_the_date_year():
-    c = compile_rules(layout(d={"date": "DDMMYYYY", "years": [2025, 2027]}, s={"date": "YYMMDD", "years": [2024, 2024]}))
+    c = compile_rules(layout(d={"date": "DDMMYYYY", "years": [2025, 2027]},
+                             s={"date": "YYMMDD", "years": [2024, 2024]}))
     assert check_field(c, "d", "05032026") == {"date": True, "years": True}
     assert check_field(c, "d", "01012025") == {"date": True, "years": True}     # both ends included
     assert check_field(c, "d", "31122027") == {"date": True, "years": True}
@@ -230,3 +231,22 @@ def test_check_relations_on_corrected_values():
     assert check_relations(c, {"previous": "100", "current": "120", "litres": ""}) == {
         "litres = current - previous": None, "current >= previous": True}
     assert c.relations[0].sides({"previous": 100, "current": 120, "litres": 26}) == (26, 20)
+
+
+def test_the_demo_values_keep_the_demo_layout_rules():
+    # the demo's invented cards (no writer mistake) keep every rule of the demo layout, the year window too
+    import numpy as np
+
+    from formread.demo.make import demo_layout_path
+    from formread.demo.values import card_values
+    from formread.imaging.layout import load_layout
+    from formread.read.rules import check_relations
+
+    c = compile_rules(load_layout(demo_layout_path()))
+    assert c.fields["reading_date"].years is not None
+    rng = np.random.default_rng(0)
+    for _ in range(300):
+        values = card_values(rng, litres_empty=bool(rng.random() < 0.3))
+        for name, v in values.items():
+            assert all(check_field(c, name, v).values()), (name, v)
+        assert all(ok in (True, None) for ok in check_relations(c, values).values()), values
