@@ -202,6 +202,7 @@ _RULE_WORDS = {
     "length": "it has a number of digits this field does not allow",
     "range": "its value is outside the range this field allows",
     "date": "it is not a real calendar date",
+    "years": "its year is outside the years this field allows",
     "required": "the field must be filled but looks blank",
     "relation": "the numbers on this page do not add up (a rule linking fields fails)",
 }
