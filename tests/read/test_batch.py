@@ -158,3 +158,42 @@ def test_list_scans_refuses_missing_inputs_and_sorts_folders(tmp_path):
 
     with pytest.raises(ImageError, match="no such file or folder"):
         list_scans([tmp_path / "nope"])
+
+
+def test_recognition_is_one_network_call_for_several_pages_with_the_models_temperature():
+    from types import SimpleNamespace
+
+    from formread.read.recognise import recognise_pages
+
+    class Counting:
+        """Stands in for a model: digit image k (filled with value k) gets a one-hot row on digit k % 10."""
+
+        def __init__(self):
+            self.calls = []
+
+        def predict_proba(self, x, batch_size=256, temperature=1.0):
+            self.calls.append((x.shape, temperature))
+            k = x[:, 0, 0, 0].astype(int)
+            return np.eye(10, dtype=np.float32)[k % 10]
+
+    def field(name, kind, sizes, start):
+        cands = []
+        for n in sizes:
+            d = np.zeros((n, 1, 28, 28), np.float32) + np.arange(start, start + n, dtype=np.float32)[:, None, None,
+                                                                                                      None]
+            cands.append(SimpleNamespace(digits=d, boxes=[], cost=float(n)))
+            start += n
+        blank = np.zeros(sizes[0], bool) if kind == "boxed" else None
+        return SimpleNamespace(name=name, kind=kind, candidates=cands, blank=blank, doubtful=False, reason=None), start
+
+    a, s = field("a", "boxed", [3], 0)
+    b, s = field("b", "open", [2, 1], s)
+    c, s = field("c", "open", [], s)                       # nothing segmented: no candidates
+    d, s = field("d", "open", [2], s)
+    model = Counting()
+    out = recognise_pages([{"a": a, "b": b, "c": c}, {"d": d}], model, temperature=1.7)
+    assert model.calls == [((8, 1, 28, 28), 1.7)]          # every digit of both pages in one call
+    assert [np.argmax(p, axis=1).tolist() for p in (cand.probs for cand in out[0]["b"].candidates)] == [[3, 4], [5]]
+    assert np.argmax(out[0]["a"].candidates[0].probs, axis=1).tolist() == [0, 1, 2]
+    assert out[0]["c"].candidates == []
+    assert np.argmax(out[1]["d"].candidates[0].probs, axis=1).tolist() == [6, 7]
