@@ -18,9 +18,7 @@ accuracy (their held-out part is wrong in the same random way), so such a model 
 from __future__ import annotations
 
 import json
-import os
 import re
-import tempfile
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Callable
@@ -29,6 +27,7 @@ import numpy as np
 
 from .datasets import Dataset, load_samples_folder
 from .errors import DataError, check_param
+from .fileio import atomic_write
 from .nn.augment import AugmentConfig
 from .nn.model import build_model
 from .nn.modelfile import load_model, save_model
@@ -85,12 +84,7 @@ def next_version_path(model_path: Path) -> Path:
 
 def promote(model_path: Path, models_dir: Path) -> None:
     """Make ``model_path`` the model in use by writing ``models_dir/in_use.json`` atomically."""
-    models_dir.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=models_dir, prefix=".tmp-", suffix=".json")
-    with os.fdopen(fd, "w") as f:
-        json.dump({"model": model_path.name}, f)
-        f.write("\n")
-    os.replace(tmp, models_dir / IN_USE)
+    atomic_write(models_dir / IN_USE, json.dumps({"model": model_path.name}) + "\n")
 
 
 def _accuracy(model, x: np.ndarray, y: np.ndarray) -> float:

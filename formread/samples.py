@@ -17,8 +17,6 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -26,6 +24,7 @@ import numpy as np
 from PIL import Image
 
 from .errors import DataError, LedgerError
+from .fileio import atomic_write
 from .review.actions import connect, list_decided, load_digits
 
 __all__ = ["SamplesReport", "collect_samples", "MANIFEST"]
@@ -58,20 +57,6 @@ class SamplesReport:
 def _to_png_array(digit: np.ndarray) -> np.ndarray:
     """(1, 28, 28) or (28, 28) float in [0, 1] -> (28, 28) uint8, ink light on dark."""
     return np.clip(np.rint(np.asarray(digit, np.float32).reshape(28, 28) * 255), 0, 255).astype(np.uint8)
-
-
-def _atomic_write(path: Path, data: bytes) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=path.suffix)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
 
 
 def _png_bytes(img: np.ndarray) -> bytes:
@@ -173,7 +158,7 @@ def collect_samples(outdir: str | Path, samples_dir: str | Path, *,
             if (root / rel).exists():  # the same pixels came from another field already
                 report.duplicates += 1
                 continue
-            _atomic_write(root / rel, _png_bytes(arr))
+            atomic_write(root / rel, _png_bytes(arr))
             if old is None:
                 report.added += 1
             rec = {"file": rel, "digit": digit,
@@ -185,7 +170,7 @@ def collect_samples(outdir: str | Path, samples_dir: str | Path, *,
             by_key[key] = rec
 
     text = "".join(json.dumps(r, sort_keys=True) + "\n" for r in records)
-    _atomic_write(manifest_path, text.encode("utf-8"))
+    atomic_write(manifest_path, text.encode("utf-8"))
     report.per_digit = [len(list((root / str(k)).glob("*.png"))) if (root / str(k)).is_dir() else 0
                         for k in range(10)]
     return report

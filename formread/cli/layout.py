@@ -2,14 +2,13 @@
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 from typing import Optional
 
 import typer
 
 from ..errors import ImageError, LayoutError
+from ..fileio import atomic_write
 from .common import edge
 
 group = typer.Typer(name="layout", help="Make and check form layouts.", no_args_is_help=True)
@@ -32,20 +31,6 @@ def _page(scan: Path, number: int):
         if count == number:
             return pg
     raise ImageError(f"{scan}: no page {number} (the file has {count} page{'s' if count != 1 else ''})")
-
-
-def _atomic_write(path: Path, data: bytes) -> None:
-    """Write a file through a temporary one in the same folder, so a stop never leaves half a file."""
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
 
 
 @group.command("proof")
@@ -76,7 +61,7 @@ def proof_cmd(
     target = out if out is not None else scan.with_name(f"{scan.stem}.proof-p{page}.png")
     buf = io.BytesIO()
     img.save(buf, format="PNG")
-    _atomic_write(target, buf.getvalue())
+    atomic_write(target, buf.getvalue())
     reg = result.registration
     typer.echo(f"{scan} page {page}: {reg.marks_found} marks, residual {reg.residual_mm:.2f} mm, "
                f"skew {reg.skew_deg:+.2f} deg{', turned 180 deg' if reg.rotated_180 else ''}")
@@ -118,7 +103,7 @@ def draft_cmd(
             f"{blank_form.name} page {page}: name the fields, set optional/rules, then check with "
             "`formread layout proof`.\n" + layout.to_toml())
     parse_layout(text, str(target))  # what is written must load back
-    _atomic_write(target, text.encode("utf-8"))
+    atomic_write(target, text.encode("utf-8"))
     kinds = [f.kind for f in layout.fields]
     typer.echo(f"{blank_form} page {page}: {len(layout.marks)} marks, {len(kinds)} fields "
                f"({kinds.count('boxed')} boxed, {kinds.count('open')} open)")

@@ -98,7 +98,6 @@ def expected_calibration_error(probs: np.ndarray, y, bins: int = 15) -> float:
     correct = probs.argmax(axis=1) == y
     # bin k holds confidences in (k/B, (k+1)/B]; a confidence of exactly 0 goes to bin 0
     k = np.clip(np.ceil(conf * bins).astype(np.int64) - 1, 0, bins - 1)
-    count = np.bincount(k, minlength=bins).astype(np.float64)
     acc_sum = np.bincount(k, weights=correct.astype(np.float64), minlength=bins)
     conf_sum = np.bincount(k, weights=conf, minlength=bins)
     return float(np.abs(acc_sum - conf_sum).sum() / y.size)

@@ -14,7 +14,6 @@ import hashlib
 import io
 import json
 import os
-import tempfile
 import zipfile
 from pathlib import Path
 
@@ -22,6 +21,7 @@ import numpy as np
 
 from formread.digits import NORMALISATION, SIZE
 from formread.errors import FormreadError, ModelFileError
+from formread.fileio import atomic_open
 from formread.nn.model import Sequential, build_model
 
 __all__ = ["FORMAT", "FORMAT_VERSION", "HEADER_KEY", "save_model", "load_model", "read_header",
@@ -86,18 +86,8 @@ def save_model(path: str | os.PathLike, model: Sequential, header: dict | None =
     full = json.loads(text)  # what a later read_header returns
     payload = dict(arrays)
     payload[HEADER_KEY] = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            np.savez(f, **payload)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_open(path) as f:
+        np.savez(f, **payload)
     return full
 
 

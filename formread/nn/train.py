@@ -25,7 +25,6 @@ import hashlib
 import json
 import logging
 import os
-import tempfile
 import time
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
@@ -34,6 +33,7 @@ from typing import Callable
 import numpy as np
 
 from ..errors import DataError, ParameterError, check_param
+from ..fileio import atomic_open
 from .augment import AugmentConfig, augment_batch
 from .calibrate import fit_temperature, scaled_nll, softmax
 from .metrics import expected_calibration_error
@@ -258,18 +258,8 @@ def _fingerprint(x: np.ndarray, y: np.ndarray) -> str:
 
 
 def _atomic_savez(path: Path, arrays: dict[str, np.ndarray]) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            np.savez(f, **arrays)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_open(path) as f:
+        np.savez(f, **arrays)
 
 
 def _save_checkpoint(path: Path, model, best_state, opt, rng, state: dict) -> None:

@@ -18,15 +18,14 @@ from __future__ import annotations
 import csv
 import io
 import json
-import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import LedgerError
+from ..fileio import atomic_write
 from .actions import connect
 
-__all__ = ["HOW", "CSV_NAME", "JSONL_NAME", "ExportResult", "final_records", "export_final", "atomic_write"]
+__all__ = ["HOW", "CSV_NAME", "JSONL_NAME", "ExportResult", "final_records", "export_final"]
 
 HOW = ("auto", "confirmed", "corrected", "unreadable", "empty", "pending")
 CSV_NAME = "final_values.csv"
@@ -107,23 +106,6 @@ def _cell(text) -> str:
     """A CSV cell that a spreadsheet will not run as a formula (common practice: prefix ')."""
     s = "" if text is None else str(text)
     return "'" + s if s[:1] in ("=", "+", "-", "@", "\t", "\r") else s
-
-
-def atomic_write(path: Path, text: str) -> None:
-    """Write ``text`` (UTF-8) to ``path`` through a temporary file and ``os.replace``."""
-    fd, tmp = tempfile.mkstemp(prefix="." + path.name + ".", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as f:
-            f.write(text)
-            f.flush()
-            os.fsync(f.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
 
 
 def export_final(outdir: str | Path, out_dir: str | Path | None = None) -> ExportResult:

@@ -10,7 +10,8 @@ from typer.testing import CliRunner
 from formread.cli.main import app
 from formread.errors import LedgerError
 from formread.review import actions
-from formread.review.export import CSV_NAME, JSONL_NAME, atomic_write, export_final, final_records
+from formread.fileio import atomic_write
+from formread.review.export import CSV_NAME, JSONL_NAME, export_final, final_records
 
 
 def _decide(out, info):

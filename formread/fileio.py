@@ -1,0 +1,47 @@
+"""Atomic file writes: readers see the old file or the whole new one, never a part.
+
+Neutral (imports nothing of formread), so the network, the review side and the CLI share it.
+The ledger keeps its own variant with fixed temp names under its write lock
+(``formread.read.ledger.atomic_write``).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from pathlib import Path
+
+__all__ = ["atomic_open", "atomic_write"]
+
+
+@contextlib.contextmanager
+def atomic_open(path: str | os.PathLike, mode: str = "wb", **kwargs):
+    """Open a temporary file beside ``path``; on success fsync it and move it into place.
+
+    ``mode`` is "wb" or "w" (text; pass ``encoding``/``newline`` in ``kwargs``).  On any
+    exception the temporary file is removed and ``path`` is left as it was.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, mode, **kwargs) as f:
+            yield f
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
+
+
+def atomic_write(path: str | os.PathLike, data: bytes | str) -> None:
+    """Write ``data`` (bytes, or str as UTF-8) to ``path`` atomically."""
+    if isinstance(data, str):
+        with atomic_open(path, "w", encoding="utf-8", newline="") as f:
+            f.write(data)
+    else:
+        with atomic_open(path, "wb") as f:
+            f.write(data)
