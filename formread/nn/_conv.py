@@ -12,7 +12,7 @@ from __future__ import annotations
 import threading
 
 import numpy as np
-from numpy.lib.stride_tricks import sliding_window_view
+from numpy.lib.stride_tricks import as_strided
 
 
 class Scratch:
@@ -97,6 +97,15 @@ def _slab(i: int, j: int, ho: int, wo: int, s: int):
     return (slice(None), slice(i, i + s * (ho - 1) + 1, s), slice(j, j + s * (wo - 1) + 1, s))
 
 
+def _windows(xp, k, s, ho, wo):
+    """Read-only strided view (C, k, k, Ho, Wo, N) of the k x k windows at stride s of
+    xp (C, H, W, N): element [c, i, j, u, v, n] is xp[c, s*u + i, s*v + j, n]. Built directly from
+    the strides (sliding_window_view does the same with several microseconds of checks per call)."""
+    c, _, _, n = xp.shape
+    s0, s1, s2, s3 = xp.strides
+    return as_strided(xp, (c, k, k, ho, wo, n), (s0, s1, s2, s * s1, s * s2, s3), writeable=False)
+
+
 def conv_forward(x, w, b, s, p, scratch: Scratch):
     """x (C, H, W, N), w (O, C, k, k), b (O,) or None -> y (O, Ho, Wo, N) and the cols
     (C*k*k, Ho*Wo*N). With b None the bias is left out (added later by a fused block)."""
@@ -109,9 +118,7 @@ def conv_forward(x, w, b, s, p, scratch: Scratch):
         xp = x
     ho, wo = out_size(h, k, s, p), out_size(wd, k, s, p)
     cols = scratch.get("cols", (c, k, k, ho, wo, n), x.dtype)
-    win = sliding_window_view(xp, (k, k), axis=(1, 2))  # (C, H', W', N, k, k)
-    win = win[:, : s * (ho - 1) + 1 : s, : s * (wo - 1) + 1 : s]
-    np.copyto(cols, win.transpose(0, 4, 5, 1, 2, 3))
+    np.copyto(cols, _windows(xp, k, s, ho, wo))
     cols2 = cols.reshape(c * k * k, ho * wo * n)
     y = np.matmul(w.reshape(o, c * k * k), cols2)
     if b is not None:
@@ -131,6 +138,8 @@ def conv_backward(dy, w, cols2, xshape, s, p, scratch: Scratch, need_dx: bool = 
     db = dy2.sum(axis=1) if need_db else None
     if not need_dx:
         return None, dw, db
+    if s == 1:
+        return _conv_dx_stride1(dy, w, xshape, p, scratch), dw, db
     # Input gradient: the columns' gradient W^T @ dY, one kernel row at a time so that each
     # piece is added back into place while it is still in cache (about 20% faster than whole).
     dxp = np.zeros((c, h + 2 * p, wd + 2 * p, n), dtype=dy.dtype)
@@ -143,6 +152,36 @@ def conv_backward(dy, w, cols2, xshape, s, p, scratch: Scratch, need_dx: bool = 
             dxp[_slab(i, j, ho, wo, s)] += rows[:, j]
     dx = dxp[:, p:p + h, p:p + wd, :] if p else dxp
     return dx, dw, db
+
+
+def _conv_dx_stride1(dy, w, xshape, p, scratch: Scratch):
+    """Input gradient of a stride-1 convolution: dy (O, Ho, Wo, N) -> dx (C, H, W, N), a view of a
+    work array (valid until the next call on this scratch).
+
+    The k column shifts go into the product instead of into k * k scattered additions: dy is copied
+    k times, shifted by j along W into a zero band (O, k, Ho, W + 2p, N); one matmul with the weights
+    as (C * k_i, O * k_j) gives, for every kernel row i, a whole (C, Ho, W + 2p, N) slab that is added
+    at row offset i. That is k copies, one matmul (contraction O * k instead of O; (W + 2p) / Wo
+    times the multiply-adds, the band's zeros) and k additions in place of k matmuls and k * k
+    additions: measured 13-22% less time for LeNet-5's second layer at 32-128 images, one core.
+    """
+    c, h, wd, n = xshape
+    o, _, k, _ = w.shape
+    _, ho, wo, _ = dy.shape
+    wi = wd + 2 * p
+    band = scratch.get("dx_band", (o, k, ho, wi, n), dy.dtype)  # zero outside the copies, always
+    for j in range(k):
+        band[:, j, :, j:j + wo, :] = dy
+    wm = w.transpose(1, 2, 0, 3).reshape(c * k, o * k)
+    piece = scratch.get("dx_piece", (c * k, ho * wi * n), dy.dtype)
+    np.matmul(wm, band.reshape(o * k, ho * wi * n), out=piece)
+    rows = piece.reshape(c, k, ho, wi, n)
+    dxp = scratch.get("dx_pad", (c, ho + k - 1, wi, n), dy.dtype)  # = (C, H + 2p, W + 2p, N)
+    dxp[:, :ho] = rows[:, 0]
+    dxp[:, ho:] = 0
+    for i in range(1, k):
+        dxp[:, i:i + ho] += rows[:, i]
+    return dxp[:, p:p + h, p:p + wd, :] if p else dxp
 
 
 def _pick(views, out_shape, dtype):
@@ -297,9 +336,7 @@ def conv_maxpool_forward(x, w, p, s, scratch: Scratch, need_arg: bool = True):
         xp = x
     hq, wq = out_size(h, k, 1, p) // s, out_size(wd, k, 1, p) // s
     cols = scratch.get("cols", (c, kk, kk, hq, wq, n), x.dtype)
-    win = sliding_window_view(xp, (kk, kk), axis=(1, 2))
-    win = win[:, : s * (hq - 1) + 1 : s, : s * (wq - 1) + 1 : s]
-    np.copyto(cols, win.transpose(0, 4, 5, 1, 2, 3))
+    np.copyto(cols, _windows(xp, kk, s, hq, wq))
     cols2 = cols.reshape(c * kk * kk, hq * wq * n)
     z = np.matmul(_tile_weights(w, s, scratch), cols2).reshape(s, s, o, hq, wq, n)
     if not need_arg:

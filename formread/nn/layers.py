@@ -37,8 +37,9 @@ def to_internal(x: np.ndarray) -> np.ndarray:
 
 
 def to_public(x: np.ndarray) -> np.ndarray:
-    """Internal layout (..., N) -> public layout (N, ...), as a new C-contiguous array."""
-    return np.ascontiguousarray(np.moveaxis(x, -1, 0))
+    """Internal layout (..., N) -> public layout (N, ...), as a new C-contiguous array (always a
+    copy: internal arrays may be work arrays that the next pass overwrites)."""
+    return np.moveaxis(x, -1, 0).copy(order="C")
 
 
 class Layer:

@@ -102,7 +102,7 @@ def _worker_main() -> None:
             try:
                 n = int(words[1])
                 if words[0] == "p":
-                    zbuf[:n] = model.forward(xbuf[:n])
+                    model._logits(xbuf[:n], out=zbuf[:n])
                     out.write("ok 0 0\n")
                 else:
                     loss, correct = model.grad_step(xbuf[:n], ybuf[:n], float(words[2]))
@@ -227,8 +227,12 @@ class DataParallel:
             loss2, c2 = self._receive()
         w1, w2 = n1 / n, n2 / n
         for p, g in zip(self.model.parameters(), self._gviews):
-            p.grad *= p.grad.dtype.type(w1)
-            p.grad += p.grad.dtype.type(w2) * g
+            if n1 == n2:  # (a + b) / 2: two passes, no temporary
+                p.grad += g
+                p.grad *= p.grad.dtype.type(0.5)
+            else:
+                p.grad *= p.grad.dtype.type(w1)
+                p.grad += p.grad.dtype.type(w2) * g
         return w1 * loss1 + w2 * loss2, c2 + c1
 
     def predict_proba(self, x: np.ndarray, batch_size: int = 256, temperature: float = 1.0
@@ -245,13 +249,13 @@ class DataParallel:
             xb = x[start:start + batch_size]
             n = len(xb)
             if n < 2:
-                z = self.model.forward(xb)
+                z = self.model._logits(xb)
             else:
                 n1 = n // 2
                 n2 = n - n1
                 self._send(xb[n1:], f"p {n2}")
                 try:
-                    z1 = self.model.forward(xb[:n1])
+                    z1 = self.model._logits(xb[:n1])
                 finally:
                     self._receive()
                 z = np.concatenate([z1, self._zbuf[:n2]], axis=0)
