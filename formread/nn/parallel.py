@@ -5,7 +5,8 @@ batch is split in two: this process computes the gradient of its half while one 
 computes the other half on a replica whose weights live in shared memory. The worker is a fresh
 ``python -m formread.nn.parallel`` (no fork, and no ``if __name__ == "__main__"`` guard needed in
 the caller); weights, inputs and gradients pass through a memory-mapped file that is unlinked as
-soon as both processes have mapped it; commands and answers are text lines on its stdin/stdout.
+soon as both processes have mapped it; commands and answers are text lines on its stdin/stdout,
+which the waiting side polls for a moment before it sleeps (see ``_SPIN_SECONDS``).
 The two mean gradients are combined weighted by the half sizes, so the result is the gradient of
 the mean loss over the whole batch, as ``Sequential.grad_step`` gives it. BLAS is pinned to one
 thread in both processes while the context is open. The gain needs a second idle core: measured
@@ -28,10 +29,12 @@ from __future__ import annotations
 
 import json
 import os
+import select
 import signal
 import subprocess
 import sys
 import tempfile
+import time
 import weakref
 
 import numpy as np
@@ -77,6 +80,43 @@ def _map(path, dtype, shapes, capacity, in_shape, classes):
     return split(offs[0]), split(offs[1]), x, y, z
 
 
+# How long a process waiting for the other polls the pipe before it sleeps in select(): waking a
+# sleeping process (on a virtual CPU) took 100-500 microseconds here (measured), a large share of a
+# 1-2 ms training step. Short, so that idle workers give their core back soon (20 ms was measured
+# slower in benchmarks that keep several workers).
+_SPIN_SECONDS = 0.002
+
+
+class _LineReader:
+    """Lines (str, with the newline) from a pipe's file descriptor, polled without blocking for up
+    to ``spin`` seconds before waiting in select(); '' at end of input."""
+
+    def __init__(self, fd: int, spin: float = _SPIN_SECONDS):
+        self.fd, self.spin, self.buf = fd, spin, b""
+        os.set_blocking(fd, False)
+
+    def readline(self) -> str:
+        while True:
+            end = self.buf.find(b"\n")
+            if end >= 0:
+                line, self.buf = self.buf[:end + 1], self.buf[end + 1:]
+                return line.decode()
+            chunk = self._read()
+            if not chunk:  # end of input
+                line, self.buf = self.buf, b""
+                return line.decode()
+            self.buf += chunk
+
+    def _read(self) -> bytes:
+        t0 = time.perf_counter()
+        while True:
+            try:
+                return os.read(self.fd, 65536)
+            except BlockingIOError:
+                if time.perf_counter() - t0 > self.spin:
+                    select.select([self.fd], [], [])
+
+
 def _worker_main() -> None:
     """Worker process: one JSON set-up line on stdin, then command lines ("g n smoothing": gradient
     of x[:n], y[:n]; "p n": logits of x[:n]); one answer line each on stdout."""
@@ -95,7 +135,9 @@ def _worker_main() -> None:
             p.value = v  # weights are read from the shared file on every pass
         out.write("ready\n")
         out.flush()
-        for line in inp:
+        # nothing else was sent before "ready": the text wrapper holds no buffered commands
+        reader = _LineReader(inp.fileno())
+        for line in iter(reader.readline, ""):
             words = line.split()
             if not words:
                 break
@@ -200,6 +242,7 @@ class DataParallel:
             self.close_worker()
             raise RuntimeError("data-parallel worker process failed to start")
         self._proc, self._capacity, self._in_shape = proc, capacity, tuple(in_shape)
+        self._reader = _LineReader(proc.stdout.fileno())  # the worker wrote nothing after "ready"
         self._path = path
 
     def grad_step(self, x: np.ndarray, y: np.ndarray, smoothing: float = 0.0) -> tuple[float, int]:
@@ -285,7 +328,7 @@ class DataParallel:
     def _receive(self) -> tuple[float, int]:
         """The worker's answer to the last command: (loss, correct)."""
         try:
-            answer = self._proc.stdout.readline().split(" ", 2)
+            answer = self._reader.readline().split(" ", 2)
         except BaseException:  # e.g. interrupted while waiting: the worker is out of step
             self.close_worker()
             raise
