@@ -30,7 +30,7 @@ def make_pages(folder: Path, count: int, seed: int) -> list[Path]:
     """Write ``count`` filled demo cards at 300 dpi, each as PNG and as Group 4 TIFF; return the files."""
     from PIL import Image
 
-    from formread.demo.card import LAYOUT_PATH, read_card_layout, render_card
+    from formread.demo.card import LAYOUT_PATH, marks_mm, read_card_layout, render_card
     from formread.demo.fill import load_test_digits, random_writer, write_field
     from formread.demo.scan import random_scan_settings, simulate_scan, to_bilevel
     from formread.demo.values import card_values
@@ -46,7 +46,7 @@ def make_pages(folder: Path, count: int, seed: int) -> list[Path]:
         for fld in layout.fields:
             write_field(card, fld, values[fld.name], writer, bank, 300, rng)
         settings = random_scan_settings(rng, dpi=300, page_mm=(layout.width_mm, layout.height_mm),
-                                        marks_mm=list(layout.marks), noise=(1.0, 2.0))
+                                        marks_mm=marks_mm(layout), noise=(1.0, 2.0))
         scan = simulate_scan(card, settings, rng)
         png = folder / f"page_{k + 1:02d}.png"
         Image.fromarray(scan).save(png, dpi=(300, 300))

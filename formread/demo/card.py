@@ -7,17 +7,15 @@ the card are invented.
 
 from __future__ import annotations
 
-import tomllib
-from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 
-from ..errors import LayoutError
+from ..imaging.layout import Layout, load_layout
 
-__all__ = ["LAYOUT_PATH", "CardField", "CardLayout", "read_card_layout", "render_card", "mm_to_px",
+__all__ = ["LAYOUT_PATH", "read_card_layout", "marks_mm", "render_card", "mm_to_px",
            "TITLE", "SUBTITLE", "PRINT_GREY"]
 
 LAYOUT_PATH = Path(__file__).with_name("layout.toml")
@@ -36,57 +34,14 @@ _LABELS = {
 }
 
 
-@dataclass(frozen=True)
-class CardField:
-    """One field of the card, in mm from the top-left corner (x right, y down)."""
-
-    name: str
-    kind: str
-    x: float
-    y: float
-    w: float
-    h: float
-    cells: int | None
-    max_digits: int | None
-    optional: bool
+def read_card_layout(path: Path = LAYOUT_PATH) -> Layout:
+    """The demo layout, read by the project's one layout parser (mm, x right, y down)."""
+    return load_layout(path)
 
 
-@dataclass(frozen=True)
-class CardLayout:
-    """The parts of the demo layout the card printer and writer need (mm, x right, y down)."""
-
-    width_mm: float
-    height_mm: float
-    marks: tuple[tuple[float, float, float], ...]   # (x centre, y centre, side)
-    header: tuple[float, float, float, float]        # (x, y, w, h)
-    fields: tuple[CardField, ...]
-
-    def field(self, name: str) -> CardField:
-        for f in self.fields:
-            if f.name == name:
-                return f
-        raise LayoutError(f"{LAYOUT_PATH}: no field {name!r}")
-
-
-def read_card_layout(path: Path = LAYOUT_PATH) -> CardLayout:
-    """Read the geometry of the demo layout (a file in the DEVELOPERS.md layout format)."""
-    try:
-        doc = tomllib.loads(Path(path).read_text(encoding="utf-8"))
-        form = doc["form"]
-        head = form["header"]
-        marks = tuple((float(m["x"]), float(m["y"]), float(m["size"])) for m in doc["marks"])
-        fields = tuple(
-            CardField(
-                name=f["name"], kind=f["kind"], x=float(f["x"]), y=float(f["y"]), w=float(f["w"]),
-                h=float(f["h"]), cells=f.get("cells"), max_digits=f.get("max_digits"),
-                optional=bool(f.get("optional", False)),
-            )
-            for f in doc["fields"]
-        )
-        return CardLayout(float(form["width_mm"]), float(form["height_mm"]), marks,
-                          (float(head["x"]), float(head["y"]), float(head["w"]), float(head["h"])), fields)
-    except (OSError, tomllib.TOMLDecodeError, KeyError, TypeError, ValueError) as e:
-        raise LayoutError(f"{path}: not a readable demo layout ({e.__class__.__name__}: {e})") from None
+def marks_mm(layout: Layout) -> list[tuple[float, float, float]]:
+    """The registration marks as (x centre, y centre, side) in mm."""
+    return [(m.x, m.y, m.size) for m in layout.marks]
 
 
 def mm_to_px(v: float, dpi: float) -> float:
@@ -111,17 +66,17 @@ def _text(d: ImageDraw.ImageDraw, x: float, y: float, s: str, size_mm: float, dp
 
 
 @lru_cache(maxsize=4)
-def _render(layout: CardLayout, dpi: int) -> bytes:
+def _render(layout: Layout, dpi: int) -> bytes:
     w_px, h_px = round(mm_to_px(layout.width_mm, dpi)), round(mm_to_px(layout.height_mm, dpi))
     im = Image.new("L", (w_px, h_px), 255)
     d = ImageDraw.Draw(im)
     thin = max(1, round(mm_to_px(0.3, dpi)))
     p = lambda v: round(mm_to_px(v, dpi))  # noqa: E731
 
-    for x, y, s in layout.marks:
+    for x, y, s in marks_mm(layout):
         d.rectangle([p(x - s / 2), p(y - s / 2), p(x + s / 2) - 1, p(y + s / 2) - 1], fill=0)
 
-    hx, hy, hw, hh = layout.header
+    hx, hy, hw, hh = layout.header.x, layout.header.y, layout.header.w, layout.header.h
     _text(d, hx + hw / 2, hy + hh * 0.32, TITLE, 6.5, dpi, anchor="mm")
     _text(d, hx + hw / 2, hy + hh * 0.80, SUBTITLE, 4.2, dpi, anchor="mm")
     d.line([p(20), p(hy + hh + 2), p(190), p(hy + hh + 2)], fill=PRINT_GREY, width=thin * 2)
@@ -157,7 +112,7 @@ def _render(layout: CardLayout, dpi: int) -> bytes:
     return np.asarray(im, dtype=np.uint8).tobytes()
 
 
-def render_card(layout: CardLayout, dpi: int) -> np.ndarray:
+def render_card(layout: Layout, dpi: int) -> np.ndarray:
     """Print the blank card at ``dpi``.
 
     Returns

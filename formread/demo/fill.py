@@ -14,7 +14,8 @@ import numpy as np
 from scipy import ndimage
 
 from ..datasets import mnist_raw, mnist_split_indices
-from .card import CardField, mm_to_px
+from ..imaging.layout import FieldSpec
+from .card import mm_to_px
 
 __all__ = ["DigitBank", "load_test_digits", "Writer", "random_writer", "write_field"]
 
@@ -137,7 +138,7 @@ def _stamp(page: np.ndarray, cover: np.ndarray, top: int, left: int, ink: float)
     page[r0:r1, c0:c1] = np.minimum(region, wet).round().astype(np.uint8)
 
 
-def write_field(page: np.ndarray, fld: CardField, text: str, writer: Writer, bank: DigitBank,
+def write_field(page: np.ndarray, fld: FieldSpec, text: str, writer: Writer, bank: DigitBank,
                 dpi: float, rng: np.random.Generator) -> None:
     """Write the digits ``text`` into field ``fld`` of ``page`` (in place).
 

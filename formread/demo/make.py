@@ -20,7 +20,7 @@ import numpy as np
 from PIL import Image
 
 from ..errors import ParameterError, check_param
-from .card import LAYOUT_PATH, read_card_layout, render_card
+from .card import LAYOUT_PATH, marks_mm, read_card_layout, render_card
 from .fill import load_test_digits, random_writer, write_field
 from .scan import random_scan_settings, simulate_scan, to_bilevel
 from .values import MISTAKE_KINDS, card_values
@@ -189,7 +189,7 @@ def make_demo(outdir: str | Path, *, count: int = 30, seed: int = 7,
                     write_field(card, fld, values[fld.name], writer, bank, f.dpi, rng)
                 settings = random_scan_settings(
                     rng, dpi=f.dpi, page_mm=(layout.width_mm, layout.height_mm),
-                    marks_mm=list(layout.marks), upside_down=f.upside_down, noise=_NOISE[f.fmt])
+                    marks_mm=marks_mm(layout), upside_down=f.upside_down, noise=_NOISE[f.fmt])
                 scans.append(simulate_scan(card, settings, rng))
                 used += writer.used
                 digits += len(writer.used)
