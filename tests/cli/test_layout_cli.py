@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from PIL import Image
+from clikit import one_line_error as _one_line_error
 from typer.testing import CliRunner
 
 from formread.cli.main import app
@@ -18,14 +19,6 @@ from synth import EXAMPLE_TOML, Transform, example_layout, render_form, render_p
 
 runner = CliRunner()
 DPI = 200
-
-
-def _one_line_error(res, *words):
-    assert res.exit_code == 1, res.output
-    err = res.stderr.strip()
-    assert err.startswith("formread: error:") and "\n" not in err, err
-    for w in words:
-        assert w in err, err
 
 
 def _save(gray: np.ndarray, path: Path) -> Path:

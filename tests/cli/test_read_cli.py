@@ -6,6 +6,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from clikit import one_line_error as _one_line_error
 from typer.testing import CliRunner
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "read"))   # the reading tests' helpers
@@ -30,14 +31,6 @@ def setup(tmp_path_factory):
     res = runner.invoke(app, ["read", str(scans), "--layout", str(demo_layout()), "--model", str(model),
                               "--out", str(out), "--workers", "1", "--quiet"])
     return {"base": base, "model": model, "scans": scans, "out": out, "first": res}
-
-
-def _one_line_error(res, *words):
-    assert res.exit_code == 1, res.output
-    err = res.stderr.strip()
-    assert err.startswith("formread: error:") and "\n" not in err, err
-    for w in words:
-        assert w in err, err
 
 
 def _pages(out):

@@ -5,6 +5,7 @@ import json
 import numpy as np
 import pytest
 from PIL import Image
+from clikit import one_line_error as _one_line_error
 from typer.testing import CliRunner
 
 from formread.cli.main import app
@@ -14,14 +15,6 @@ from formread.nn.modelfile import load_model
 runner = CliRunner()
 FAST = ["--arch", "lenet5", "--epochs", "2", "--batch-size", "32", "--no-affine", "--no-elastic",
         "--val-fraction", "0.2", "--quiet"]
-
-
-def _one_line_error(res, *words):
-    assert res.exit_code == 1, res.output
-    err = res.stderr.strip()
-    assert err.startswith("formread: error:") and "\n" not in err, err
-    for w in words:
-        assert w in err, err
 
 
 @pytest.fixture(scope="module")

@@ -1,9 +1,10 @@
 """Decoding with hand-made probability tables: rules, relations, confidence, decisions."""
 
+import functools
+from dataclasses import dataclass
 import itertools
 import json
 import math
-from dataclasses import dataclass, field
 
 import numpy as np
 import pytest
@@ -16,25 +17,10 @@ from formread.read.decode import (CONFIDENCE_MODEL, PLAIN, CandidateEvidence, Co
                                   decode_field, decode_page, evidence_from_digits, kbest_strings,
                                   unregistered_page)
 from formread.read.rules import compile_rules
+from fakes import FakeField as _FakeField, FakeLayout
 
 
-@dataclass
-class FakeField:
-    name: str
-    kind: str = "boxed"
-    cells: int | None = 4
-    max_digits: int | None = None
-    optional: bool = False
-    rules: dict = field(default_factory=dict)
-    threshold: float | None = None
-
-
-@dataclass
-class FakeLayout:
-    fields: list
-    relations: list = field(default_factory=list)
-    threshold: float = 0.9
-    source: str = "meter.toml"
+FakeField = functools.partial(_FakeField, cells=4)
 
 
 def table(*positions):

@@ -1,30 +1,10 @@
 """Field rules: compilation errors and evaluation (with small fakes of the layout objects)."""
 
-from dataclasses import dataclass, field
-
 import pytest
 
 from formread.errors import RuleError
+from fakes import FakeField, FakeLayout
 from formread.read.rules import check_field, compile_rules
-
-
-@dataclass
-class FakeField:
-    name: str
-    kind: str = "boxed"
-    cells: int | None = 8
-    max_digits: int | None = None
-    optional: bool = False
-    rules: dict = field(default_factory=dict)
-    threshold: float | None = None
-
-
-@dataclass
-class FakeLayout:
-    fields: list
-    relations: list = field(default_factory=list)
-    threshold: float = 0.9
-    source: str = "cards/meter.toml"
 
 
 def layout(**rules_by_field):
