@@ -170,7 +170,7 @@ def run_cli(args, work: Path) -> dict:
 def _extract(d: Path, cache: Path) -> None:
     """Imaging + network once per page; evidence saved in one npz (no pickle) plus a JSON index."""
     from formread.errors import FormreadError
-    from formread.imaging.layout import load_layout
+    from formread.form.layout import load_layout
     from formread.imaging.load import load_pages
     from formread.imaging.pipeline import process_page
     from formread.nn.modelfile import load_model
@@ -225,9 +225,9 @@ def _load_cache(cache: Path):
 
 def decode_cached(pages, layout_path: Path, threshold=None, **kw) -> list[dict]:
     """Re-decode cached evidence with the current decoder; records like ``fields.jsonl``."""
-    from formread.imaging.layout import load_layout
+    from formread.form.layout import load_layout
     from formread.read.decode import decode_page, unregistered_page
-    from formread.read.rules import compile_rules
+    from formread.form.rules import compile_rules
 
     layout = load_layout(layout_path)
     compiled = compile_rules(layout)

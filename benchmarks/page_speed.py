@@ -59,7 +59,7 @@ def make_pages(folder: Path, count: int, seed: int) -> list[Path]:
 def measure(files: list[Path], repeat: int) -> dict:
     """Time load + process_page over ``files``, ``repeat`` times; seconds per page and per step."""
     from formread.demo.card import LAYOUT_PATH
-    from formread.imaging.layout import load_layout
+    from formread.form.layout import load_layout
     from formread.imaging.load import load_pages
     from formread.imaging.pipeline import STEPS, process_page
 

@@ -2,7 +2,7 @@
 
 Neutral (imports nothing of formread), so the network, the review side and the CLI share it.
 The ledger keeps its own variant with fixed temp names under its write lock
-(``formread.read.ledger.atomic_write``).
+(``formread.ledger.store.atomic_write``).
 """
 
 from __future__ import annotations

@@ -50,7 +50,7 @@ def proof_cmd(
     """
     import io
 
-    from ..imaging.layout import load_layout
+    from ..form.layout import load_layout
     from ..imaging.pipeline import process_page
     from ..imaging.proof import render_proof
 
@@ -92,7 +92,7 @@ def draft_cmd(
     and check the result with `formread layout proof`.
     """
     from ..imaging.draft import draft_layout
-    from ..imaging.layout import parse_layout
+    from ..form.layout import parse_layout
 
     target = out if out is not None else blank_form.with_name(f"{blank_form.stem}.draft.toml")
     if target.exists() and not force:

@@ -17,7 +17,7 @@ def samples_cmd(
     to: Path = typer.Option(Path("samples"), "--to", help="Samples folder (DIR/<digit>/*.png + manifest.jsonl)."),
 ):
     """Add labelled digit images from confirmed and corrected fields to a samples folder."""
-    from ..samples import collect_samples
+    from ..learn.samples import collect_samples
 
     rep = collect_samples(outdir, to)
     typer.echo(f"{rep.added} new digit images from {rep.fields_used} fields into {to} "
@@ -44,7 +44,7 @@ def retrain_cmd(
 ):
     """Fine-tune the model on local samples; write a new version; promote it only if it helps."""
     from ..paths import default_model_path
-    from ..retrain import retrain
+    from ..learn.retrain import retrain
 
     model_path = model or default_model_path()
     bar = ProgressBar("fine-tuning", enabled=not quiet and not as_json)

@@ -93,7 +93,8 @@ def train_cmd(
     from ..nn.augment import AugmentConfig
     from ..nn.model import ARCHITECTURES, build_model
     from ..nn.modelfile import save_model
-    from ..nn.train import TrainConfig, evaluate, held_out_parts, load_named, train
+    from ..learn.datasets import held_out_parts, load_named
+    from ..nn.train import TrainConfig, evaluate, train
     from ..errors import check_param
 
     check_param(arch in ARCHITECTURES, "arch", f"one of {', '.join(sorted(ARCHITECTURES))}", arch)
@@ -184,7 +185,8 @@ def evaluate_cmd(
 ):
     """Accuracy, per-class precision and recall, confusion matrix and calibration of MODEL."""
     from ..nn.modelfile import load_model
-    from ..nn.train import evaluate, load_named
+    from ..learn.datasets import load_named
+    from ..nn.train import evaluate
 
     model, header = load_model(model_path)
     data = load_named(dataset, part)

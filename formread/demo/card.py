@@ -13,7 +13,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 
-from ..imaging.layout import Layout, load_layout
+from ..form.layout import Layout, load_layout
 
 __all__ = ["LAYOUT_PATH", "read_card_layout", "marks_mm", "render_card", "mm_to_px",
            "TITLE", "SUBTITLE", "PRINT_GREY"]

@@ -1,6 +1,6 @@
 """Handwriting on the demo card: MNIST digits of the held-out test part, written as ink on paper.
 
-Only the test part of the MNIST sample (``formread.datasets.mnist_split_indices()["test"]``)
+Only the test part of the MNIST sample (``formread.learn.datasets.mnist_split_indices()["test"]``)
 is ever used here: the shipped model never trained on those images, so the demo reads
 handwriting the model has not seen.  Every digit drawn records its MNIST index.
 """
@@ -13,8 +13,8 @@ from functools import lru_cache
 import numpy as np
 from scipy import ndimage
 
-from ..datasets import mnist_raw, mnist_split_indices
-from ..imaging.layout import FieldSpec
+from ..learn.datasets import mnist_raw, mnist_split_indices
+from ..form.layout import FieldSpec
 from .card import mm_to_px
 
 __all__ = ["DigitBank", "load_test_digits", "Writer", "random_writer", "write_field"]

@@ -6,7 +6,7 @@ import datetime as dt
 
 import numpy as np
 
-from ..read.checkdigits import luhn_compute
+from ..form.checkdigits import luhn_compute
 
 __all__ = ["card_values", "MISTAKE_KINDS"]
 

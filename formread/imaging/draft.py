@@ -19,7 +19,7 @@ from scipy import ndimage
 
 from ..errors import LayoutError
 from .binarize import binarize
-from .layout import FieldSpec, Layout, Mark
+from ..form.layout import FieldSpec, Layout, Mark
 
 __all__ = ["draft_layout", "find_marks", "find_boxes", "Box"]
 

@@ -33,7 +33,7 @@ import numpy as np
 from scipy import ndimage
 
 from ..errors import RegistrationError, check_param
-from .layout import Layout
+from ..form.layout import Layout
 from .load import Page
 
 __all__ = ["Registration", "register_page", "fit_affine", "apply_affine", "WORK_DPI"]

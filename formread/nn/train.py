@@ -41,7 +41,7 @@ from .model import Sequential
 from .optim import SGD, Adam, cosine_schedule, step_schedule
 from .parallel import DataParallel
 
-__all__ = ["TrainConfig", "TrainResult", "train", "stratified_split", "predict_logits",
+__all__ = ["TrainConfig", "TrainResult", "train", "stratified_split", "predict_logits", "evaluate",
            "CHECKPOINT_FORMAT"]
 
 log = logging.getLogger(__name__)
@@ -466,78 +466,7 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
     )
 
 
-# --- data by name, held-out parts, the model header ---------------------------------------------
-
-def load_array_file(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
-    """Labelled images from an ``.npz`` with arrays ``x`` and ``y`` (no pickle).
-
-    ``x`` : (N, 28, 28) or (N, 1, 28, 28), values in [0, 1], already in the network's input
-    form (formread.digits normalisation); ``y`` : (N,) integers 0-9.
-
-    Returns
-    -------
-    x : ndarray of shape (N, 1, 28, 28), float32; y : ndarray of shape (N,), int64
-
-    Raises
-    ------
-    DataError naming the file and the problem (missing, unreadable, wrong size, bad labels).
-    """
-    from ..digits import SIZE
-
-    p = Path(path)
-    if not p.is_file():
-        raise DataError(f"{p}: array file not found")
-    try:
-        with np.load(p, allow_pickle=False) as npz:
-            if "x" not in npz.files or "y" not in npz.files:
-                found = ", ".join(npz.files) or "none"
-                raise DataError(f"{p}: array file must hold arrays 'x' and 'y'; found {found}")
-            x, y = npz["x"], npz["y"]
-    except (OSError, ValueError, EOFError):
-        raise DataError(f"{p}: not a readable .npz array file") from None
-    if x.ndim == 3:
-        x = x[:, None]
-    if x.ndim != 4 or x.shape[1:] != (1, SIZE, SIZE):
-        raise DataError(f"{p}: images must be of shape (N, {SIZE}, {SIZE}) or (N, 1, {SIZE}, {SIZE}); "
-                        f"got {tuple(x.shape)}")
-    if y.shape != (x.shape[0],):
-        raise DataError(f"{p}: labels must be of shape ({x.shape[0]},) to match the images; "
-                        f"got {tuple(y.shape)}")
-    if not np.issubdtype(y.dtype, np.integer) or (y.size and (y.min() < 0 or y.max() > 9)):
-        raise DataError(f"{p}: labels must be integers 0-9")
-    if (not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x))
-            or (x.size and (x.min() < 0 or x.max() > 1))):
-        raise DataError(f"{p}: image values must be finite numbers in [0, 1]")
-    if len(y) == 0:
-        raise DataError(f"{p}: array file holds no images")
-    return x.astype(np.float32), y.astype(np.int64)
-
-
-def load_named(name: str, part: str = "train"):
-    """A dataset by name: those of :func:`formread.datasets.load_dataset`, plus ``npz:FILE``.
-
-    Returns
-    -------
-    formread.datasets.Dataset with x of shape (N, 1, 28, 28) float32 and y of shape (N,) int64
-    """
-    from ..datasets import Dataset, load_dataset
-
-    if name.startswith("npz:"):
-        x, y = load_array_file(name.split(":", 1)[1])
-        return Dataset(x, y, name)
-    if name not in ("digits", "mnist", "default") and not name.startswith("samples:"):
-        raise DataError(f"unknown dataset {name!r}: use default, mnist, digits, samples:DIR or npz:FILE")
-    return load_dataset(name, part)
-
-
-HELD_OUT = {"default": ("mnist", "digits"), "mnist": ("mnist",), "digits": ("digits",)}
-"""Dataset name -> the datasets whose ``test`` part is held out from its ``train`` part."""
-
-
-def held_out_parts(name: str) -> list[str]:
-    """Names like ``"mnist:test"`` of the held-out parts that go with training dataset ``name``."""
-    return [f"{d}:test" for d in HELD_OUT.get(name, ())]
-
+# --- evaluation ------------------------------------------------------------------------------
 
 def evaluate(model: Sequential, x: np.ndarray, y: np.ndarray, temperature: float = 1.0) -> dict:
     """Evaluation figures of ``model`` on (x, y), raw and temperature-scaled.

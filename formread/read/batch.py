@@ -31,16 +31,16 @@ import numpy as np
 from PIL import Image
 
 from ..errors import FormreadError, ImageError, RegistrationError, check_param
-from ..imaging.layout import load_layout
+from ..form.layout import load_layout
 from ..imaging.load import iter_pages
 from ..imaging.pipeline import process_page
 from ..nn.modelfile import load_model
 from ..paths import default_model_path
 from .decode import decode_page, unregistered_page
-from .ledger import FieldRow, Ledger, PageRow, open_ledger, page_hash
+from ..ledger.store import FieldRow, Ledger, PageRow, open_ledger, page_hash
 from .outputs import write_outputs
 from .recognise import recognise_page
-from .rules import compile_rules
+from ..form.rules import compile_rules
 
 __all__ = ["SCAN_SUFFIXES", "DEFAULT_THRESHOLD", "PAGE_DPI", "BatchReport", "list_scans", "read_batch"]
 

@@ -81,7 +81,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from formread.errors import check_param
-from formread.read.rules import CompiledRules, FieldRules, check_value
+from formread.form.rules import CompiledRules, FieldRules, check_value
 
 __all__ = [
     "CandidateEvidence", "FieldEvidence", "FieldReading", "decode_page", "decode_field",
@@ -266,7 +266,7 @@ class FieldReading:
     digit_probs : list of list of (int, float)
         Per position of the reading, its top 3 digits with probabilities.
     rules : dict of str to bool
-        Own rules (see ``formread.read.rules.check_value``) plus ``relation`` when
+        Own rules (see ``formread.form.rules.check_value``) plus ``relation`` when
         a relation was evaluated.
     decision : str
         'accepted' or 'review'.

@@ -11,7 +11,7 @@ import re
 from pathlib import Path
 
 from ..errors import DataError, LayoutError
-from .ledger import atomic_write, open_ledger
+from ..ledger.store import atomic_write, open_ledger
 from .score import score_readings, write_curve_png
 from .tune import choose_threshold
 
@@ -126,7 +126,7 @@ def store_threshold(layout_path, threshold: float) -> None:
     LayoutError
         The file cannot be read, has no ``[form]`` table, or would no longer parse.
     """
-    from ..imaging.layout import parse_layout
+    from ..form.layout import parse_layout
 
     path = Path(layout_path)
     try:

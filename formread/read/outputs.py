@@ -12,7 +12,7 @@ import io
 import json
 from pathlib import Path
 
-from .ledger import Ledger, atomic_write
+from ..ledger.store import Ledger, atomic_write
 
 __all__ = ["READINGS_CSV", "FIELDS_JSONL", "field_value", "field_status", "write_outputs"]
 

@@ -21,9 +21,9 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import LayoutError, LedgerError, ReviewError, RuleError
-from ..imaging.layout import load_layout
-from ..read.rules import check_field, check_relations, compile_rules
-from ..read.schema import SCHEMA_VERSION
+from ..form.layout import load_layout
+from ..form.rules import check_field, check_relations, compile_rules
+from ..ledger.schema import SCHEMA_VERSION
 
 __all__ = [
     "LEDGER_NAME", "ACTIONS", "STATUS_WORDS", "DEFAULT_MAX_DIGITS",

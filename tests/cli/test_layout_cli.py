@@ -12,7 +12,7 @@ from clikit import one_line_error as _one_line_error
 from typer.testing import CliRunner
 
 from formread.cli.main import app
-from formread.imaging.layout import load_layout
+from formread.form.layout import load_layout
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "imaging"))
 from synth import EXAMPLE_TOML, Transform, example_layout, render_form, render_page  # noqa: E402

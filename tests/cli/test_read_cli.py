@@ -13,7 +13,7 @@ sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "read"))   # the re
 from readkit import demo_layout, readings, tiny_model, write_copies  # noqa: E402
 
 from formread.cli.main import app  # noqa: E402
-from formread.imaging.layout import load_layout  # noqa: E402
+from formread.form.layout import load_layout  # noqa: E402
 from formread.paths import demo_dir  # noqa: E402
 
 runner = CliRunner()

@@ -12,14 +12,14 @@ import numpy as np
 import pytest
 from PIL import Image
 
-from formread.datasets import mnist_raw, mnist_split_indices
+from formread.learn.datasets import mnist_raw, mnist_split_indices
 from formread.demo import demo_layout_path, make_demo
 from formread.demo.card import marks_mm, read_card_layout
 from formread.demo.scan import ScanSettings, random_scan_settings, scan_matrix
 from formread.demo.values import card_values
-from formread.imaging.layout import load_layout
+from formread.form.layout import load_layout
 from formread.imaging.load import load_pages
-from formread.read.checkdigits import luhn_compute, luhn_valid
+from formread.form.checkdigits import luhn_compute, luhn_valid
 from formread.errors import ParameterError
 
 COUNT = 8   # smallest set with every format: 3-page TIFF, 2-page PDF, PNG, TIFF, JPEG (one upside down)

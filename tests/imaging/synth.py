@@ -29,7 +29,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from PIL import Image, ImageDraw, ImageFilter
 
-from formread.imaging.layout import Layout, Region, parse_layout
+from formread.form.layout import Layout, Region, parse_layout
 
 __all__ = ["EXAMPLE_TOML", "example_layout", "Transform", "Truth", "render_page", "render_form",
            "warp", "degrade", "corners_px", "to_pixels", "truth_matrix", "DIGIT_STROKES"]

@@ -8,7 +8,7 @@ import pytest
 from digit_pages import S, blank_page, draw_boxes, draw_rect
 from formread.errors import LayoutError
 from formread.imaging.draft import draft_layout
-from formread.imaging.layout import parse_layout
+from formread.form.layout import parse_layout
 from formread.imaging.load import Page
 from formread.imaging.pipeline import process_page
 from formread.imaging.proof import PALETTE, render_proof
@@ -132,7 +132,7 @@ def test_draft_without_marks_is_refused():
 def test_draft_of_the_demo_card_finds_its_fields():
     # the demo's own blank card (formread.demo): every layout field is found within 0.5 mm
     from formread.demo.card import LAYOUT_PATH, read_card_layout, render_card
-    from formread.imaging.layout import load_layout
+    from formread.form.layout import load_layout
 
     card = render_card(read_card_layout(LAYOUT_PATH), 200)
     lay = draft_layout(Page(card, 200.0, "card.png", 1))

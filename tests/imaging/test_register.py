@@ -16,7 +16,7 @@ from synth import Transform, corners_px, degrade, example_layout, render_page, t
 from formread.errors import RegistrationError
 from formread.imaging.binarize import binarize
 from formread.imaging.deskew import estimate_skew, rotate
-from formread.imaging.layout import parse_layout
+from formread.form.layout import parse_layout
 from formread.imaging.load import Page
 from formread.imaging.register import Registration, apply_affine, fit_affine, register_page
 

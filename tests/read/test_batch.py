@@ -81,7 +81,7 @@ def test_threshold_from_option_else_layout_else_default(tmp_path, model):
     no_thr = tmp_path / "plain.toml"
     no_thr.write_text("\n".join(line for line in text.splitlines() if not line.startswith("threshold")) + "\n")
     read_batch(scans, no_thr, tmp_path / "b", model_path=model, workers=1)
-    from formread.imaging.layout import load_layout
+    from formread.form.layout import load_layout
 
     layout_thr = load_layout(demo_layout()).threshold
     read_batch(scans, demo_layout(), tmp_path / "c", model_path=model, workers=1)

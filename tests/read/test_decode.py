@@ -12,11 +12,11 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from formread.errors import ParameterError
-from formread.read.checkdigits import luhn_compute, luhn_valid
+from formread.form.checkdigits import luhn_compute, luhn_valid
 from formread.read.decode import (CONFIDENCE_MODEL, PLAIN, CandidateEvidence, ConfidenceModel, FieldEvidence,
                                   decode_field, decode_page, evidence_from_digits, kbest_strings,
                                   unregistered_page)
-from formread.read.rules import compile_rules
+from formread.form.rules import compile_rules
 from fakes import FakeField as _FakeField, FakeLayout
 
 

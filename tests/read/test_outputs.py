@@ -3,7 +3,7 @@
 import csv
 import json
 
-from formread.read.ledger import FieldRow, PageRow, open_ledger
+from formread.ledger.store import FieldRow, PageRow, open_ledger
 from formread.read.outputs import write_outputs
 
 

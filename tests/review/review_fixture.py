@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 
-from formread.datasets import mnist_raw, mnist_split_indices
-from formread.read.schema import SCHEMA, SCHEMA_VERSION
+from formread.learn.datasets import mnist_raw, mnist_split_indices
+from formread.ledger.schema import SCHEMA, SCHEMA_VERSION
 
 DPI = 200
 MM = DPI / 25.4

@@ -8,7 +8,7 @@ import re
 import pytest
 
 from formread.errors import LayoutError
-from formread.imaging.layout import FieldSpec, Layout, Mark, Region, load_layout, parse_layout
+from formread.form.layout import FieldSpec, Layout, Mark, Region, load_layout, parse_layout
 
 # The example of DEVELOPERS.md ("Layout file"), with the three more marks a real form has.
 EXAMPLE = """
@@ -52,7 +52,7 @@ h = 7.0
 cells = 8                    # boxed only (equal widths across w)
 optional = false             # may be left empty
 threshold = 0.95             # optional per-field acceptance threshold
-[fields.rules]               # all optional, evaluated by formread.read.rules
+[fields.rules]               # all optional, evaluated by formread.form.rules
 length = [7, 8]              # allowed digit count (int or [min, max])
 range = [1, 240]             # allowed integer value
 date = "DDMMYYYY"            # a real calendar date in this pattern
@@ -191,7 +191,7 @@ BAD = [
     (EXAMPLE + "\n[[relations]]\nrule = '  '\n", r"relation 2: 'rule' is empty"),
     ("relations = 3\n" + EXAMPLE.split("[[relations]]")[0], r"layout: 'relations' must be an array of tables"),
     ("fields = [1, 2]\n" + EXAMPLE.split("[[fields]]")[0], r"layout: 'fields' must be an array of tables"),
-    (EXAMPLE.replace("[fields.rules]               # all optional, evaluated by formread.read.rules\n"
+    (EXAMPLE.replace("[fields.rules]               # all optional, evaluated by formread.form.rules\n"
                      "length = [7, 8]", "rules = [7, 8]\n[fields.other]\nlength = 1"),
      r"field 'member_number': unknown key 'other'"),
     (EXAMPLE.split("[fields.rules]")[0].replace("optional = false ", "rules = 5 "),

@@ -31,8 +31,8 @@ import calendar
 from dataclasses import dataclass, field
 
 from formread.errors import RuleError
-from formread.read.checkdigits import SCHEMES
-from formread.read.expr import Relation, parse_relation
+from formread.form.checkdigits import SCHEMES
+from formread.form.expr import Relation, parse_relation
 
 __all__ = ["FieldRules", "CompiledRules", "compile_rules", "check_field", "check_value", "check_relations",
            "CHECKS", "DATE_PATTERNS", "RULE_NAMES"]
@@ -139,7 +139,7 @@ def compile_rules(layout) -> CompiledRules:
 
     Parameters
     ----------
-    layout : formread.imaging.layout.Layout
+    layout : formread.form.layout.Layout
         Uses ``layout.source`` (file name for messages), ``layout.fields``
         (FieldSpec: name, kind, optional, rules, threshold) and ``layout.relations``
         (list of rule strings; ``{"rule": text}`` tables are accepted too).

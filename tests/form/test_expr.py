@@ -3,7 +3,7 @@
 import pytest
 
 from formread.errors import RuleError
-from formread.read.expr import parse_relation
+from formread.form.expr import parse_relation
 
 
 def test_litres_relation():

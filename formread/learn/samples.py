@@ -1,7 +1,7 @@
 """Labelled local handwriting samples, taken from the fields a clerk confirmed or corrected.
 
 The samples folder has the layout every training command reads (``DIR/<digit>/*.png``,
-see :func:`formread.datasets.load_samples_folder`) plus ``manifest.jsonl``: one record
+see :func:`formread.learn.datasets.load_samples_folder`) plus ``manifest.jsonl``: one record
 per image with the page it came from (file, page number, content hash), the field, the
 position in the field, the reviewer and the time it was added.
 
@@ -23,9 +23,9 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from .errors import DataError, LedgerError
-from .fileio import atomic_write
-from .review.actions import connect, list_decided, load_digits
+from ..errors import DataError, LedgerError
+from ..fileio import atomic_write
+from ..review.actions import connect, list_decided, load_digits
 
 __all__ = ["SamplesReport", "collect_samples", "MANIFEST"]
 

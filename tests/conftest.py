@@ -1,10 +1,18 @@
-"""Shared fixtures of the review tests: a small ledger made by review_fixture."""
+"""Fixtures shared across test folders, and the folders of shared test helpers on the import path."""
 
 import shutil
+import sqlite3
+import sys
+from pathlib import Path
 
 import pytest
 
-from review_fixture import make_ledger
+_HERE = Path(__file__).resolve().parent
+for _sub in ("review", "read", "imaging", "cli"):      # review_fixture, fakes, readkit, synth, clikit, ...
+    if str(_HERE / _sub) not in sys.path:
+        sys.path.insert(0, str(_HERE / _sub))
+
+from review_fixture import make_ledger  # noqa: E402
 
 
 @pytest.fixture(scope="session")
@@ -16,14 +24,13 @@ def _ledger_template(tmp_path_factory):
 
 @pytest.fixture
 def ledger(_ledger_template, tmp_path):
-    """(outdir, info): a fresh copy of the fixture ledger for each test."""
+    """(outdir, info): a fresh copy of the review fixture ledger for each test."""
     base, info = _ledger_template
     out = tmp_path / "out"
     shutil.copytree(base / "out", out)
     layout = tmp_path / "out_layout.toml"
     shutil.copy(info["layout"], layout)
     # the run names the layout by absolute path: point it at this copy
-    import sqlite3
     conn = sqlite3.connect(out / "ledger.sqlite", isolation_level=None)
     conn.execute("UPDATE runs SET layout_path = ?", (str(layout),))
     conn.close()

@@ -4,7 +4,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from formread.read import checkdigits as cd
+from formread.form import checkdigits as cd
 
 
 def test_luhn_published_example():

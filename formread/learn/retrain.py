@@ -1,6 +1,6 @@
 """Fine-tune the model in use on a clerk's local samples, and promote it only when it helps.
 
-Local samples (``DIR/<digit>/*.png``, see :mod:`formread.samples`) are split once, stratified
+Local samples (``DIR/<digit>/*.png``, see :mod:`formread.learn.samples`) are split once, stratified
 and seeded, into a fine-tuning part and a held-out part.  The current model is fine-tuned on
 the fine-tuning part mixed with a sample of its own original training data (so it does not
 forget the writers it knew), with the same augmentation as in training, and its temperature is
@@ -26,12 +26,13 @@ from typing import Callable
 import numpy as np
 
 from .datasets import Dataset, load_samples_folder
-from .errors import DataError, check_param
-from .fileio import atomic_write
-from .nn.augment import AugmentConfig
-from .nn.model import build_model
-from .nn.modelfile import load_model, save_model
-from .nn.train import TrainConfig, evaluate, held_out_parts, load_named, stratified_split, train
+from ..errors import DataError, check_param
+from ..fileio import atomic_write
+from ..nn.augment import AugmentConfig
+from ..nn.model import build_model
+from ..nn.modelfile import load_model, save_model
+from ..nn.train import TrainConfig, evaluate, stratified_split, train
+from .datasets import held_out_parts, load_named
 
 __all__ = ["RetrainReport", "retrain", "next_version_path", "promote", "IN_USE"]
 

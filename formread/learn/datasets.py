@@ -17,17 +17,19 @@ ever trained on them.  Every image goes through :func:`formread.digits.normalize
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
-from .digits import normalize_batch, upscale_small
-from .errors import DataError
+from ..digits import SIZE, normalize_batch, upscale_small
+from ..errors import DataError
 
 __all__ = [
     "MNIST_SPLIT_SEED", "PARTS", "Dataset", "load_dataset", "digits_raw", "digits_split_indices",
     "mnist_raw", "mnist_split_indices", "load_samples_folder", "SAMPLE_SUFFIXES",
+    "load_array_file", "load_named", "HELD_OUT", "held_out_parts",
 ]
 
 MNIST_SPLIT_SEED = 20261202
@@ -208,3 +210,70 @@ def load_dataset(name: str, part: str = "all") -> Dataset:
     if name.startswith("samples:"):
         return load_samples_folder(name.split(":", 1)[1])
     raise DataError(f"unknown dataset {name!r}: use digits, mnist, default or samples:DIR")
+
+
+def load_array_file(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
+    """Labelled images from an ``.npz`` with arrays ``x`` and ``y`` (no pickle).
+
+    ``x`` : (N, 28, 28) or (N, 1, 28, 28), values in [0, 1], already in the network's input
+    form (formread.digits normalisation); ``y`` : (N,) integers 0-9.
+
+    Returns
+    -------
+    x : ndarray of shape (N, 1, 28, 28), float32; y : ndarray of shape (N,), int64
+
+    Raises
+    ------
+    DataError naming the file and the problem (missing, unreadable, wrong size, bad labels).
+    """
+    p = Path(path)
+    if not p.is_file():
+        raise DataError(f"{p}: array file not found")
+    try:
+        with np.load(p, allow_pickle=False) as npz:
+            if "x" not in npz.files or "y" not in npz.files:
+                found = ", ".join(npz.files) or "none"
+                raise DataError(f"{p}: array file must hold arrays 'x' and 'y'; found {found}")
+            x, y = npz["x"], npz["y"]
+    except (OSError, ValueError, EOFError):
+        raise DataError(f"{p}: not a readable .npz array file") from None
+    if x.ndim == 3:
+        x = x[:, None]
+    if x.ndim != 4 or x.shape[1:] != (1, SIZE, SIZE):
+        raise DataError(f"{p}: images must be of shape (N, {SIZE}, {SIZE}) or (N, 1, {SIZE}, {SIZE}); "
+                        f"got {tuple(x.shape)}")
+    if y.shape != (x.shape[0],):
+        raise DataError(f"{p}: labels must be of shape ({x.shape[0]},) to match the images; "
+                        f"got {tuple(y.shape)}")
+    if not np.issubdtype(y.dtype, np.integer) or (y.size and (y.min() < 0 or y.max() > 9)):
+        raise DataError(f"{p}: labels must be integers 0-9")
+    if (not np.issubdtype(x.dtype, np.number) or not np.all(np.isfinite(x))
+            or (x.size and (x.min() < 0 or x.max() > 1))):
+        raise DataError(f"{p}: image values must be finite numbers in [0, 1]")
+    if len(y) == 0:
+        raise DataError(f"{p}: array file holds no images")
+    return x.astype(np.float32), y.astype(np.int64)
+
+
+def load_named(name: str, part: str = "train"):
+    """A dataset by name: those of :func:`formread.learn.datasets.load_dataset`, plus ``npz:FILE``.
+
+    Returns
+    -------
+    formread.learn.datasets.Dataset with x of shape (N, 1, 28, 28) float32 and y of shape (N,) int64
+    """
+    if name.startswith("npz:"):
+        x, y = load_array_file(name.split(":", 1)[1])
+        return Dataset(x, y, name)
+    if name not in ("digits", "mnist", "default") and not name.startswith("samples:"):
+        raise DataError(f"unknown dataset {name!r}: use default, mnist, digits, samples:DIR or npz:FILE")
+    return load_dataset(name, part)
+
+
+HELD_OUT = {"default": ("mnist", "digits"), "mnist": ("mnist",), "digits": ("digits",)}
+"""Dataset name -> the datasets whose ``test`` part is held out from its ``train`` part."""
+
+
+def held_out_parts(name: str) -> list[str]:
+    """Names like ``"mnist:test"`` of the held-out parts that go with training dataset ``name``."""
+    return [f"{d}:test" for d in HELD_OUT.get(name, ())]

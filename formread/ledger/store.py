@@ -6,7 +6,7 @@ and the files they point at) is committed in one transaction; the page's image
 files are written first (temp file + ``os.replace``) under the page id that the
 transaction will use, so a kill leaves at most orphan files, which the next run
 overwrites when it gives the same id to the next page.  The schema is the shared
-contract in :mod:`formread.read.schema`.
+contract in :mod:`formread.ledger.schema`.
 """
 
 from __future__ import annotations

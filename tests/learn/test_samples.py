@@ -1,12 +1,12 @@
-"""Local samples from a clerk's decisions (formread.samples)."""
+"""Local samples from a clerk's decisions (formread.learn.samples)."""
 
 import json
 
 import numpy as np
 
-from formread.datasets import load_samples_folder
+from formread.learn.datasets import load_samples_folder
 from formread.review.actions import connect, field_detail, load_digits, save_decision
-from formread.samples import MANIFEST, collect_samples
+from formread.learn.samples import MANIFEST, collect_samples
 
 
 def _decide(out, field_id, action, value=None, reviewer="ines"):
