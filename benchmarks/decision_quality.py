@@ -173,13 +173,12 @@ def _extract(d: Path, cache: Path) -> None:
     from formread.form.layout import load_layout
     from formread.imaging.load import load_pages
     from formread.imaging.pipeline import process_page
-    from formread.nn.modelfile import load_model
     from formread.paths import default_model_path
+    from formread.read.bundle import load_bundle
     from formread.read.recognise import recognise_page
 
     layout = load_layout(d / "layout.toml")
-    model, header = load_model(default_model_path())
-    temp = float(header.get("temperature", 1.0))
+    bundle = load_bundle(default_model_path())
     arrays, index = {}, []
     for scan in _scans(d):
         for page in load_pages(scan):
@@ -190,7 +189,7 @@ def _extract(d: Path, cache: Path) -> None:
             except FormreadError as e:
                 entry["error"] = str(e)
                 continue
-            ev = recognise_page(pd.fields, model, temperature=temp)
+            ev = recognise_page(pd.fields, bundle)
             for name, fe in ev.items():
                 key = f"{len(index) - 1}/{name}"
                 entry["fields"][name] = {"doubtful": fe.doubtful, "reason": fe.reason,
@@ -223,18 +222,24 @@ def _load_cache(cache: Path):
     return pages
 
 
-def decode_cached(pages, layout_path: Path, threshold=None, **kw) -> list[dict]:
-    """Re-decode cached evidence with the current decoder; records like ``fields.jsonl``."""
+def decode_cached(pages, layout_path: Path, threshold=None, confidence=None, **kw) -> list[dict]:
+    """Re-decode cached evidence with the current decoder; records like ``fields.jsonl``.
+
+    ``confidence``: the decoder constants (default: those of the model bundle in use)."""
     from formread.form.layout import load_layout
+    from formread.form.thresholds import resolve_thresholds
+    from formread.paths import default_model_path
+    from formread.read.bundle import load_bundle
     from formread.read.decode import decode_page, unregistered_page
-    from formread.form.rules import compile_rules
 
     layout = load_layout(layout_path)
-    compiled = compile_rules(layout)
+    bundle = load_bundle(default_model_path())
+    confidence = bundle.decoder if confidence is None else confidence
+    thresholds = resolve_thresholds(layout, explicit=threshold, fitted=bundle.fitted_threshold(layout.name))
     records = []
     for source, page_number, ev in pages:
-        rs = unregistered_page(layout, threshold=threshold) if ev is None else \
-            decode_page(ev, compiled, layout, threshold=threshold, **kw)
+        rs = unregistered_page(layout, thresholds=thresholds) if ev is None else \
+            decode_page(ev, layout, confidence=confidence, thresholds=thresholds, **kw)
         for name, r in rs.items():
             rec = r.to_record()
             rec.update(source=source, page_number=page_number, field=name)

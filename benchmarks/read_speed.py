@@ -62,7 +62,7 @@ def main(argv=None) -> int:
         load_before = os.getloadavg()[0]
         cpu0 = _cpu_seconds()
         t0 = time.perf_counter()
-        rep = read_batch(scans, pages_dir / "layout.toml", out, model_path=args.model, workers=args.workers,
+        rep = read_batch(scans, pages_dir / "layout.toml", out, bundle=args.model, workers=args.workers,
                          command="benchmarks/read_speed.py")
         wall = time.perf_counter() - t0
         cpu = _cpu_seconds() - cpu0

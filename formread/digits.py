@@ -16,6 +16,8 @@ import numpy as np
 from PIL import Image
 from scipy import ndimage
 
+from .errors import ParameterError
+
 __all__ = ["SIZE", "BOX", "NORMALISATION", "normalize_digit", "normalize_batch", "upscale_small"]
 
 SIZE = 28
@@ -44,7 +46,7 @@ def normalize_digit(ink: np.ndarray) -> np.ndarray:
     """
     a = np.asarray(ink, dtype=np.float32)
     if a.ndim != 2:
-        raise ValueError(f"ink must be a 2-D array; got shape {a.shape}")
+        raise ParameterError(f"ink must be a 2-D array; got shape {a.shape}")
     out = np.zeros((SIZE, SIZE), np.float32)
     peak = float(a.max()) if a.size else 0.0
     if not np.isfinite(peak) or peak <= 0:

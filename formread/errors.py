@@ -7,7 +7,7 @@ Every message is one line and names the file (and page, field) it concerns.
 __all__ = [
     "FormreadError", "DataError", "ModelFileError", "ImageError", "LayoutError",
     "RegistrationError", "SegmentationError", "RuleError", "LedgerError",
-    "ReviewError", "ParameterError",
+    "ReviewError", "ParameterError", "ComputeError", "one_line", "check_param",
 ]
 
 
@@ -43,8 +43,8 @@ class SegmentationError(FormreadError):
     """A field cannot be split into digits."""
 
 
-class RuleError(FormreadError):
-    """A field rule is malformed or names an unknown field."""
+class RuleError(LayoutError):
+    """A field rule or relation of a layout is malformed or names an unknown field."""
 
 
 class LedgerError(FormreadError):
@@ -53,6 +53,22 @@ class LedgerError(FormreadError):
 
 class ReviewError(FormreadError):
     """A review action is refused (stale, malformed, unknown field)."""
+
+
+class ComputeError(FormreadError):
+    """The network's worker processes failed (a worker died or stopped answering)."""
+
+
+def one_line(error: BaseException) -> str:
+    """The first non-empty line of an error's message, or its class name when it has none.
+
+    The one place where an error becomes the line a person reads (the CLI edge, a failed page's
+    recorded reason, a skipped sample's reason).
+    """
+    for line in str(error).splitlines():
+        if line.strip():
+            return line.strip()
+    return error.__class__.__name__
 
 
 def check_param(ok: bool, name: str, must: str, got: object) -> None:

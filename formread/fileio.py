@@ -12,7 +12,10 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_open", "atomic_write"]
+__all__ = ["atomic_open", "atomic_write", "spreadsheet_cell"]
+
+_UMASK = os.umask(0)
+os.umask(_UMASK)
 
 
 @contextlib.contextmanager
@@ -26,6 +29,7 @@ def atomic_open(path: str | os.PathLike, mode: str = "wb", **kwargs):
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
     try:
+        os.chmod(tmp, 0o666 & ~_UMASK)      # as an ordinary new file would be, not mkstemp's 0600
         with os.fdopen(fd, mode, **kwargs) as f:
             yield f
             f.flush()
@@ -45,3 +49,9 @@ def atomic_write(path: str | os.PathLike, data: bytes | str) -> None:
     else:
         with atomic_open(path, "wb") as f:
             f.write(data)
+
+
+def spreadsheet_cell(text) -> str:
+    """A CSV cell that a spreadsheet will not run as a formula (common practice: prefix ')."""
+    s = "" if text is None else str(text)
+    return "'" + s if s[:1] in ("=", "+", "-", "@", "\t", "\r") else s

@@ -59,9 +59,10 @@ def test_nn_imports_only_the_ground_floor():
     assert _outside("nn", GROUND) == []
 
 
-def test_the_ground_floor_imports_nothing_of_formread():
-    for mod in ("digits.py", "errors.py", "fileio.py"):
-        assert _outside(mod, ()) == []
+def test_the_ground_floor_imports_only_the_error_types():
+    assert _outside("errors.py", ()) == []
+    for mod in ("digits.py", "fileio.py"):
+        assert _outside(mod, ("formread.errors",)) == []
 
 
 def test_the_form_contract_imports_only_the_ground_floor():
@@ -87,3 +88,38 @@ def test_nothing_imports_cli():
 
 def test_read_does_not_import_review():
     assert _violations("read", ("formread.review", "formread.cli")) == []
+
+
+def _calls_and_keys(path: Path):
+    """(dotted call names, string constants used as a subscript or as the first argument of .get) of a file."""
+    calls, keys = set(), set()
+    for node in ast.walk(ast.parse(path.read_text())):
+        if isinstance(node, ast.Call):
+            f = node.func
+            if isinstance(f, ast.Attribute) and isinstance(f.value, ast.Name):
+                calls.add(f"{f.value.id}.{f.attr}")
+            if (isinstance(f, ast.Attribute) and f.attr == "get" and node.args
+                    and isinstance(node.args[0], ast.Constant) and isinstance(node.args[0].value, str)):
+                keys.add(node.args[0].value)
+        elif isinstance(node, ast.Subscript) and isinstance(node.slice, ast.Constant) \
+                and isinstance(node.slice.value, str):
+            keys.add(node.slice.value)
+    return calls, keys
+
+
+def _package_files():
+    return [f for f in PKG.rglob("*.py")]
+
+
+def test_only_the_ledger_layer_opens_the_sqlite_file():
+    bad = [str(f.relative_to(PKG.parent)) for f in _package_files()
+           if "ledger" not in f.relative_to(PKG).parts and "sqlite3.connect" in _calls_and_keys(f)[0]]
+    assert bad == []
+
+
+def test_only_the_bundle_loader_reads_the_fitted_parts_of_a_model_header():
+    # the temperature, the decoder's constants and the fitted decisions are read in one place
+    allowed = {PKG / "read" / "bundle.py", PKG / "nn" / "modelfile.py"}
+    bad = [f"{f.relative_to(PKG.parent)} reads {k!r}" for f in _package_files() if f not in allowed
+           for k in _calls_and_keys(f)[1] & {"decoder", "decisions", "temperature"}]
+    assert bad == []

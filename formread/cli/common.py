@@ -8,7 +8,7 @@ import time
 
 import typer
 
-from ..errors import FormreadError
+from ..errors import FormreadError, one_line
 
 __all__ = ["EXIT_OK", "EXIT_ERROR", "EXIT_USAGE", "EXIT_PAGES_FAILED", "EXIT_INTERRUPTED",
            "edge", "fail", "ProgressBar"]
@@ -34,7 +34,7 @@ def edge(fn):
         try:
             return fn(*args, **kwargs)
         except FormreadError as e:
-            fail(str(e).splitlines()[0] if str(e) else e.__class__.__name__)
+            fail(one_line(e))
         except KeyboardInterrupt:
             typer.echo("formread: interrupted; work saved so far is kept", err=True)
             raise typer.Exit(EXIT_INTERRUPTED)

@@ -10,6 +10,7 @@ from typing import List, Optional
 
 import typer
 
+from ..ledger.store import ledger_path
 from .common import EXIT_PAGES_FAILED, ProgressBar, edge, fail
 
 
@@ -31,7 +32,7 @@ def render_batch(report, *, out=None) -> None:
         echo(f"  {status}: {source} page {page}" + (f": {error}" if error else ""))
     if len(report.problems) > 20:
         echo(f"  ... and {len(report.problems) - 20} more (see readings.csv)")
-    echo(f"outputs: {Path(report.outdir) / 'ledger.sqlite'}, readings.csv, fields.jsonl")
+    echo(f"outputs: {ledger_path(report.outdir)}, readings.csv, fields.jsonl")
 
 
 @edge
@@ -53,7 +54,7 @@ def read_cmd(
     from ..read.batch import read_batch
 
     bar = ProgressBar("reading", enabled=not quiet)
-    report = read_batch(scans, layout, out, model_path=model, threshold=threshold, workers=workers,
+    report = read_batch(scans, layout, out, bundle=model, threshold=threshold, workers=workers,
                         progress=bar, command=_command_line())
     render_batch(report)
     if not report.all_read:
@@ -114,14 +115,16 @@ def tune_cmd(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
 ):
     """Choose the acceptance threshold that keeps the error among accepted fields under TARGET."""
-    from ..read.evaluate import store_threshold, tune_ledger
+    from ..form.edit import set_form_value
+    from ..read.evaluate import tune_ledger
 
     result = tune_ledger(outdir, truth, target=target)
     if write_layout is not None:
         if not result["target_met"]:
             fail(f"{write_layout}: left unchanged: no threshold keeps the error among accepted fields within "
                  f"{_pct(target)} on these {result['fields']} fields")
-        store_threshold(write_layout, result["threshold"])
+        set_form_value(write_layout, "threshold", round(min(1.0, float(result["threshold"])), 6),
+                       comment="chosen by formread tune")
         result["layout_written"] = str(write_layout)
     if as_json:
         typer.echo(json.dumps(result))

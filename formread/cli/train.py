@@ -2,13 +2,17 @@
 
 from __future__ import annotations
 
+import dataclasses
 import json
-import shlex
+from enum import Enum
 from pathlib import Path
 from typing import Optional
 
 import typer
 
+from ..learn.recipe import Recipe, train_recipe
+from ..nn.model import ARCHITECTURES
+from ..nn.train import OPTIMIZERS, SCHEDULES
 from .common import EXIT_INTERRUPTED, ProgressBar, edge
 
 
@@ -17,22 +21,6 @@ def register(app: typer.Typer) -> None:
     app.command("train")(train_cmd)
     app.command("evaluate")(evaluate_cmd)
     app.command("info")(info_cmd)
-
-
-def _train_command(out: Path, dataset: str, arch: str, cfg, seed: int) -> str:
-    """The full ``formread train`` command that reproduces a run (every setting spelled out)."""
-    a = cfg.augment
-    args = ["formread", "train", "--dataset", dataset, "--arch", arch, "--epochs", str(cfg.epochs),
-            "--batch-size", str(cfg.batch_size), "--optimizer", cfg.optimizer, "--lr", f"{cfg.lr:g}",
-            "--schedule", cfg.schedule, "--weight-decay", f"{cfg.weight_decay:g}",
-            "--label-smoothing", f"{cfg.label_smoothing:g}", "--val-fraction", f"{cfg.val_fraction:g}",
-            "--patience", str(cfg.patience), "--affine" if a.affine else "--no-affine",
-            "--elastic" if a.elastic else "--no-elastic", "--elastic-alpha", f"{a.elastic_alpha:g}",
-            "--elastic-sigma", f"{a.elastic_sigma:g}", "--seed", str(seed)]
-    if cfg.workers != 1:
-        args += ["--workers", str(cfg.workers)]
-    args += ["--out", str(out)]
-    return " ".join(shlex.quote(x) for x in args)
 
 
 class _EpochBars:
@@ -51,29 +39,43 @@ class _EpochBars:
         self.bar(done, total, **figures)
 
 
+_RECIPE = Recipe()
+_CFG, _AUG = _RECIPE.config, _RECIPE.config.augment
+Arch = Enum("Arch", {name: name for name in sorted(ARCHITECTURES)}, type=str)
+Optimizer = Enum("Optimizer", {name: name for name in OPTIMIZERS}, type=str)
+Schedule = Enum("Schedule", {name: name for name in SCHEDULES}, type=str)
+
+
 @edge
 def train_cmd(
     out: Path = typer.Option(..., "--out", "-o", help="Model file to write (.npz)."),
-    dataset: str = typer.Option("default", "--dataset", "-d",
+    dataset: str = typer.Option(_RECIPE.dataset, "--dataset", "-d",
                                 help="Training data: default, mnist, digits, samples:DIR or npz:FILE."),
-    arch: str = typer.Option("wide", "--arch", help="Architecture: lenet5, lenet5-classic or wide."),
-    epochs: int = typer.Option(50, "--epochs", "-e", help="Most epochs (early stopping may end sooner)."),
-    batch_size: int = typer.Option(64, "--batch-size", help="Images per mini-batch."),
-    optimizer: str = typer.Option("adam", "--optimizer", help="adam or sgd."),
-    lr: float = typer.Option(2e-3, "--lr", help="Base learning rate."),
-    schedule: str = typer.Option("cosine", "--schedule", help="constant, step or cosine."),
-    weight_decay: float = typer.Option(0.0, "--weight-decay", help="Weight decay on weights (not biases)."),
-    label_smoothing: float = typer.Option(0.1, "--label-smoothing", help="Label smoothing share."),
-    val_fraction: float = typer.Option(0.1, "--val-fraction",
+    arch: Arch = typer.Option(_RECIPE.arch, "--arch", help="Architecture."),
+    epochs: int = typer.Option(_CFG.epochs, "--epochs", "-e", min=1, max=100_000,
+                               help="Most epochs (early stopping may end sooner)."),
+    batch_size: int = typer.Option(_CFG.batch_size, "--batch-size", min=1, max=65_536, help="Images per mini-batch."),
+    optimizer: Optimizer = typer.Option(_CFG.optimizer, "--optimizer", help="Optimizer."),
+    lr: float = typer.Option(_CFG.lr, "--lr", min=1e-8, max=10.0, help="Base learning rate."),
+    schedule: Schedule = typer.Option(_CFG.schedule, "--schedule", help="Learning-rate schedule."),
+    weight_decay: float = typer.Option(_CFG.weight_decay, "--weight-decay", min=0.0, max=1.0,
+                                       help="Weight decay on weights (not biases)."),
+    label_smoothing: float = typer.Option(_CFG.label_smoothing, "--label-smoothing", min=0.0, max=0.5,
+                                          help="Label smoothing share."),
+    val_fraction: float = typer.Option(_CFG.val_fraction, "--val-fraction", min=0.0, max=0.5,
                                        help="Share held back for early stopping and the temperature."),
-    patience: int = typer.Option(12, "--patience", help="Epochs without progress before stopping (0: never)."),
-    affine: bool = typer.Option(True, "--affine/--no-affine", help="Random rotation, scale, shear, shift."),
-    elastic: bool = typer.Option(True, "--elastic/--no-elastic", help="Elastic distortion (Simard et al. 2003)."),
-    elastic_alpha: float = typer.Option(24.0, "--elastic-alpha",
+    patience: int = typer.Option(_CFG.patience, "--patience", min=0, max=100_000,
+                                 help="Epochs without progress before stopping (0: never)."),
+    affine: bool = typer.Option(_AUG.affine, "--affine/--no-affine", help="Random rotation, scale, shear, shift."),
+    elastic: bool = typer.Option(_AUG.elastic, "--elastic/--no-elastic",
+                                 help="Elastic distortion (Simard et al. 2003)."),
+    elastic_alpha: float = typer.Option(_AUG.elastic_alpha, "--elastic-alpha", min=0.0, max=200.0,
                                         help="Scale of the elastic displacement (pixels)."),
-    elastic_sigma: float = typer.Option(4.0, "--elastic-sigma", help="Smoothing of the elastic displacement."),
-    seed: int = typer.Option(0, "--seed", help="Seeds the weights, split, shuffling and augmentation."),
-    workers: int = typer.Option(1, "--workers", "-w",
+    elastic_sigma: float = typer.Option(_AUG.elastic_sigma, "--elastic-sigma", min=0.5, max=20.0,
+                                        help="Smoothing of the elastic displacement (pixels)."),
+    seed: int = typer.Option(_RECIPE.seed, "--seed", min=0, max=2 ** 32 - 1,
+                             help="Seeds the weights, split, shuffling and augmentation."),
+    workers: int = typer.Option(_CFG.workers, "--workers", "-w", min=1, max=2,
                                 help="1, or 2 to split each batch over two processes "
                                      "(pays on an idle 2-core machine)."),
     checkpoint: Optional[Path] = typer.Option(None, "--checkpoint",
@@ -88,59 +90,25 @@ def train_cmd(
     Ctrl-C stops training, keeps the best weights so far in OUT and exits with 130;
     the same command with --resume continues from the checkpoint.
     """
-    import numpy as np
-
-    from ..nn.augment import AugmentConfig
-    from ..nn.model import ARCHITECTURES, build_model
-    from ..nn.modelfile import save_model
-    from ..learn.datasets import held_out_parts, load_named
-    from ..nn.train import TrainConfig, evaluate, train
-    from ..errors import check_param
-
-    check_param(arch in ARCHITECTURES, "arch", f"one of {', '.join(sorted(ARCHITECTURES))}", arch)
-    cfg = TrainConfig(
-        epochs=epochs, batch_size=batch_size, optimizer=optimizer, lr=lr, schedule=schedule,
+    cfg = dataclasses.replace(
+        _CFG, epochs=epochs, batch_size=batch_size, optimizer=optimizer.value, lr=lr, schedule=schedule.value,
         weight_decay=weight_decay, label_smoothing=label_smoothing, val_fraction=val_fraction,
-        patience=patience, seed=seed, workers=workers,
-        augment=AugmentConfig(affine=affine, elastic=elastic, elastic_alpha=elastic_alpha,
-                              elastic_sigma=elastic_sigma),
-    )
-    cfg.validate()
-    data = load_named(dataset, "train")
-    model = build_model(arch, np.random.default_rng(seed))
+        patience=patience, workers=workers,
+        augment=dataclasses.replace(_AUG, affine=affine, elastic=elastic, elastic_alpha=elastic_alpha,
+                                    elastic_sigma=elastic_sigma))
+    recipe = Recipe(dataset=dataset, arch=arch.value, seed=seed, config=cfg)
+    recipe.validate()
     ckpt = checkpoint or out.with_name(out.name + ".ckpt")
-    if not quiet:
-        typer.echo(f"training {arch} on {data.name} ({len(data)} images, {val_fraction:.0%} held back "
-                   f"for validation), seed {seed}", err=True)
-    result = train(model, data.x, data.y, cfg, progress=_EpochBars(not quiet), checkpoint=ckpt, resume=resume)
 
-    def finite(v):  # JSON has no NaN: a figure that does not exist (no validation split) is null
-        return None if v != v else v
+    def announce(data):
+        if not quiet:
+            typer.echo(f"training {recipe.arch} on {data.name} ({len(data)} images, {val_fraction:.0%} held back "
+                       f"for validation), seed {seed}", err=True)
 
-    metrics = {"validation": {"n": int(len(result.val_indices)), "accuracy": finite(result.val_accuracy),
-                              "loss": finite(result.best_val_loss), "ece_raw": finite(result.ece_val_raw),
-                              "ece": finite(result.ece_val_calibrated)}}
-    for part in held_out_parts(dataset):
-        held = load_named(*part.split(":"))
-        ev = evaluate(model, held.x, held.y, result.temperature)
-        metrics[part] = {k: ev[k] for k in ("n", "accuracy", "ece_raw", "ece", "nll_raw", "nll")}
-    header = {
-        "training": {
-            "dataset": data.name, "n_images": int(len(data)), "n_train": int(len(result.train_indices)),
-            "n_validation": int(len(result.val_indices)),
-            "split": f"stratified {cfg.val_fraction:g} of each class held back for validation (seed {seed})",
-            "held_out": held_out_parts(dataset), "architecture_name": arch, "config": cfg.as_dict(),
-            "epochs_run": result.epochs_run, "best_epoch": result.best_epoch,
-            "stopped_early": result.stopped_early, "interrupted": result.interrupted,
-            "seconds": round(result.seconds, 1),
-            "command": _train_command(out, dataset, arch, cfg, seed),
-        },
-        "seed": seed,
-        "metrics": metrics,
-        "temperature": result.temperature,
-    }
-    save_model(out, model, header)
-    for part, m in metrics.items():
+    made = train_recipe(recipe, out, progress=_EpochBars(not quiet), checkpoint=ckpt, resume=resume,
+                        on_data=announce)
+    result = made.result
+    for part, m in made.figures.items():
         if part != "validation":
             typer.echo(f"{part}: accuracy {m['accuracy']:.4f}  ECE {m['ece_raw']:.4f} -> {m['ece']:.4f} "
                        f"(temperature {result.temperature:.3f})")
@@ -157,12 +125,12 @@ def train_cmd(
         ckpt.unlink()
 
 
-def _render_report(name: str, rep: dict) -> str:
+def _render_report(name: str, rep: dict, temperature: float) -> str:
     lines = [
         f"dataset: {name}  ({rep['n']} images)",
         f"accuracy: {rep['accuracy']:.4f}",
         f"expected calibration error (15 bins): {rep['ece_raw']:.4f} raw, {rep['ece']:.4f} at temperature "
-        f"{rep['temperature']:.3f}",
+        f"{temperature:.3f}",
         "",
         "class  precision  recall",
     ]
@@ -184,19 +152,19 @@ def evaluate_cmd(
     as_json: bool = typer.Option(False, "--json", help="Machine-readable output."),
 ):
     """Accuracy, per-class precision and recall, confusion matrix and calibration of MODEL."""
-    from ..nn.modelfile import load_model
     from ..learn.datasets import load_named
-    from ..nn.train import evaluate
+    from ..learn.recipe import evaluate_bundle
+    from ..read.bundle import load_bundle
 
-    model, header = load_model(model_path)
+    bundle = load_bundle(model_path)
     data = load_named(dataset, part)
-    rep = evaluate(model, data.x, data.y, float(header.get("temperature", 1.0)))
+    rep = evaluate_bundle(bundle, data.x, data.y)
     rep["dataset"] = data.name
     rep["model"] = str(model_path)
     if as_json:
         typer.echo(json.dumps(rep, indent=2))
     else:
-        typer.echo(_render_report(data.name, rep))
+        typer.echo(_render_report(data.name, rep, bundle.temperature))
 
 
 def _arch_summary(spec: list) -> str:
@@ -220,16 +188,18 @@ def _fmt(v) -> str:
     return f"{v:.4f}" if isinstance(v, float) else str(v)
 
 
-def render_card(path: Path, header: dict, n_params: int | None = None) -> str:
-    """A model header as a readable card (text)."""
+def render_card(bundle) -> str:
+    """A model bundle as a readable card (text): what it is, what it learnt from, what was fitted for it."""
+    header = bundle.header
     tr = header.get("training") or {}
     inp = header.get("input") or {}
-    lines = [
-        f"model:        {path}",
-        f"architecture: {tr.get('architecture_name', '-')}: {_arch_summary(header.get('architecture', []))}",
-    ]
-    if n_params is not None:
-        lines.append(f"parameters:   {n_params:,}")
+    specs = header.get("networks") or [header.get("architecture", [])]
+    n_params = sum(int(p.value.size) for net in bundle.networks for p in net.parameters())
+    lines = [f"model:        {bundle.path}"]
+    for spec in specs:
+        lines.append(f"architecture: {tr.get('architecture_name', '-')}: {_arch_summary(spec)}"
+                     + (f" (one of {len(specs)}, probabilities averaged)" if len(specs) > 1 else ""))
+    lines.append(f"parameters:   {n_params:,}")
     lines += [
         f"input:        {inp.get('size')}x{inp.get('size')}, {inp.get('channels')} channel, "
         f"normalisation {inp.get('normalisation')}",
@@ -258,17 +228,22 @@ def render_card(path: Path, header: dict, n_params: int | None = None) -> str:
                 lines.append(f"  {part:<12} {figs}")
             else:
                 lines.append(f"  {part:<12} {_fmt(m)}")
+    retrained = tr.get("retrained") or tr.get("learned")
+    if isinstance(retrained, dict) and retrained.get("parent"):
+        lines.append(f"retrained:    from {retrained['parent']} on {retrained.get('samples', 'local samples')}")
+    lines.append(f"temperature:  {bundle.temperature:.4f}")
+    lines += [f"{k + ':':<13} {v}" for k, v in (line.split(": ", 1) for line in bundle.describe())]
     lines += [
-        f"temperature:  {float(header.get('temperature', 1.0)):.4f}",
         f"created:      {header.get('created')}",
         f"sha256:       {header.get('sha256')}",
+        f"weights:      {bundle.weights_sha256}",
     ]
     return "\n".join(lines)
 
 
 def list_models() -> list[tuple[Path, dict | None, str | None]]:
     """Model files in the models folder: (path, header or None, problem or None), by name."""
-    from ..errors import FormreadError
+    from ..errors import FormreadError, one_line
     from ..nn.modelfile import read_header
     from ..paths import models_dir
 
@@ -278,7 +253,7 @@ def list_models() -> list[tuple[Path, dict | None, str | None]]:
         try:
             out.append((p, read_header(p), None))
         except FormreadError as e:
-            out.append((p, None, str(e).splitlines()[0]))
+            out.append((p, None, one_line(e)))
     return out
 
 
@@ -290,17 +265,17 @@ def info_cmd(
 ):
     """Show a model file's card (architecture, data, split, metrics, temperature, checksum),
     or list the model files and mark the one in use."""
-    from ..nn.modelfile import load_model
     from ..paths import default_model_path, models_dir
+    from ..read.bundle import load_bundle
 
     if model_path is not None:
-        model, header = load_model(model_path)  # verifies the checksum
+        bundle = load_bundle(model_path)  # verifies the checksums
         if as_json:
-            typer.echo(json.dumps(header, indent=2, sort_keys=True))
+            typer.echo(json.dumps(bundle.header, indent=2, sort_keys=True))
             return
-        n = sum(int(p.value.size) for p in model.parameters())
-        typer.echo(render_card(model_path, header, n))
-        typer.echo("checksum:     verified")
+        typer.echo(render_card(bundle))
+        typer.echo("checksum:     " + ("verified (weights and header)" if bundle.header.get("format_version", 1) >= 2
+                                       else "weights verified; header not covered (format version 1)"))
         return
     in_use = default_model_path().resolve()
     rows = list_models()

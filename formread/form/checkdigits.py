@@ -22,6 +22,8 @@ the end), because a form field holds digits only.
 
 from __future__ import annotations
 
+from ..errors import ParameterError
+
 __all__ = [
     "luhn_compute", "luhn_valid", "mod11_2_compute", "mod11_2_valid",
     "mod97_10_compute", "mod97_10_valid", "iban_valid", "gs1_compute", "gs1_valid",
@@ -52,7 +54,7 @@ def luhn_compute(payload: str) -> str:
     """Luhn check digit for ``payload`` (digits); ValueError on a non-digit payload."""
     ds = _digits(payload)
     if ds is None:
-        raise ValueError(f"Luhn payload must be digits; got {payload!r}")
+        raise ParameterError(f"Luhn payload must be digits; got {payload!r}")
     return str((10 - _luhn_sum(ds, True) % 10) % 10)
 
 
@@ -68,7 +70,7 @@ def mod11_2_compute(payload: str) -> str:
     """ISO 7064 MOD 11-2 check character ('0'-'9' or 'X') for ``payload`` (digits)."""
     ds = _digits(payload)
     if ds is None:
-        raise ValueError(f"MOD 11-2 payload must be digits; got {payload!r}")
+        raise ParameterError(f"MOD 11-2 payload must be digits; got {payload!r}")
     p = 0
     for d in ds:
         p = ((p + d) * 2) % 11
@@ -92,7 +94,7 @@ def mod97_10_compute(payload: str) -> str:
     """Two ISO 7064 MOD 97-10 check digits for ``payload`` (digits): 98 - (payload*100 mod 97)."""
     ds = _digits(payload)
     if ds is None:
-        raise ValueError(f"MOD 97-10 payload must be digits; got {payload!r}")
+        raise ParameterError(f"MOD 97-10 payload must be digits; got {payload!r}")
     return f"{98 - (int(payload) * 100) % 97:02d}"
 
 
@@ -126,7 +128,7 @@ def gs1_compute(payload: str) -> str:
     """GS1 mod 10 check digit for ``payload`` (digits)."""
     ds = _digits(payload)
     if ds is None:
-        raise ValueError(f"GS1 payload must be digits; got {payload!r}")
+        raise ParameterError(f"GS1 payload must be digits; got {payload!r}")
     return str((10 - _gs1_sum(ds) % 10) % 10)
 
 
@@ -163,7 +165,7 @@ def verhoeff_compute(payload: str) -> str:
     """Verhoeff check digit for ``payload`` (digits)."""
     ds = _digits(payload)
     if ds is None:
-        raise ValueError(f"Verhoeff payload must be digits; got {payload!r}")
+        raise ParameterError(f"Verhoeff payload must be digits; got {payload!r}")
     return str(_VINV[_verhoeff_state(ds, 1)])
 
 
@@ -194,7 +196,7 @@ def damm_compute(payload: str) -> str:
     """Damm check digit for ``payload`` (digits)."""
     ds = _digits(payload)
     if ds is None:
-        raise ValueError(f"Damm payload must be digits; got {payload!r}")
+        raise ParameterError(f"Damm payload must be digits; got {payload!r}")
     return str(_damm_state(ds))
 
 

@@ -7,6 +7,7 @@ one layout serves scans at any dpi. ``parse_layout`` checks everything it can an
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import json
 import math
@@ -20,8 +21,10 @@ except ModuleNotFoundError:  # pragma: no cover - Python 3.10
     import tomli as tomllib
 
 from ..errors import LayoutError
+from .rules import CompiledRules, compile_rules
+from .thresholds import TARGET_RANGE, THRESHOLD_RANGE, is_target, is_threshold
 
-__all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout",
+__all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout", "read_layout_text",
            "KINDS", "BINARIZE_METHODS", "NAME_PATTERN"]
 
 KINDS = ("boxed", "open")
@@ -66,6 +69,7 @@ class FieldSpec:
     optional: bool = False
     rules: dict = dc_field(default_factory=dict, hash=False)
     threshold: float | None = None
+    target_error: float | None = None
 
     @property
     def region(self) -> Region:
@@ -91,7 +95,10 @@ class Layout:
     header: Region | None = None
     binarize: str = "auto"
     threshold: float | None = None
+    target_error: float | None = None
     source: str = "<layout>"
+    rules: CompiledRules | None = dc_field(default=None, compare=False, repr=False)
+    """The fields' rules and the relations, compiled and checked when the layout was parsed."""
 
     def field(self, name: str) -> FieldSpec:
         """The field called ``name``; ``LayoutError`` if there is none."""
@@ -104,6 +111,15 @@ class Layout:
     def field_names(self) -> list[str]:
         return [f.name for f in self.fields]
 
+    def capacity(self, name: str) -> int:
+        """Most digits field ``name`` may hold: its cells (boxed) or max_digits (open), narrowed by
+        its length rule.  What review lets a clerk type, recorded with every field read."""
+        n = self.field(name).max_digits
+        rules = self.rules.fields.get(name) if self.rules is not None else None
+        if rules is not None and rules.length is not None:
+            n = min(n, rules.length[1])
+        return int(n)
+
     def to_toml(self) -> str:
         """This layout as TOML text in the format ``parse_layout`` reads (round-trips exactly)."""
         out = ["[form]", f"name = {_toml_value(self.name)}",
@@ -112,6 +128,8 @@ class Layout:
                f"binarize = {_toml_value(self.binarize)}"]
         if self.threshold is not None:
             out.append(f"threshold = {_toml_value(float(self.threshold))}")
+        if self.target_error is not None:
+            out.append(f"target_error = {_toml_value(float(self.target_error))}")
         if self.header is not None:
             out += ["", "[form.header]"] + [f"{k} = {_toml_value(float(getattr(self.header, k)))}"
                                             for k in ("x", "y", "w", "h")]
@@ -125,6 +143,8 @@ class Layout:
             out.append(f"optional = {_toml_value(f.optional)}")
             if f.threshold is not None:
                 out.append(f"threshold = {_toml_value(float(f.threshold))}")
+            if f.target_error is not None:
+                out.append(f"target_error = {_toml_value(float(f.target_error))}")
             if f.rules:
                 out += ["[fields.rules]"] + [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in f.rules.items()]
         for r in self.relations:
@@ -159,8 +179,11 @@ def _toml_value(v) -> str:
 
 # ----------------------------------------------------------------------------------------- parsing
 
-def load_layout(path) -> Layout:
-    """Read and check a layout file (TOML, UTF-8). Raises ``LayoutError("<file>: <problem>")``."""
+def read_layout_text(path) -> str:
+    """The text of a layout file (UTF-8; a leading byte-order mark is dropped).
+
+    Raises ``LayoutError("<file>: <problem>")`` when it cannot be read.
+    """
     path = Path(path)
     try:
         text = path.read_bytes().decode("utf-8")
@@ -172,7 +195,12 @@ def load_layout(path) -> Layout:
         raise LayoutError(f"{path}: not UTF-8 text (byte {e.start})") from None
     except OSError as e:
         raise LayoutError(f"{path}: cannot be read ({e.strerror or e})") from None
-    return parse_layout(text, str(path))
+    return text.removeprefix("\ufeff")      # a byte-order mark some editors write: harmless
+
+
+def load_layout(path) -> Layout:
+    """Read and check a layout file (TOML, UTF-8). Raises ``LayoutError("<file>: <problem>")``."""
+    return parse_layout(read_layout_text(path), str(path))
 
 
 def parse_layout(text: str, source: str = "<layout>") -> Layout:
@@ -247,8 +275,14 @@ class _Checker:
 
     def threshold(self, d: dict, where: str):
         t = self.number(d, "threshold", where, required=False)
-        if t is not None and not 0.0 < t <= 1.0:
-            self.fail(where, f"'threshold' must be in (0, 1]; got {t:g}")
+        if t is not None and not is_threshold(t):
+            self.fail(where, f"'threshold' must be {THRESHOLD_RANGE}; got {t:g}")
+        return t
+
+    def target(self, d: dict, where: str):
+        t = self.number(d, "target_error", where, required=False)
+        if t is not None and not is_target(t):
+            self.fail(where, f"'target_error' must be {TARGET_RANGE}; got {t:g}")
         return t
 
     def on_page(self, r: Region, where: str, W: float, H: float):
@@ -266,7 +300,8 @@ class _Checker:
     def layout(self, doc: dict) -> Layout:
         self.unknown(doc, {"form", "marks", "fields", "relations"}, "layout")
         form = self.table(doc, "form", "layout")
-        self.unknown(form, {"name", "width_mm", "height_mm", "binarize", "threshold", "header"}, "[form]")
+        self.unknown(form, {"name", "width_mm", "height_mm", "binarize", "threshold", "target_error", "header"},
+                     "[form]")
         name = self.string(form, "name", "[form]")
         W = self.number(form, "width_mm", "[form]", positive=True)
         H = self.number(form, "height_mm", "[form]", positive=True)
@@ -274,15 +309,19 @@ class _Checker:
         if method not in BINARIZE_METHODS:
             self.fail("[form]", f"'binarize' must be one of {', '.join(BINARIZE_METHODS)}; got {method!r}")
         threshold = self.threshold(form, "[form]")
+        target = self.target(form, "[form]")
         header = self.table(form, "header", "[form]", required=False)
         header = None if header is None else self.region(header, "[form.header]", W, H)
         marks = self.marks(doc.get("marks"), W, H)
         self.marks_seen = marks
         fields = self.fields(doc.get("fields"), W, H)
         relations = self.relations(doc.get("relations"))
-        return Layout(name=name, width_mm=W, height_mm=H, marks=marks, fields=fields,
-                      relations=relations, header=header, binarize=method, threshold=threshold,
-                      source=self.source)
+        if not fields:
+            self.fail("layout", "no [[fields]]: a layout must describe at least one field to read")
+        layout = Layout(name=name, width_mm=W, height_mm=H, marks=marks, fields=fields,
+                        relations=relations, header=header, binarize=method, threshold=threshold,
+                        target_error=target, source=self.source)
+        return dataclasses.replace(layout, rules=compile_rules(layout))
 
     def array(self, v, key: str) -> list[dict]:
         if v is None:
@@ -316,7 +355,8 @@ class _Checker:
 
     def fields(self, v, W: float, H: float) -> tuple[FieldSpec, ...]:
         out: list[FieldSpec] = []
-        allowed = {"name", "kind", "x", "y", "w", "h", "cells", "max_digits", "optional", "threshold", "rules"}
+        allowed = {"name", "kind", "x", "y", "w", "h", "cells", "max_digits", "optional", "threshold",
+                   "target_error", "rules"}
         for i, d in enumerate(self.array(v, "fields"), 1):
             if "name" not in d:
                 self.fail(f"field {i}", "missing key 'name'")
@@ -349,7 +389,8 @@ class _Checker:
             if not isinstance(rules, dict):
                 self.fail(where, f"'rules' must be a table ([fields.rules]); got {_tname(rules)}")
             f = FieldSpec(name=name, kind=kind, x=x, y=y, w=w, h=h, cells=cells, max_digits=max_digits,
-                          optional=optional, rules=dict(rules), threshold=self.threshold(d, where))
+                          optional=optional, rules=dict(rules), threshold=self.threshold(d, where),
+                          target_error=self.target(d, where))
             for g in out:
                 if _overlap(f.region, g.region):
                     self.fail(where, f"overlaps field {g.name!r}")

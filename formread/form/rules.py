@@ -30,9 +30,9 @@ from __future__ import annotations
 import calendar
 from dataclasses import dataclass, field
 
-from formread.errors import RuleError
-from formread.form.checkdigits import SCHEMES
-from formread.form.expr import Relation, parse_relation
+from ..errors import RuleError
+from .checkdigits import SCHEMES
+from .expr import Relation, parse_relation
 
 __all__ = ["FieldRules", "CompiledRules", "compile_rules", "check_field", "check_value", "check_relations",
            "CHECKS", "DATE_PATTERNS", "RULE_NAMES"]
@@ -55,7 +55,6 @@ class FieldRules:
     date: str | None = None
     years: tuple[int, int] | None = None
     check: str | None = None
-    threshold: float | None = None
 
 
 @dataclass(frozen=True)
@@ -78,7 +77,7 @@ def _is_int(v) -> bool:
 
 def _compile_field(src: str, f) -> FieldRules:
     name = f.name
-    rules = dict(getattr(f, "rules", None) or {})
+    rules = dict(f.rules)
 
     def bad(problem: str) -> RuleError:
         return RuleError(f"{src}: field {name!r}: {problem}")
@@ -96,7 +95,7 @@ def _compile_field(src: str, f) -> FieldRules:
             raise bad(f"rule 'length' must be a positive integer or [min, max] with 1 <= min <= max; "
                       f"got {rules['length']!r}")
         length = (int(v[0]), int(v[1]))
-        room = getattr(f, "max_digits", None) or getattr(f, "cells", None)
+        room = f.max_digits
         if room is not None and length[0] > room:
             raise bad(f"rule 'length' asks for at least {length[0]} digits but the field holds {room}")
     if "range" in rules:
@@ -125,13 +124,13 @@ def _compile_field(src: str, f) -> FieldRules:
         check = rules["check"]
         if check not in SCHEMES:
             raise bad(f"rule 'check' must be one of {', '.join(CHECKS)}; got {check!r}")
-    optional = bool(getattr(f, "optional", False))
+    optional = bool(f.optional)
     if "optional" in rules:
         if not isinstance(rules["optional"], bool):
             raise bad(f"rule 'optional' must be true or false; got {rules['optional']!r}")
         optional = optional or rules["optional"]
-    return FieldRules(name=name, kind=getattr(f, "kind", "boxed"), optional=optional, length=length,
-                      range=rng, date=date, years=years, check=check, threshold=getattr(f, "threshold", None))
+    return FieldRules(name=name, kind=f.kind, optional=optional, length=length,
+                      range=rng, date=date, years=years, check=check)
 
 
 def compile_rules(layout) -> CompiledRules:
@@ -141,22 +140,21 @@ def compile_rules(layout) -> CompiledRules:
     ----------
     layout : formread.form.layout.Layout
         Uses ``layout.source`` (file name for messages), ``layout.fields``
-        (FieldSpec: name, kind, optional, rules, threshold) and ``layout.relations``
-        (list of rule strings; ``{"rule": text}`` tables are accepted too).
+        (FieldSpec: name, kind, max_digits, optional, rules) and ``layout.relations``
+        (rule strings).  The layout parser calls this once; everyone else uses ``layout.rules``.
 
     Raises
     ------
     RuleError
         One line naming the layout file and the field or relation.
     """
-    src = str(getattr(layout, "source", "") or "layout")
+    src = str(layout.source or "layout")
     fields: dict[str, FieldRules] = {}
     for f in layout.fields:
         fields[f.name] = _compile_field(src, f)
     relations = []
     by_field: dict[str, list[Relation]] = {}
-    for item in getattr(layout, "relations", None) or ():
-        text = item.get("rule") if isinstance(item, dict) else item
+    for text in layout.relations:
         try:
             rel = parse_relation(text)
         except RuleError as e:

@@ -1,1 +1,1 @@
-"""Pages in, digits out: load, binarize, deskew, register, cut fields, segment. Never imports nn."""
+"""Pages in, digits out: load, binarize, register (which deskews), cut fields, segment. Never imports nn."""

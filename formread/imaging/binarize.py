@@ -2,6 +2,8 @@
 
 Images are ``(H, W) uint8`` with 0 = ink and 255 = paper; masks are ``(H, W) bool`` with True = ink.
 Otsu (1979) suits evenly lit scans; Sauvola & Pietikainen (2000) follows uneven lighting and shadows.
+Every binarisation decision of the imaging step is made here: the page's method and ink level, the
+crop's ink map, and the Sauvola settings.
 """
 
 from __future__ import annotations
@@ -10,8 +12,15 @@ import numpy as np
 
 from ..errors import check_param
 
-__all__ = ["threshold_otsu", "threshold_sauvola", "binarize", "background", "is_uneven",
-           "UNEVEN_SPREAD"]
+__all__ = ["threshold_otsu", "threshold_sauvola", "binarize", "background", "is_uneven", "choose_method",
+           "page_ink_level", "ink_map", "UNEVEN_SPREAD", "SAUVOLA_K", "SAUVOLA_R", "SAUVOLA_WINDOW_MM"]
+
+SAUVOLA_K = 0.2
+"""Sauvola's k (implementations use 0.2 or 0.5, see scikit-image; 0.2 keeps faint strokes)."""
+SAUVOLA_R = 128.0
+"""Sauvola's dynamic range R of the standard deviation, for 8-bit grey."""
+SAUVOLA_WINDOW_MM = 8.0
+"""Side of Sauvola's window in mm (about two digit heights at the demo's cell size)."""
 
 #: ``auto`` picks Sauvola when the paper's brightness varies by more than this share of its level.
 UNEVEN_SPREAD = 0.15
@@ -128,8 +137,8 @@ def is_uneven(gray: np.ndarray, dpi: float = 300.0) -> bool:
     return bool(hi > 0 and (hi - lo) / hi > UNEVEN_SPREAD)
 
 
-def binarize(gray: np.ndarray, method: str = "auto", *, dpi: float = 300.0, window_mm: float = 8.0,
-             k: float = 0.2, r: float = 128.0, min_contrast: float = 0.2) -> np.ndarray:
+def binarize(gray: np.ndarray, method: str = "auto", *, dpi: float = 300.0, window_mm: float = SAUVOLA_WINDOW_MM,
+             k: float = SAUVOLA_K, r: float = SAUVOLA_R, min_contrast: float = 0.2) -> np.ndarray:
     """The ink mask of a grey page.
 
     gray : ndarray of shape (H, W), uint8, 0 = ink
@@ -142,11 +151,77 @@ def binarize(gray: np.ndarray, method: str = "auto", *, dpi: float = 300.0, wind
     check_param(method in ("auto", "otsu", "sauvola"), "method", "'auto', 'otsu' or 'sauvola'", method)
     a = np.asarray(gray)
     check_param(a.ndim == 2 and a.size > 0, "gray", "a non-empty 2-D image", a.shape)
-    if method == "auto":
-        method = "sauvola" if is_uneven(a, dpi) else "otsu"
+    method = choose_method(method, a, dpi)
     if method == "sauvola":
         window = max(3, int(round(window_mm * dpi / 25.4)) | 1)
         return a <= threshold_sauvola(a, window=window, k=k, r=r)
     t = threshold_otsu(a)
     paper = float(np.percentile(a[:: max(1, a.shape[0] // 512), :: max(1, a.shape[1] // 512)], 99))
     return (a <= t) & (a < paper * (1.0 - min_contrast))
+
+
+def choose_method(method: str, gray: np.ndarray, dpi: float) -> str:
+    """The binarisation a page gets: ``method`` itself, or for ``"auto"`` Sauvola when
+    :func:`is_uneven` says the paper is unevenly lit, else Otsu."""
+    if method == "auto":
+        return "sauvola" if is_uneven(gray, dpi) else "otsu"
+    return method
+
+
+def page_ink_level(image: np.ndarray) -> float:
+    """Otsu's level of a page from a sparse sample (every 3rd row and column: the histogram barely changes).
+
+    Parameters
+    ----------
+    image : ndarray of shape (H, W), uint8, 0 = ink
+
+    Returns
+    -------
+    float: grey levels ``<= level`` are ink; never above 80% of the paper's brightness, so the
+    noise of a blank page is not ink.
+    """
+    sample = np.asarray(image)[::3, ::3]
+    level = threshold_otsu(sample)
+    hist = np.cumsum(np.bincount(sample.ravel(), minlength=256))
+    paper = float(np.searchsorted(hist, 0.99 * hist[-1]))       # the 99th percentile grey level
+    return float(min(level, 0.8 * paper))
+
+
+MIN_CONTRAST = 50.0
+"""Without a page level, a crop whose two Otsu classes differ by fewer grey levels holds no ink."""
+
+
+def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu",
+            px_per_mm: float = 10.0) -> np.ndarray:
+    """Binarise a crop into ink (with :mod:`formread.imaging.binarize`).
+
+    Parameters
+    ----------
+    gray : ndarray of shape (h, w), uint8, 0 = ink
+    level : float or None
+        A page-wide grey level (pixels ``<= level`` are ink), so that a blank field
+        stays blank; when None, Otsu on the crop itself, and a crop with too little
+        contrast to hold ink is all paper.
+    method : "otsu" | "sauvola"
+        ``"sauvola"`` thresholds locally (Sauvola 2000, :data:`SAUVOLA_K`, :data:`SAUVOLA_R`,
+        a :data:`SAUVOLA_WINDOW_MM` window),
+        never darker-than-level paper only: a pixel is ink when it is under both the
+        local threshold and the midpoint between ``level`` and white.
+
+    Returns
+    -------
+    ndarray of shape (h, w), bool, True = ink
+    """
+    g = np.asarray(gray)
+    if g.size == 0:
+        return np.zeros(g.shape, bool)
+    if level is None:
+        level = threshold_otsu(g)
+        dark, light = g[g <= level], g[g > level]
+        # paper with noise only: Otsu still splits it, but into two nearly equal greys
+        if dark.size == 0 or light.size == 0 or float(light.mean()) - float(dark.mean()) < MIN_CONTRAST:
+            return np.zeros(g.shape, bool)
+    if method == "sauvola":
+        window = max(3, int(round(SAUVOLA_WINDOW_MM * px_per_mm)) | 1)
+        return (g <= threshold_sauvola(g, window=window, k=SAUVOLA_K, r=SAUVOLA_R)) & (g <= (level + 255.0) / 2)
+    return g <= level

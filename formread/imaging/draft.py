@@ -18,14 +18,17 @@ import numpy as np
 from scipy import ndimage
 
 from ..errors import LayoutError
-from .binarize import binarize
 from ..form.layout import FieldSpec, Layout, Mark
+from .binarize import binarize
+from .deskew import estimate_skew, rotate
 
 __all__ = ["draft_layout", "find_marks", "find_boxes", "Box"]
 
 log = logging.getLogger(__name__)
 
 _8 = np.ones((3, 3), bool)
+MIN_SKEW_DEG = 0.1
+"""A blank form scanned more askew than this is straightened before drafting."""
 
 
 @dataclass
@@ -197,6 +200,11 @@ def draft_layout(page, *, name: str | None = None) -> Layout:
     dpi = float(page.dpi)
     k = dpi / 25.4
     ink = binarize(gray, "auto", dpi=dpi)
+    skew = estimate_skew(ink)
+    if abs(skew) >= MIN_SKEW_DEG:      # a blank form scanned a little askew: straighten it first
+        log.info("%s: straightening a skew of %.2f degrees", where, skew)
+        gray = rotate(gray, -skew)
+        ink = binarize(gray, "auto", dpi=dpi)
     lab, n = ndimage.label(ink, _8)
     objs = ndimage.find_objects(lab)
     marks = find_marks(ink, lab, objs, dpi)

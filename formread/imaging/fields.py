@@ -14,14 +14,13 @@ import numpy as np
 from scipy import ndimage
 
 from ..errors import SegmentationError, check_param
-from .binarize import threshold_otsu, threshold_sauvola
+from .affine import apply_affine, rect_corners
+from .binarize import ink_map
 
-MIN_CONTRAST = 50.0
-"""Without a page level, a crop whose two Otsu classes differ by fewer grey levels holds no ink."""
 OFF_PAGE_SHARE = 0.25
 """A field with more than this share of its rectangle off the scanned image cannot be cut."""
 
-__all__ = ["FieldCrop", "cut_field", "crop_to_page", "field_corners_px", "ink_map", "OFF_PAGE_SHARE"]
+__all__ = ["FieldCrop", "cut_field", "crop_to_page", "field_corners_px", "OFF_PAGE_SHARE"]
 
 
 @dataclass
@@ -77,8 +76,7 @@ def field_corners_px(matrix: np.ndarray, x: float, y: float, w: float, h: float)
         Page pixels (x = col, y = row) of the corners top-left, top-right,
         bottom-right, bottom-left.
     """
-    pts = np.array([[x, y, 1.0], [x + w, y, 1.0], [x + w, y + h, 1.0], [x, y + h, 1.0]])
-    return pts @ np.asarray(matrix, np.float64).T
+    return apply_affine(matrix, rect_corners(x, y, w, h))
 
 
 def crop_to_page(crop: FieldCrop, pts) -> np.ndarray:
@@ -95,44 +93,8 @@ def crop_to_page(crop: FieldCrop, pts) -> np.ndarray:
     ``Registration.matrix`` (pixel (c, r) covers [c, c + 1) x [r, r + 1))
     """
     p = np.asarray(pts, np.float64).reshape(-1, 2)
-    mm = np.column_stack([crop.x0_mm + p[:, 0] / crop.px_per_mm, crop.y0_mm + p[:, 1] / crop.px_per_mm,
-                          np.ones(len(p))])
-    return mm @ crop.matrix.T
-
-
-def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu",
-            px_per_mm: float = 10.0) -> np.ndarray:
-    """Binarise a crop into ink (with :mod:`formread.imaging.binarize`).
-
-    Parameters
-    ----------
-    gray : ndarray of shape (h, w), uint8, 0 = ink
-    level : float or None
-        A page-wide grey level (pixels ``<= level`` are ink), so that a blank field
-        stays blank; when None, Otsu on the crop itself, and a crop with too little
-        contrast to hold ink is all paper.
-    method : "otsu" | "sauvola"
-        ``"sauvola"`` thresholds locally (Sauvola 2000, k = 0.2, R = 128, window 8 mm),
-        never darker-than-level paper only: a pixel is ink when it is under both the
-        local threshold and the midpoint between ``level`` and white.
-
-    Returns
-    -------
-    ndarray of shape (h, w), bool, True = ink
-    """
-    g = np.asarray(gray)
-    if g.size == 0:
-        return np.zeros(g.shape, bool)
-    if level is None:
-        level = threshold_otsu(g)
-        dark, light = g[g <= level], g[g > level]
-        # paper with noise only: Otsu still splits it, but into two nearly equal greys
-        if dark.size == 0 or light.size == 0 or float(light.mean()) - float(dark.mean()) < MIN_CONTRAST:
-            return np.zeros(g.shape, bool)
-    if method == "sauvola":
-        window = max(3, int(round(8 * px_per_mm)) | 1)
-        return (g <= threshold_sauvola(g, window=window, k=0.2, r=128.0)) & (g <= (level + 255.0) / 2)
-    return g <= level
+    mm = np.column_stack([crop.x0_mm + p[:, 0] / crop.px_per_mm, crop.y0_mm + p[:, 1] / crop.px_per_mm])
+    return apply_affine(crop.matrix, mm)
 
 
 def cut_field(registration, field, *, px_per_mm: float = 10.0, margin_mm: float = 1.5,

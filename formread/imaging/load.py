@@ -27,7 +27,7 @@ from typing import Iterator
 import numpy as np
 from PIL import Image, ImageOps
 
-from ..errors import ImageError, check_param
+from ..errors import ImageError, check_param, one_line
 
 __all__ = ["Page", "load_pages", "iter_pages", "FALLBACK_DPI", "MAX_PAGE_PIXELS", "IMAGE_FORMATS"]
 
@@ -221,7 +221,7 @@ def _bomb(e: BaseException) -> str:
 
 
 def _why(e: BaseException) -> str:
-    text = str(e).strip().splitlines()[0] if str(e).strip() else type(e).__name__
+    text = one_line(e)
     return text if len(text) < 160 else text[:157] + "..."
 
 

@@ -14,11 +14,11 @@ from dataclasses import dataclass
 import numpy as np
 
 from ..errors import SegmentationError
-from .binarize import is_uneven, threshold_otsu
+from .binarize import choose_method, page_ink_level
 from .fields import cut_field, field_corners_px
 from .segment import FieldDigits, segment_field
 
-__all__ = ["PageDigits", "process_page", "page_ink_level", "STEPS"]
+__all__ = ["PageDigits", "process_page", "STEPS"]
 
 log = logging.getLogger(__name__)
 
@@ -46,25 +46,6 @@ class PageDigits:
     fields: dict
     method: str = "otsu"
     level: float = 127.0
-
-
-def page_ink_level(image: np.ndarray) -> float:
-    """Otsu's level of a page from a sparse sample (every 3rd row and column: the histogram barely changes).
-
-    Parameters
-    ----------
-    image : ndarray of shape (H, W), uint8, 0 = ink
-
-    Returns
-    -------
-    float: grey levels ``<= level`` are ink; never above 80% of the paper's brightness, so the
-    noise of a blank page is not ink.
-    """
-    sample = np.asarray(image)[::3, ::3]
-    level = threshold_otsu(sample)
-    hist = np.cumsum(np.bincount(sample.ravel(), minlength=256))
-    paper = float(np.searchsorted(hist, 0.99 * hist[-1]))       # the 99th percentile grey level
-    return float(min(level, 0.8 * paper))
 
 
 def _failed(field, reg, reason: str, crop=None) -> FieldDigits:
@@ -121,9 +102,7 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
     reg = register_page(page, layout)
     t = add("register", t)
     dpi = float(getattr(reg, "dpi", 0.0) or page.dpi)
-    method = layout.binarize
-    if method == "auto":
-        method = "sauvola" if is_uneven(reg.image, dpi) else "otsu"
+    method = choose_method(layout.binarize, reg.image, dpi)
     level = page_ink_level(reg.image)
     t = add("binarize", t)
     where = f"{page.source} page {page.page_number}"

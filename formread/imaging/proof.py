@@ -13,6 +13,7 @@ import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 
 from ..errors import check_param
+from .affine import affine_scale, apply_affine
 
 __all__ = ["render_proof", "PALETTE"]
 
@@ -59,13 +60,12 @@ def render_proof(page_digits, layout, *, scale: float = 0.5) -> Image.Image:
     draw = ImageDraw.Draw(img)
     lw = max(1, int(round(3 * scale)))
     s = scale
-    px_per_mm = float(np.sqrt(abs(np.linalg.det(np.asarray(reg.matrix)[:, :2]))))
+    px_per_mm = affine_scale(reg.matrix)
     size = max(10, int(round(2.8 * px_per_mm * s)))       # labels about 2.8 mm tall on the page
     font = ImageFont.load_default(size=size)
 
     def mm_to_img(points_mm) -> np.ndarray:
-        p = np.asarray(points_mm, np.float64).reshape(-1, 2)
-        return (p @ np.asarray(reg.matrix)[:, :2].T + np.asarray(reg.matrix)[:, 2]) * s
+        return apply_affine(reg.matrix, points_mm) * s
 
     marks = getattr(reg, "mark_px", None)
     if marks is not None:

@@ -34,6 +34,7 @@ from scipy import ndimage
 
 from ..errors import RegistrationError, check_param
 from ..form.layout import Layout
+from .affine import affine_scale, apply_affine, fit_affine
 from .load import Page
 
 __all__ = ["Registration", "register_page", "fit_affine", "apply_affine", "WORK_DPI"]
@@ -79,25 +80,10 @@ class Registration:
         return apply_affine(self.matrix, points_mm)
 
 
-def apply_affine(matrix: np.ndarray, points) -> np.ndarray:
-    """(N, 2) points through a (2, 3) affine matrix -> (N, 2) float64."""
-    p = np.asarray(points, dtype=np.float64).reshape(-1, 2)
-    return p @ np.asarray(matrix, dtype=np.float64)[:, :2].T + np.asarray(matrix, dtype=np.float64)[:, 2]
-
-
-def fit_affine(src: np.ndarray, dst: np.ndarray) -> np.ndarray:
-    """Least-squares affine transform taking ``src`` (N, 2) to ``dst`` (N, 2), N >= 3 -> (2, 3) float64."""
-    src = np.asarray(src, dtype=np.float64)
-    dst = np.asarray(dst, dtype=np.float64)
-    a = np.hstack([src, np.ones((len(src), 1))])
-    sol, *_ = np.linalg.lstsq(a, dst, rcond=None)
-    return sol.T.copy()
-
-
 def _rms_mm(matrix: np.ndarray, src: np.ndarray, dst: np.ndarray) -> float:
     """RMS of fit residuals, converted from pixels to mm with the fit's own scale."""
     res = apply_affine(matrix, src) - dst
-    scale = math.sqrt(abs(np.linalg.det(matrix[:, :2])))
+    scale = affine_scale(matrix)
     return float(np.sqrt(np.mean(np.sum(res ** 2, axis=1)))) / max(scale, 1e-12)
 
 
@@ -461,4 +447,4 @@ def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_resi
     dst = dst + 0.5
     return Registration(matrix=matrix, residual_mm=float(residual), marks_found=len(used), rotated_180=flip,
                         skew_deg=float(skew), image=image, dpi=float(dpi), mark_px=dst,
-                        mark_index=tuple(used), scale=float(math.sqrt(abs(np.linalg.det(matrix[:, :2])))))
+                        mark_index=tuple(used), scale=affine_scale(matrix))

@@ -30,7 +30,7 @@ from ..errors import DataError, check_param
 from ..fileio import atomic_write
 from ..nn.augment import AugmentConfig
 from ..nn.model import build_model
-from ..nn.modelfile import load_model, save_model
+from ..read.bundle import load_bundle
 from ..nn.train import TrainConfig, evaluate, stratified_split, train
 from .datasets import held_out_parts, load_named
 
@@ -134,7 +134,10 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
     check_param(0 < held_out < 1, "held_out", "a number in (0, 1)", held_out)
     check_param(isinstance(epochs, int) and epochs >= 1, "epochs", "an integer >= 1", epochs)
     model_path = Path(model_path)
-    model, header = load_model(model_path)
+    parent = load_bundle(model_path)
+    model, header = parent.networks[0], parent.header
+    if len(parent.networks) != 1:
+        raise DataError(f"{model_path}: holds {len(parent.networks)} networks; retraining fine-tunes one")
     local = load_samples_folder(samples_dir, min_share=0.0)
     if len(local) < MIN_LOCAL_SAMPLES:
         raise DataError(f"{samples_dir}: only {len(local)} local samples; retraining needs at least "
@@ -159,7 +162,7 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
     local_before = _accuracy(model, x_hold, y_hold)
     original_before = {p: _accuracy(model, d.x, d.y) for p, d in original_tests.items()}
 
-    new = build_model(header["architecture"], np.random.default_rng(seed))
+    new = build_model(model.spec, np.random.default_rng(seed))
     new.load_state_dict(model.state_dict())
     base_cfg = (header.get("training") or {}).get("config") or {}
     aug = AugmentConfig(**base_cfg["augment"]) if isinstance(base_cfg.get("augment"), dict) else AugmentConfig()
@@ -202,9 +205,11 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
         "local_split": f"stratified {held_out:g} of each digit held out (seed {seed})",
         "config": cfg.as_dict(), "promoted": promoted, "reason": reason,
     }
-    save_model(out_path, new, {"input": header.get("input"), "labels": header.get("labels"),
-                               "training": training, "seed": seed, "metrics": metrics,
-                               "temperature": result.temperature})
+    # the decoder constants were fitted for the parent network: the new version inherits them
+    # (``formread learn`` refits them on held-out pages; shown as inherited wherever the model is shown)
+    parent.save_successor(out_path, new, {"input": header.get("input"), "labels": header.get("labels"),
+                                          "training": training, "seed": seed, "metrics": metrics,
+                                          "temperature": result.temperature})
     if promoted:
         promote(out_path, out_path.parent)
     return RetrainReport(

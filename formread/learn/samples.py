@@ -25,7 +25,8 @@ from PIL import Image
 
 from ..errors import DataError, LedgerError
 from ..fileio import atomic_write
-from ..review.actions import connect, list_decided, load_digits
+from ..ledger.store import load_digits, open_ledger
+from ..review.queries import list_decided
 
 __all__ = ["SamplesReport", "collect_samples", "MANIFEST"]
 
@@ -115,12 +116,9 @@ def collect_samples(outdir: str | Path, samples_dir: str | Path, *,
     by_key = {(r.get("content_hash"), r.get("field"), r.get("position")): r for r in records}
     report = SamplesReport()
 
-    conn = connect(outdir)
-    try:
-        decided = list_decided(conn, outdir, statuses=statuses)
-        pages = {r["id"]: r for r in conn.execute("SELECT id, source, page_number, content_hash FROM pages")}
-    finally:
-        conn.close()
+    with open_ledger(outdir, create=False) as led:
+        decided = list_decided(led, statuses=statuses)
+        pages = {r["id"]: dict(r) for r in led.conn.execute("SELECT id, source, page_number, content_hash FROM pages")}
 
     for d in decided:
         value = d.final_value or ""

@@ -1,13 +1,23 @@
-"""The results ledger's SQLite schema (one file, ``OUTDIR/ledger.sqlite``, WAL mode).
+"""The results ledger's SQLite schema and its ordered migrations (``OUTDIR/ledger.sqlite``, WAL mode).
 
-Shared contract between the reader (writes runs, pages, fields) and the review
-page (writes reviews and the final value of fields).  Times are UTC ISO 8601.
-Paths are relative to the output folder.
+Shared contract between the reader (writes runs, pages, fields) and the review side (writes
+reviews and the final value of fields).  Times are UTC ISO 8601; paths are relative to the output
+folder.
+
+How the format grows: :data:`BASE_SCHEMA` is the schema of the first release (version 1), frozen.
+Every later change is one entry of :data:`MIGRATIONS`, applied in order; ``PRAGMA user_version``
+holds the version a ledger is at (version-1 ledgers, written before migrations existed, have
+``user_version`` 0 and ``meta.schema_version`` 1).  A new ledger is made by the same path: the base
+schema, then every migration.  Opening a ledger upgrades it in place, in one transaction, and
+refuses a ledger newer than this formread (formread.ledger.store.open_ledger).  Never edit a
+migration that has shipped: add one.
 """
 
-SCHEMA_VERSION = 1
+from __future__ import annotations
 
-SCHEMA = """
+__all__ = ["BASE_SCHEMA", "MIGRATIONS", "SCHEMA_VERSION"]
+
+BASE_SCHEMA = """
 CREATE TABLE IF NOT EXISTS meta (
     key   TEXT PRIMARY KEY,
     value TEXT NOT NULL
@@ -72,3 +82,22 @@ CREATE TABLE IF NOT EXISTS reviews (
 );
 CREATE INDEX IF NOT EXISTS fields_pending ON fields(decision, final_status);
 """
+"""Version 1, as the first release wrote it (never edit)."""
+
+MIGRATIONS: tuple[tuple[int, str, str], ...] = (
+    (2, "per-field thresholds and field sizes; the layout and model bundle as read", """
+ALTER TABLE fields ADD COLUMN threshold REAL;           -- the threshold this field's confidence was compared with
+ALTER TABLE fields ADD COLUMN threshold_source TEXT;    -- where it came from (formread.form.thresholds.SOURCES)
+ALTER TABLE fields ADD COLUMN max_digits INTEGER;       -- most digits the field holds (layout at read time)
+ALTER TABLE runs ADD COLUMN layout_text TEXT;           -- the layout file's text as read (review checks against it)
+ALTER TABLE runs ADD COLUMN bundle TEXT;                -- JSON: the model bundle's weights, decoder and decisions
+UPDATE fields SET threshold = (SELECT r.threshold FROM runs r JOIN pages p ON p.run_id = r.id
+                               WHERE p.id = fields.page_id),
+                  threshold_source = 'run'
+WHERE threshold IS NULL;
+"""),
+)
+"""Ordered migrations: (version reached, what it adds, SQL)."""
+
+SCHEMA_VERSION = 1 + len(MIGRATIONS)
+"""The version this formread writes."""

@@ -11,6 +11,7 @@ contract in :mod:`formread.ledger.schema`.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 import hashlib
 import json
@@ -20,14 +21,23 @@ import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from ..errors import LedgerError
-from .schema import SCHEMA, SCHEMA_VERSION
+import numpy as np
 
-__all__ = ["LEDGER_NAME", "FieldRow", "PageRow", "Ledger", "open_ledger", "check_output_folder",
-           "atomic_write", "utc_now", "page_hash"]
+from ..errors import LedgerError
+from .schema import BASE_SCHEMA, MIGRATIONS, SCHEMA_VERSION
+
+__all__ = ["LEDGER_NAME", "FieldRow", "PageRow", "Ledger", "open_ledger", "ledger_path", "check_output_folder",
+           "atomic_write", "utc_now", "page_hash", "load_digits", "digits_npz", "BUSY_SECONDS"]
 
 LEDGER_NAME = "ledger.sqlite"
 PAGE_STATUSES = ("read", "unregistered", "failed")
+BUSY_SECONDS = 30.0
+"""How long a writer waits for another writer of the same ledger (a clerk saving, a reader writing)."""
+
+
+def ledger_path(outdir) -> Path:
+    """``OUTDIR/ledger.sqlite``."""
+    return Path(outdir) / LEDGER_NAME
 
 
 def page_hash(gray) -> str:
@@ -35,8 +45,6 @@ def page_hash(gray) -> str:
 
     gray : ndarray of shape (H, W), uint8
     """
-    import numpy as np
-
     g = np.ascontiguousarray(gray)
     h = hashlib.sha256(f"{g.shape[0]}x{g.shape[1]}:{g.dtype.str}:".encode())
     h.update(g.tobytes())
@@ -96,6 +104,9 @@ class FieldRow:
     box_px: list | None = None
     image_png: bytes | None = None
     digits_npz: bytes | None = None
+    threshold: float | None = None
+    threshold_source: str | None = None
+    max_digits: int | None = None
 
 
 @dataclass
@@ -144,26 +155,31 @@ class Ledger:
 
     # --- runs -------------------------------------------------------------------------------
     def start_run(self, *, layout_path: str, layout_sha256: str, model_path: str, model_sha256: str,
-                  threshold: float, command: str) -> int:
-        """Record a new run; returns its id."""
-        with self._transaction():
+                  threshold: float, command: str, layout_text: str | None = None,
+                  bundle: dict | None = None) -> int:
+        """Record a new run; returns its id.
+
+        ``layout_text`` is the layout file as read (review checks values against it, not against
+        the file as it may be later); ``bundle`` a JSON-ready summary of the model bundle
+        (weights, decoder status, decisions) that read the run's pages.
+        """
+        with self.transaction():
             cur = self.conn.execute(
                 "INSERT INTO runs (started, layout_path, layout_sha256, model_path, model_sha256, threshold,"
-                " command) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                " command, layout_text, bundle) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (utc_now(), str(layout_path), layout_sha256, str(model_path), model_sha256, float(threshold),
-                 command))
+                 command, layout_text, None if bundle is None else json.dumps(bundle, sort_keys=True)))
             return int(cur.lastrowid)
 
     def finish_run(self, run_id: int) -> None:
         """Stamp the run's finishing time."""
-        with self._transaction():
+        with self.transaction():
             self.conn.execute("UPDATE runs SET finished = ? WHERE id = ?", (utc_now(), run_id))
 
     def last_run(self) -> dict | None:
         """The latest run as a dict, or None when the ledger has none."""
-        cur = self.conn.execute("SELECT * FROM runs ORDER BY id DESC LIMIT 1")
-        row = cur.fetchone()
-        return None if row is None else dict(zip([d[0] for d in cur.description], row))
+        row = self.conn.execute("SELECT * FROM runs ORDER BY id DESC LIMIT 1").fetchone()
+        return None if row is None else dict(row)
 
     # --- pages ------------------------------------------------------------------------------
     def known_pages(self) -> dict[str, str]:
@@ -184,7 +200,7 @@ class Ledger:
         """
         if page.status not in PAGE_STATUSES:
             raise LedgerError(f"{self.path}: page status must be one of {PAGE_STATUSES}; got {page.status!r}")
-        with self._transaction():
+        with self.transaction():
             c = self.conn
             old = c.execute("SELECT id, status FROM pages WHERE content_hash = ?", (page.content_hash,)).fetchone()
             page_id = None
@@ -225,12 +241,14 @@ class Ledger:
         accepted = f.decision == "accepted"
         self.conn.execute(
             "INSERT INTO fields (page_id, name, kind, reading, confidence, alternatives, digit_probs, rules,"
-            " decision, reason, image_path, digits_path, box_px, final_value, final_status)"
-            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            " decision, reason, image_path, digits_path, box_px, final_value, final_status, threshold,"
+            " threshold_source, max_digits)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (page_id, f.name, f.kind, f.reading, _opt_float(f.confidence), json.dumps(f.alternatives),
              json.dumps(f.digit_probs), json.dumps(f.rules), f.decision, f.reason, image_path, digits_path,
              None if f.box_px is None else json.dumps([round(float(v), 1) for v in f.box_px]),
-             f.reading if accepted else None, "auto" if accepted else None))
+             f.reading if accepted else None, "auto" if accepted else None, _opt_float(f.threshold),
+             f.threshold_source, None if f.max_digits is None else int(f.max_digits)))
 
     # --- reading back -----------------------------------------------------------------------
     def page_rows(self) -> list[dict]:
@@ -258,12 +276,12 @@ class Ledger:
         return {"pages": pages, "fields": fields}
 
     def _dicts(self, sql: str, args=()) -> list[dict]:
-        cur = self.conn.execute(sql, args)
-        names = [d[0] for d in cur.description]
-        return [dict(zip(names, row)) for row in cur.fetchall()]
+        return [dict(row) for row in self.conn.execute(sql, args).fetchall()]
 
     # --- plumbing ---------------------------------------------------------------------------
-    def _transaction(self):
+    def transaction(self):
+        """``with ledger.transaction():`` one ``BEGIN IMMEDIATE`` ... ``COMMIT``, rolled back on any
+        exception; an SQLite error inside becomes a one-line LedgerError naming the ledger."""
         return _Transaction(self.conn, self.path)
 
     def write_lock(self):
@@ -290,7 +308,7 @@ class _Transaction:
         try:
             self.conn.execute("BEGIN IMMEDIATE")
         except sqlite3.Error as e:
-            raise LedgerError(f"{self.path}: cannot write the ledger ({e})") from None
+            raise LedgerError(f"{self.path}: cannot write the ledger ({_sqlite_problem(e)})") from None
         return self.conn
 
     def __exit__(self, exc_type, exc, tb):
@@ -298,14 +316,32 @@ class _Transaction:
             try:
                 self.conn.execute("COMMIT")
             except sqlite3.Error as e:
-                self.conn.execute("ROLLBACK")
-                raise LedgerError(f"{self.path}: cannot write the ledger ({e})") from None
-        else:
-            try:
-                self.conn.execute("ROLLBACK")
-            except sqlite3.Error:
-                pass
+                with contextlib.suppress(sqlite3.Error):
+                    self.conn.execute("ROLLBACK")
+                raise LedgerError(f"{self.path}: cannot write the ledger ({_sqlite_problem(e)})") from None
+            return False
+        with contextlib.suppress(sqlite3.Error):
+            self.conn.execute("ROLLBACK")
+        if isinstance(exc, sqlite3.Error):
+            raise LedgerError(f"{self.path}: cannot write the ledger ({_sqlite_problem(exc)})") from None
+        if isinstance(exc, OSError) and not isinstance(exc, LedgerError):
+            raise LedgerError(f"{self.path}: cannot write the output folder "
+                              f"({exc.strerror or exc}{': ' + str(exc.filename) if exc.filename else ''})") from None
         return False
+
+
+def _sqlite_problem(e: sqlite3.Error) -> str:
+    """Plain words for the SQLite errors a clerk can meet."""
+    text = str(e)
+    if "readonly" in text or "read-only" in text:
+        return "the ledger or its folder is read-only"
+    if "locked" in text or "busy" in text:
+        return f"busy: another formread is writing it (waited {BUSY_SECONDS:.0f} s)"
+    if "disk" in text and "full" in text:
+        return "the disk is full"
+    if "malformed" in text or "not a database" in text:
+        return "the ledger file is damaged"
+    return text
 
 
 def _opt_float(v):
@@ -313,7 +349,10 @@ def _opt_float(v):
 
 
 def open_ledger(outdir, *, create: bool = True) -> Ledger:
-    """Open (and when ``create``, make) the ledger of an output folder.
+    """Open (and when ``create``, make) the ledger of an output folder; the one way to open it.
+
+    A ledger written by an earlier formread is upgraded in place by the ordered migrations of
+    :mod:`formread.ledger.schema` (one transaction: all of them or none); a newer one is refused.
 
     Parameters
     ----------
@@ -324,46 +363,116 @@ def open_ledger(outdir, *, create: bool = True) -> Ledger:
     Raises
     ------
     LedgerError
-        The folder cannot be used, the file is not a formread ledger, or its schema version differs.
+        The folder cannot be used, the file is not a formread ledger, or it is of a newer schema.
     """
     outdir = Path(outdir)
     path = outdir / LEDGER_NAME
     if create:
         check_output_folder(outdir)
     elif not path.is_file():
-        raise LedgerError(f"{path}: no ledger here (run 'formread read' first)")
+        raise LedgerError(f"{path}: no ledger here (run 'formread read' into this folder first)")
     try:
-        conn = sqlite3.connect(path, isolation_level=None, timeout=30.0)
+        conn = sqlite3.connect(path, isolation_level=None, timeout=BUSY_SECONDS, check_same_thread=False)
     except sqlite3.Error as e:
-        raise LedgerError(f"{path}: cannot open the ledger ({e})") from None
+        raise LedgerError(f"{path}: cannot open the ledger ({_sqlite_problem(e)})") from None
+    conn.row_factory = sqlite3.Row
     try:
+        conn.execute(f"PRAGMA busy_timeout={int(BUSY_SECONDS * 1000)}")
+        tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
+        if tables and "meta" not in tables:
+            raise LedgerError(f"{path}: not a formread ledger (no meta table)")
+        version = _version(conn, path) if tables else 0
+        if version > SCHEMA_VERSION:
+            raise LedgerError(f"{path}: ledger schema version {version} is newer than this formread "
+                              f"(version {SCHEMA_VERSION}); update formread")
         mode = conn.execute("PRAGMA journal_mode=WAL").fetchone()[0]
         if str(mode).lower() != "wal":
             raise LedgerError(f"{path}: cannot switch the ledger to WAL mode (got {mode})")
         conn.execute("PRAGMA synchronous=NORMAL")
         conn.execute("PRAGMA foreign_keys=ON")
-        conn.execute("PRAGMA busy_timeout=30000")
-        tables = {r[0] for r in conn.execute("SELECT name FROM sqlite_master WHERE type='table'")}
-        if tables and "meta" not in tables:
-            raise LedgerError(f"{path}: not a formread ledger (no meta table)")
-        if not tables:
-            conn.execute("BEGIN IMMEDIATE")
-            for stmt in _statements(SCHEMA):
-                conn.execute(stmt)
-            conn.execute("INSERT OR IGNORE INTO meta (key, value) VALUES ('schema_version', ?)",
-                         (str(SCHEMA_VERSION),))
-            conn.execute("COMMIT")
-        got = conn.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
-        if got is None or str(got[0]) != str(SCHEMA_VERSION):
-            raise LedgerError(f"{path}: ledger schema version {got[0] if got else 'missing'}, "
-                              f"this formread writes version {SCHEMA_VERSION}")
+        if version < SCHEMA_VERSION:
+            _upgrade(conn, version)
     except sqlite3.DatabaseError as e:
         conn.close()
-        raise LedgerError(f"{path}: not a usable ledger ({e})") from None
-    except LedgerError:
+        raise LedgerError(f"{path}: not a usable ledger ({_sqlite_problem(e)})") from None
+    except BaseException:
         conn.close()
         raise
     return Ledger(outdir, conn)
+
+
+def _version(conn: sqlite3.Connection, path: Path) -> int:
+    """The schema version of an existing ledger: ``user_version`` (since version 2) and
+    ``meta.schema_version`` (every version); a ledger either calls newer is newer."""
+    v = int(conn.execute("PRAGMA user_version").fetchone()[0])
+    row = conn.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+    if row is None or not str(row[0]).isdigit():
+        raise LedgerError(f"{path}: not a formread ledger (no schema version)")
+    return max(v, int(row[0]))
+
+
+def _upgrade(conn: sqlite3.Connection, version: int) -> None:
+    """From ``version`` (0 = a new, empty file) to SCHEMA_VERSION, in one transaction."""
+    conn.execute("BEGIN IMMEDIATE")
+    try:
+        if version == 0:
+            for stmt in _statements(BASE_SCHEMA):
+                conn.execute(stmt)
+            version = 1
+        for target, _what, sql in MIGRATIONS:
+            if target > version:
+                for stmt in _statements(sql):
+                    conn.execute(stmt)
+                version = target
+        conn.execute("INSERT OR REPLACE INTO meta (key, value) VALUES ('schema_version', ?)", (str(version),))
+        conn.execute(f"PRAGMA user_version = {int(version)}")
+        conn.execute("COMMIT")
+    except BaseException:
+        with contextlib.suppress(sqlite3.Error):
+            conn.execute("ROLLBACK")
+        raise
+
+
+def digits_npz(digits: np.ndarray, positions: np.ndarray) -> bytes:
+    """The ``.npz`` bytes of a field's digit-image file (see :func:`load_digits`).
+
+    digits : ndarray of shape (K, 1, 28, 28), float32; positions : ndarray of shape (K,), int64
+    """
+    import io
+
+    buf = io.BytesIO()
+    np.savez_compressed(buf, digits=np.asarray(digits, np.float32), positions=np.asarray(positions, np.int64))
+    return buf.getvalue()
+
+
+def load_digits(path) -> np.ndarray:
+    """Digit images of a field's chosen segmentation (``digits/<page>/<field>.npz``).
+
+    Returns
+    -------
+    ndarray of shape (K, 1, 28, 28), float32
+        The array stored under ``digits`` (or the file's only array).
+
+    Raises
+    ------
+    LedgerError
+        When the file is missing, not an .npz, or holds no (K, 1, 28, 28) array.
+    """
+    import zipfile
+
+    try:
+        with np.load(path, allow_pickle=False) as z:
+            key = "digits" if "digits" in z.files else (z.files[0] if len(z.files) == 1 else None)
+            if key is None:
+                raise LedgerError(f"{path}: no 'digits' array (has {', '.join(z.files)})")
+            x = z[key]
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as e:
+        raise LedgerError(f"{path}: digit images cannot be read ({e.__class__.__name__})") from None
+    if x.ndim == 3:
+        x = x[:, None]
+    if x.ndim != 4 or x.shape[1:] != (1, 28, 28) or not np.issubdtype(x.dtype, np.number):
+        raise LedgerError(f"{path}: digit images have shape {x.shape}, expected (K, 1, 28, 28)")
+    return x.astype(np.float32, copy=False)
 
 
 def _statements(script: str) -> list[str]:

@@ -41,19 +41,20 @@ from .model import Sequential
 from .optim import SGD, Adam, cosine_schedule, step_schedule
 from .parallel import DataParallel
 
-__all__ = ["TrainConfig", "TrainResult", "train", "stratified_split", "predict_logits", "evaluate",
+__all__ = ["TrainConfig", "TrainResult", "train", "stratified_split", "predict_logits", "evaluate", "OPTIMIZERS",
+           "SCHEDULES",
            "CHECKPOINT_FORMAT"]
 
 log = logging.getLogger(__name__)
 
 CHECKPOINT_FORMAT = "formread-checkpoint-1"
-_OPTIMIZERS = ("adam", "sgd")
-_SCHEDULES = ("constant", "step", "cosine")
+OPTIMIZERS = ("adam", "sgd")
+SCHEDULES = ("constant", "step", "cosine")
 
 
 @dataclass
 class TrainConfig:
-    """Settings of one training run.
+    """Settings of one training run; the defaults are the shipped model's recipe (models/MODEL_CARD.md).
 
     Attributes
     ----------
@@ -76,7 +77,7 @@ class TrainConfig:
                             1-process run, and a resumed 2-process run is not bit-identical)
     """
 
-    epochs: int = 30
+    epochs: int = 50
     batch_size: int = 64
     optimizer: str = "adam"
     lr: float = 2e-3
@@ -85,9 +86,9 @@ class TrainConfig:
     step_epochs: int = 10
     warmup: int = 1
     weight_decay: float = 0.0
-    label_smoothing: float = 0.0
+    label_smoothing: float = 0.1
     val_fraction: float = 0.1
-    patience: int = 8
+    patience: int = 12
     augment: AugmentConfig = field(default_factory=AugmentConfig)
     seed: int = 0
     workers: int = 1
@@ -97,8 +98,8 @@ class TrainConfig:
         check_param(isinstance(self.epochs, int) and self.epochs >= 1, "epochs", "an integer >= 1", self.epochs)
         check_param(isinstance(self.batch_size, int) and self.batch_size >= 1, "batch_size",
                     "an integer >= 1", self.batch_size)
-        check_param(self.optimizer in _OPTIMIZERS, "optimizer", f"one of {', '.join(_OPTIMIZERS)}", self.optimizer)
-        check_param(self.schedule in _SCHEDULES, "schedule", f"one of {', '.join(_SCHEDULES)}", self.schedule)
+        check_param(self.optimizer in OPTIMIZERS, "optimizer", f"one of {', '.join(OPTIMIZERS)}", self.optimizer)
+        check_param(self.schedule in SCHEDULES, "schedule", f"one of {', '.join(SCHEDULES)}", self.schedule)
         check_param(self.lr > 0, "lr", "a positive number", self.lr)
         check_param(0 <= self.val_fraction < 1, "val_fraction", "a number in [0, 1)", self.val_fraction)
         check_param(0 <= self.label_smoothing < 1, "label_smoothing", "a number in [0, 1)", self.label_smoothing)

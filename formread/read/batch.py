@@ -16,7 +16,6 @@ the end (also after Ctrl-C).
 
 from __future__ import annotations
 
-import dataclasses
 import hashlib
 import io
 import multiprocessing
@@ -30,24 +29,22 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from ..errors import FormreadError, ImageError, RegistrationError, check_param
-from ..form.layout import load_layout
+from ..errors import FormreadError, ImageError, RegistrationError, check_param, one_line
+from ..form.layout import Layout, load_layout, read_layout_text
+from ..form.thresholds import form_threshold, resolve_thresholds
 from ..imaging.load import iter_pages
 from ..imaging.pipeline import process_page
-from ..nn.modelfile import load_model
+from ..ledger.store import FieldRow, Ledger, PageRow, digits_npz, open_ledger, page_hash
 from ..paths import default_model_path
+from .bundle import Bundle, load_bundle
 from .decode import decode_page, unregistered_page
-from ..ledger.store import FieldRow, Ledger, PageRow, open_ledger, page_hash
 from .outputs import write_outputs
 from .recognise import recognise_page
-from ..form.rules import compile_rules
 
-__all__ = ["SCAN_SUFFIXES", "DEFAULT_THRESHOLD", "PAGE_DPI", "BatchReport", "list_scans", "read_batch"]
+__all__ = ["SCAN_SUFFIXES", "PAGE_DPI", "BatchReport", "list_scans", "read_batch"]
 
 SCAN_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".pdf")
 """File suffixes taken as scans when a folder is given (case-insensitive)."""
-DEFAULT_THRESHOLD = 0.9
-"""Acceptance threshold when neither the command line nor the layout gives one."""
 PAGE_DPI = 100.0
 """Resolution of the stored page images (review view)."""
 
@@ -149,8 +146,8 @@ class _Imaged:
 _STATE: dict = {}
 
 
-def _init_imaging(layout_path: str, pin_threads: bool) -> None:
-    """Worker start: load the layout once; one BLAS thread; Ctrl-C left to the main process."""
+def _init_imaging(layout: Layout, pin_threads: bool) -> None:
+    """Worker start: keep the run's layout; one BLAS thread; Ctrl-C left to the main process."""
     import signal
 
     if pin_threads:
@@ -159,7 +156,7 @@ def _init_imaging(layout_path: str, pin_threads: bool) -> None:
 
         _STATE["limits"] = threadpool_limits(limits=1)
         _watch_parent()
-    _STATE["layout"] = load_layout(layout_path)
+    _STATE["layout"] = layout
 
 
 def _watch_parent() -> None:
@@ -195,11 +192,9 @@ def _page_png(gray: np.ndarray, dpi: float) -> tuple[bytes, float]:
     return buf.getvalue(), 1.0 / max(1, factor)
 
 
-def _box_px(matrix: np.ndarray, spec, scale: float) -> list[float]:
+def _box_px(reg, spec, scale: float) -> list[float]:
     """Bounding box [x0, y0, x1, y1] on the stored page image of a field's rectangle (mm)."""
-    pts = np.array([[spec.x, spec.y, 1.0], [spec.x + spec.w, spec.y, 1.0],
-                    [spec.x, spec.y + spec.h, 1.0], [spec.x + spec.w, spec.y + spec.h, 1.0]])
-    px = pts @ np.asarray(matrix, dtype=np.float64).T * scale
+    px = reg.to_pixels(spec.region.corners()) * scale
     return [float(px[:, 0].min()), float(px[:, 1].min()), float(px[:, 0].max()), float(px[:, 1].max())]
 
 
@@ -213,17 +208,17 @@ def _image_page(page, content_hash: str) -> _Imaged:
         pd = process_page(page, layout, timings=stages)
     except RegistrationError as e:
         png, _ = _page_png(page.gray, page.dpi)
-        return _Imaged(status="unregistered", error=_one_line(e), page_png=png,
+        return _Imaged(status="unregistered", error=one_line(e), page_png=png,
                        seconds=time.perf_counter() - t0, stages=stages, **base)
     except FormreadError as e:
         png, _ = _page_png(page.gray, page.dpi)
-        return _Imaged(status="failed", error=_one_line(e), page_png=png,
+        return _Imaged(status="failed", error=one_line(e), page_png=png,
                        seconds=time.perf_counter() - t0, stages=stages, **base)
     reg = pd.registration
     image = getattr(reg, "image", None)
     png, scale = _page_png(image if image is not None else page.gray, page.dpi)
     specs = {f.name: f for f in layout.fields}
-    box = {name: _box_px(reg.matrix, specs[name], scale) for name in pd.fields if name in specs}
+    box = {name: _box_px(reg, specs[name], scale) for name in pd.fields if name in specs}
     field_png = {name: _png(fd.image) for name, fd in pd.fields.items() if fd.image is not None}
     return _Imaged(status="ok", fields=dict(pd.fields), page_png=png, field_png=field_png, box_px=box,
                    residual_mm=_opt(reg, "residual_mm"), rotated_180=_opt(reg, "rotated_180"),
@@ -249,7 +244,7 @@ def _decoded_pages(scans):
         except ImageError as e:
             # pages decoded before the failure are kept; the rest of the file is one failed record
             yield _Imaged(source=source, page_number=n + 1, content_hash=_file_failure_hash(source),
-                          status="failed", error=_one_line(e), seconds=time.perf_counter() - t0)
+                          status="failed", error=one_line(e), seconds=time.perf_counter() - t0)
 
 
 def _opt(obj, name):
@@ -259,34 +254,27 @@ def _opt(obj, name):
     return bool(v) if isinstance(v, (bool, np.bool_)) else float(v)
 
 
-def _one_line(e: BaseException) -> str:
-    s = str(e).strip()
-    return s.splitlines()[0] if s else e.__class__.__name__
-
-
 # ------------------------------------------------------------------------------------------ reading step
-def _digits_npz(fd, reading) -> bytes | None:
-    """The digit images of the reading, as ``.npz`` bytes: arrays ``digits`` (K, 1, 28, 28) float32
-    (one per character of the reading, in order) and ``positions`` (K,) int64 (rows of the chosen candidate)."""
-    i = getattr(reading, "candidate", None)
+def _digits_file(fd, reading) -> bytes | None:
+    """The digit images of the reading (one per character, in order) as the ledger's digit file."""
+    i = reading.candidate
     if not fd.candidates or i is None or not 0 <= i < len(fd.candidates):
         return None
     d = np.asarray(fd.candidates[i].digits, dtype=np.float32).reshape(-1, 1, 28, 28)
-    keep = np.asarray([p for p in (reading.positions or []) if 0 <= p < len(d)], dtype=np.int64)
-    buf = io.BytesIO()
-    np.savez_compressed(buf, digits=d[keep], positions=keep.astype(np.int64))
-    return buf.getvalue()
+    keep = np.asarray([p for p in reading.positions if 0 <= p < len(d)], dtype=np.int64)
+    return digits_npz(d[keep], keep)
 
 
-def _field_row(name: str, kind: str, r, *, image_png=None, digits_npz=None, box_px=None) -> FieldRow:
+def _field_row(layout: Layout, spec, r, threshold, *, image_png=None, digits=None, box_px=None) -> FieldRow:
     return FieldRow(
-        name=name, kind=kind, reading=r.reading,
+        name=spec.name, kind=spec.kind, reading=r.reading,
         confidence=None if r.confidence is None else float(r.confidence),
         decision=r.decision, reason=r.reason,
         alternatives=[[str(s), round(float(p), 6)] for s, p in (r.alternatives or [])],
         digit_probs=_jsonable(r.digit_probs or []),
         rules={str(k): bool(v) for k, v in (r.rules or {}).items()},
-        box_px=box_px, image_png=image_png, digits_npz=digits_npz)
+        box_px=box_px, image_png=image_png, digits_npz=digits,
+        threshold=float(r.threshold), threshold_source=threshold.source, max_digits=layout.capacity(spec.name))
 
 
 def _jsonable(v):
@@ -306,11 +294,9 @@ def _jsonable(v):
 class _Reader:
     """The main process's half: network, decoding, ledger rows."""
 
-    def __init__(self, layout, compiled, model, temperature: float, threshold: float):
-        # the run's threshold stands in for the layout's (decode falls back on the layout's own)
-        self.layout, self.compiled = dataclasses.replace(layout, threshold=threshold), compiled
-        self.model, self.temperature, self.threshold = model, temperature, threshold
-        self.kinds = {f.name: f.kind for f in layout.fields}
+    def __init__(self, layout: Layout, bundle: Bundle, thresholds: dict):
+        self.layout, self.bundle, self.thresholds = layout, bundle, thresholds
+        self.specs = {f.name: f for f in layout.fields}
 
     def page_row(self, im: _Imaged, report: BatchReport) -> PageRow:
         row = PageRow(content_hash=im.content_hash, source=im.source, page_number=im.page_number,
@@ -321,33 +307,23 @@ class _Reader:
             return row
         if im.status == "unregistered":
             row.status = "unregistered"
-            readings = unregistered_page(self.layout)
-            row.fields = [_field_row(n, self.kinds.get(n, "open"), r) for n, r in readings.items()]
+            readings = unregistered_page(self.layout, thresholds=self.thresholds)
+            row.fields = [_field_row(self.layout, self.specs[n], r, self.thresholds[n]) for n, r in readings.items()]
             return row
         t0 = time.perf_counter()
-        evidence = recognise_page(im.fields, self.model, temperature=self.temperature)
-        readings = decode_page(evidence, self.compiled, self.layout, threshold=self.threshold)
+        evidence = recognise_page(im.fields, self.bundle)
+        readings = decode_page(evidence, self.layout, confidence=self.bundle.decoder, thresholds=self.thresholds)
         report.recognition_seconds += time.perf_counter() - t0
         for name, r in readings.items():
             fd = im.fields.get(name)
             row.fields.append(_field_row(
-                name, self.kinds.get(name, getattr(fd, "kind", "open")), r,
-                image_png=im.field_png.get(name),
-                digits_npz=None if fd is None else _digits_npz(fd, r),
-                box_px=im.box_px.get(name)))
+                self.layout, self.specs[name], r, self.thresholds[name], image_png=im.field_png.get(name),
+                digits=None if fd is None else _digits_file(fd, r), box_px=im.box_px.get(name)))
         return row
 
 
 # ------------------------------------------------------------------------------------------ the job
-def _sha256_file(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for chunk in iter(lambda: f.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
-
-
-def read_batch(inputs: Iterable, layout_path, outdir, *, model_path=None, threshold: float | None = None,
+def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: float | None = None,
                workers: int = 2, progress: Callable | None = None, command: str = "formread read"
                ) -> BatchReport:
     """Read scanned forms into the ledger of ``outdir``.
@@ -355,11 +331,11 @@ def read_batch(inputs: Iterable, layout_path, outdir, *, model_path=None, thresh
     Parameters
     ----------
     inputs : paths of scan files or folders of scans
-    layout_path : the form's layout TOML
+    layout : the form's layout TOML (path), or a Layout already loaded from one
     outdir : output folder (made when missing): ``ledger.sqlite``, ``pages/``, ``fields/``, ``digits/``,
         ``readings.csv``, ``fields.jsonl``
-    model_path : model file; the shipped model by default
-    threshold : acceptance threshold; else the layout's ``threshold``, else 0.9
+    bundle : model bundle (Bundle or the path of a model file); the one in use by default
+    threshold : acceptance threshold for every field (wins over the layout's; see formread.form.thresholds)
     workers : processes for the imaging step (1 = all in this process)
     progress : ``progress(done, total, **figures)`` called after every page
     command : the command line, recorded in ``runs``
@@ -370,32 +346,37 @@ def read_batch(inputs: Iterable, layout_path, outdir, *, model_path=None, thresh
 
     Raises
     ------
-    LedgerError, LayoutError, RuleError, ModelFileError, ImageError
+    LedgerError, LayoutError, RuleError, ModelFileError, ImageError, ParameterError
         Before any page is read: unusable output folder, layout, rules or model, or a missing input.
     """
-    check_param(isinstance(workers, int) and workers >= 1, "workers", "an integer >= 1", workers)
-    check_param(threshold is None or (isinstance(threshold, (int, float)) and 0.0 < threshold <= 1.0),
-                "threshold", "a number in (0, 1]", threshold)
+    check_param(isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 64,
+                "workers", "an integer in 1..64", workers)
     t_start = time.perf_counter()
-    layout_path = Path(layout_path)
-    layout = load_layout(layout_path)
-    compiled = compile_rules(layout)
-    model_path = Path(model_path) if model_path is not None else default_model_path()
-    model, header = load_model(model_path)
-    temperature = float(header.get("temperature", 1.0))
-    if threshold is None:
-        threshold = layout.threshold if layout.threshold is not None else DEFAULT_THRESHOLD
+    if isinstance(layout, Layout):
+        layout_path = Path(layout.source)
+        layout_text = read_layout_text(layout_path) if layout_path.is_file() else layout.to_toml()
+    else:
+        layout_path = Path(layout)
+        layout_text = read_layout_text(layout_path)
+        layout = load_layout(layout_path)
+    if not isinstance(bundle, Bundle):
+        bundle = load_bundle(bundle if bundle is not None else default_model_path())
+    fitted = bundle.fitted_threshold(layout.name)
+    thresholds = resolve_thresholds(layout, explicit=threshold, fitted=fitted)
+    run_threshold = form_threshold(layout, explicit=threshold, fitted=fitted).value
     scans = list_scans(inputs)
     ledger = open_ledger(outdir)
     try:
         # absolute paths: the review page finds the layout from wherever it is started
-        run_id = ledger.start_run(layout_path=str(layout_path.resolve()), layout_sha256=_sha256_file(layout_path),
-                                  model_path=str(model_path.resolve()), model_sha256=str(header.get("sha256", "")),
-                                  threshold=float(threshold), command=command)
+        run_id = ledger.start_run(layout_path=str(layout_path.resolve()),
+                                  layout_sha256=hashlib.sha256(layout_text.encode("utf-8")).hexdigest(),
+                                  model_path=str(bundle.path.resolve()), model_sha256=bundle.sha256,
+                                  threshold=run_threshold, command=command, layout_text=layout_text,
+                                  bundle=bundle.summary())
         report = BatchReport(run_id=run_id, outdir=Path(outdir))
-        reader = _Reader(layout, compiled, model, temperature, float(threshold))
+        reader = _Reader(layout, bundle, thresholds)
         try:
-            _run(scans, layout_path, ledger, reader, report, workers, progress, t_start)
+            _run(scans, layout, ledger, reader, report, workers, progress, t_start)
             ledger.finish_run(run_id)
         finally:
             write_outputs(ledger)
@@ -415,7 +396,7 @@ class _Done:
         return self.value
 
 
-def _run(scans, layout_path: Path, ledger: Ledger, reader: _Reader, report: BatchReport, workers: int,
+def _run(scans, layout: Layout, ledger: Ledger, reader: _Reader, report: BatchReport, workers: int,
          progress, t_start: float) -> None:
     known = ledger.known_pages()
     pin = workers > 1
@@ -423,9 +404,9 @@ def _run(scans, layout_path: Path, ledger: Ledger, reader: _Reader, report: Batc
     if pin:
         ctx = multiprocessing.get_context("spawn")
         pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_imaging,
-                                   initargs=(str(layout_path), True))
+                                   initargs=(layout, True))
     else:
-        _init_imaging(str(layout_path), False)
+        _init_imaging(layout, False)
     from threadpoolctl import threadpool_limits
 
     # with workers busy on the other cores, the main process's BLAS keeps to one thread

@@ -5,14 +5,15 @@ field, probabilities over 0-9 (temperature-scaled on clean held-out digits).  Th
 module turns them into one reading per field, a confidence, and a decision
 (``accepted`` or ``review`` with a reason), using the field's own rules and the
 relations between fields.  Pure numpy/python.  The few numbers of the model are a
-:class:`ConfidenceModel`; :data:`CONFIDENCE_MODEL` holds the values fitted on
-development demo sets (see its notes), :data:`PLAIN` switches every addition off.
+:class:`ConfidenceModel`, fitted for one network and carried by its model bundle
+(:mod:`formread.read.bundle`: the caller passes ``bundle.decoder``); :data:`PLAIN`
+switches every addition off.
 
 Probability model
 -----------------
 1. *Digits.*  Each digit's probabilities go through a reliability map
    (``digit_calibration``: the top digit's error ``1 - max p`` is replaced by the
-   error rate measured for digits read that sure, see :data:`DIGIT_RELIABILITY`),
+   error rate measured for digits read that sure on development forms),
    optionally after an extra temperature (``temperature_boxed`` / ``temperature_open``):
    digits cut from scans are misread more often than the model's own calibration on
    clean digits says.
@@ -65,8 +66,8 @@ The confidence is what :mod:`formread.read.tune` thresholds: a number in [0, 1]
 that ranks fields by how likely their reading is right, calibrated on development
 demo sets only up to the accuracy of the fitted constants above.
 
-Decision: ``accepted`` when the confidence reaches the threshold (the field's own
-``threshold``, else the page threshold) and every rule and relation holds and the
+Decision: ``accepted`` when the confidence reaches the field's threshold (resolved by the one
+threshold policy, :mod:`formread.form.thresholds`) and every rule and relation holds and the
 segmentation is not doubtful; otherwise ``review`` with the first applicable reason
 of :data:`REASONS`.
 """
@@ -80,13 +81,13 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from formread.errors import check_param
-from formread.form.rules import CompiledRules, FieldRules, check_value
+from ..errors import check_param
+from ..form.rules import CompiledRules, FieldRules, check_value
 
 __all__ = [
     "CandidateEvidence", "FieldEvidence", "FieldReading", "decode_page", "decode_field",
     "unregistered_page", "evidence_from_digits", "kbest_strings", "REASONS", "ACCEPTED", "REVIEW",
-    "DEFAULT_THRESHOLD", "ConfidenceModel", "CONFIDENCE_MODEL", "PLAIN", "DIGIT_RELIABILITY",
+    "ConfidenceModel", "PLAIN",
 ]
 
 ACCEPTED = "accepted"
@@ -102,8 +103,6 @@ MAX_STRINGS = 128
 RELATION_TOP = 5
 MAX_COMBINATIONS = 20000
 N_ALTERNATIVES = 5
-DEFAULT_THRESHOLD = 0.9
-"""Page threshold when neither the caller nor the layout gives one."""
 _FLOOR = 1e-300
 
 
@@ -183,36 +182,6 @@ class ConfidenceModel:
 
 PLAIN = ConfidenceModel()
 """No extra temperature, prior as given, rules as filters only: confidence = P(reading)."""
-DIGIT_RELIABILITY = ((-7.0, -2.9), (-5.0, -2.9), (-4.25, -2.1), (-3.25, -1.6), (-2.75, -1.3), (-2.25, -1.05),
-                     (-1.75, -0.95), (-1.25, -0.66), (-0.75, -0.47), (-0.25, -0.3))
-"""Knots ``(log10 e, log10 e')`` of the digit reliability map of :data:`CONFIDENCE_MODEL`.
-
-Measured on 6008 digits of development demo cards whose segmentation had the right
-number of digits (``formread demo make --count 60 --seed 101`` and ``--count 120 --seed 102``,
-shipped model): the share of misread digits per band of ``log10(1 - max p)``, smoothed
-to be nondecreasing.  E.g. digits read at 0.99-0.999 were wrong 3-5% of the time, not
-0.1-1%, and even digits read at 0.99999 or more were wrong about 0.13% of the time
-(the error floor of ``-2.9``)."""
-
-CONFIDENCE_MODEL = ConfidenceModel(prior_scale=0.25, digitness=3.0, rule_slack=0.03, relation_slack=0.003,
-                                   tail_weight=0.01, digit_calibration=DIGIT_RELIABILITY)
-"""The model :func:`decode_page` uses by default.
-
-Fitted with the shipped model (``models/default.npz``) on development demo sets only
-(``formread demo make --count 60 --seed 101`` and ``--count 120 --seed 102``, 1080 fields;
-never on the shipped set, seed 7, nor the check set, seed 11): the digit map is
-:data:`DIGIT_RELIABILITY` (no extra temperature: a temperature that fitted the
-0.99-0.999 band, about 1.9, made the surest digits far too doubtful); the other values
-by coordinate search over a grid of each, minimising the review rate at the threshold
-``formread tune`` chooses for 0.5% error among accepted fields plus the error at 15%
-review (``benchmarks/decision_quality.py fast`` measures both).  On those sets the field
-confidences came out calibrated within a few points per band.  Refit after retraining
-the network or when local scans differ much from the demo's.
-
-Checked again after the demo layout got a year window for ``reading_date`` (``years``) and
-open-field segmentation a lower cost for a narrow "1": the same coordinate search on the
-same development sets (evidence made afresh) moved the review rate at 0.5% error by under
-0.2 points (20.0% -> 19.8%, within noise), so the values were kept."""
 
 
 @dataclass
@@ -580,8 +549,8 @@ def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, rela
 
 def _decide(st: _State, threshold: float) -> None:
     r = st.reading
-    thr = st.rules.threshold if st.rules.threshold is not None else threshold
-    r.threshold = float(thr)
+    thr = float(threshold)
+    r.threshold = thr
     doubtful = st.doubtful or (r.candidate is not None and st.interior_blank[r.candidate])
     failure = _first_failure(r.rules)
     if r.reading is None:
@@ -600,29 +569,37 @@ def _decide(st: _State, threshold: float) -> None:
     r.decision = ACCEPTED if reason is None else REVIEW
 
 
-def _model(model: ConfidenceModel | None, cost_scale: float | None) -> ConfidenceModel:
-    m = CONFIDENCE_MODEL if model is None else model
-    check_param(isinstance(m, ConfidenceModel), "model", "a ConfidenceModel", type(m).__name__)
+def _model(model: ConfidenceModel, cost_scale: float | None) -> ConfidenceModel:
+    check_param(isinstance(model, ConfidenceModel), "confidence", "a ConfidenceModel (bundle.decoder)",
+                type(model).__name__)
     if cost_scale is not None:
         check_param(cost_scale > 0, "cost_scale", "positive", cost_scale)
-        m = dataclasses.replace(m, prior_scale=float(cost_scale))
-    return m
+        model = dataclasses.replace(model, prior_scale=float(cost_scale))
+    return model
+
+
+def _threshold(thresholds, name: str) -> float:
+    t = thresholds.get(name) if thresholds is not None else None
+    t = getattr(t, "value", t)          # a FieldThreshold or a plain number
+    check_param(t is not None, f"thresholds[{name!r}]", "a threshold for every field (resolve_thresholds)", t)
+    return float(t)
 
 
 def decode_field(evidence: FieldEvidence | None, rules: FieldRules, *, threshold: float,
-                 top_per_position: int = TOP_PER_POSITION, max_strings: int = MAX_STRINGS,
-                 cost_scale: float | None = None, model: ConfidenceModel | None = None) -> FieldReading:
+                 confidence: ConfidenceModel, top_per_position: int = TOP_PER_POSITION,
+                 max_strings: int = MAX_STRINGS, cost_scale: float | None = None) -> FieldReading:
     """Decode one field on its own (its own rules only, no relations); see :func:`decode_page`."""
-    st = _field_state(evidence, rules, top=top_per_position, limit=max_strings, model=_model(model, cost_scale))
+    st = _field_state(evidence, rules, top=top_per_position, limit=max_strings,
+                      model=_model(confidence, cost_scale))
     _decide(st, threshold)
     return st.reading
 
 
-def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRules, layout, *,
-                threshold: float | None = None, top_per_position: int = TOP_PER_POSITION,
+def decode_page(evidence: dict[str, FieldEvidence], layout, *, confidence: ConfidenceModel,
+                thresholds, top_per_position: int = TOP_PER_POSITION,
                 max_strings: int = MAX_STRINGS, relation_top: int = RELATION_TOP,
-                max_combinations: int = MAX_COMBINATIONS, cost_scale: float | None = None,
-                model: ConfidenceModel | None = None) -> dict[str, FieldReading]:
+                max_combinations: int = MAX_COMBINATIONS, cost_scale: float | None = None
+                ) -> dict[str, FieldReading]:
     """Read every field of a registered page.
 
     Parameters
@@ -630,54 +607,42 @@ def decode_page(evidence: dict[str, FieldEvidence], compiled_rules: CompiledRule
     evidence : dict of str to FieldEvidence
         Per field name; a field missing here (or with no candidates) gets no reading
         and goes to review as ``segmentation_doubtful``.
-    compiled_rules : CompiledRules
-        From ``compile_rules(layout)``.
-    layout : Layout
-        Its ``fields`` give the order of the result; ``layout.threshold`` is used
-        when ``threshold`` is None (and :data:`DEFAULT_THRESHOLD` when both are).
-    threshold : float in [0, 1] or None
-        Page threshold (a field's own ``threshold`` takes precedence).
+    layout : formread.form.layout.Layout
+        Its ``fields`` give the order of the result; ``layout.rules`` the rules and relations.
+    confidence : ConfidenceModel
+        The decoder's constants, fitted for the network that gave the probabilities
+        (``bundle.decoder``); :data:`PLAIN` gives confidence = P(reading).
+    thresholds : mapping of field name to FieldThreshold (or float)
+        Every field's threshold, from ``formread.form.thresholds.resolve_thresholds``.
     top_per_position, max_strings, relation_top, max_combinations
         Search sizes (see the module docstring).
     cost_scale : float or None
         Overrides the model's ``prior_scale`` when given.
-    model : ConfidenceModel or None
-        Default :data:`CONFIDENCE_MODEL`; :data:`PLAIN` gives confidence = P(reading).
 
     Returns
     -------
     dict of str to FieldReading
         In the layout's field order.
     """
-    thr = _page_threshold(layout, threshold)
-    check_param(isinstance(thr, (int, float)) and 0.0 <= thr <= 1.0, "threshold", "a number in [0, 1]", thr)
     check_param(top_per_position >= 1 and max_strings >= 1 and relation_top >= 1 and max_combinations >= 1,
                 "search sizes", "positive integers",
                 (top_per_position, max_strings, relation_top, max_combinations))
-    m = _model(model, cost_scale)
+    m = _model(confidence, cost_scale)
+    compiled = layout.rules
     states = {}
     for f in layout.fields:
-        states[f.name] = _field_state(evidence.get(f.name), compiled_rules.fields[f.name], top=top_per_position,
+        states[f.name] = _field_state(evidence.get(f.name), compiled.fields[f.name], top=top_per_position,
                                       limit=max_strings, model=m)
-    _apply_relations(states, compiled_rules, relation_top=relation_top, max_combinations=max_combinations,
-                     model=m)
-    for st in states.values():
-        _decide(st, float(thr))
+    _apply_relations(states, compiled, relation_top=relation_top, max_combinations=max_combinations, model=m)
+    for name, st in states.items():
+        _decide(st, _threshold(thresholds, name))
     return {name: st.reading for name, st in states.items()}
 
 
-def _page_threshold(layout, threshold):
-    if threshold is not None:
-        return threshold
-    t = getattr(layout, "threshold", None)
-    return DEFAULT_THRESHOLD if t is None else t
-
-
-def unregistered_page(layout, *, threshold: float | None = None) -> dict[str, FieldReading]:
+def unregistered_page(layout, *, thresholds) -> dict[str, FieldReading]:
     """Every field of ``layout`` without a reading, in review as ``page_not_registered``."""
-    thr = _page_threshold(layout, threshold)
     return {f.name: FieldReading(f.name, None, 0.0, decision=REVIEW, reason="page_not_registered",
-                                 threshold=float(f.threshold if f.threshold is not None else thr))
+                                 threshold=_threshold(thresholds, f.name))
             for f in layout.fields}
 
 
@@ -694,10 +659,10 @@ def evidence_from_digits(field_digits, probs: list[np.ndarray]) -> FieldEvidence
     """
     cands = field_digits.candidates
     check_param(len(probs) == len(cands), "probs", f"one array per candidate ({len(cands)})", len(probs))
-    blank = getattr(field_digits, "blank", None) if getattr(field_digits, "kind", "open") == "boxed" else None
+    blank = field_digits.blank if field_digits.kind == "boxed" else None
     return FieldEvidence(
         name=field_digits.name,
         candidates=[CandidateEvidence(p, float(c.cost), blank) for p, c in zip(probs, cands)],
-        doubtful=bool(getattr(field_digits, "doubtful", False)),
-        reason=getattr(field_digits, "reason", None),
+        doubtful=bool(field_digits.doubtful),
+        reason=field_digits.reason,
     )

@@ -7,15 +7,14 @@ reviewed (their final value of confirmed / corrected / empty fields).
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
 
-from ..errors import DataError, LayoutError
-from ..ledger.store import atomic_write, open_ledger
+from ..errors import DataError
+from ..ledger.store import ledger_path, open_ledger
 from .score import score_readings, write_curve_png
 from .tune import choose_threshold
 
-__all__ = ["ledger_readings", "score_ledger", "tune_ledger", "store_threshold", "ELIGIBLE_REASONS",
+__all__ = ["ledger_readings", "score_ledger", "tune_ledger", "ELIGIBLE_REASONS",
            "SUMMARY_KEYS"]
 
 ELIGIBLE_REASONS = (None, "low_confidence")
@@ -65,7 +64,7 @@ def score_ledger(outdir, truth_path, *, curve_png=None, target: float = 0.005) -
         raise DataError(f"{outdir}: the ledger holds no field to score")
     report = score_readings(recs, truth_path)
     summary = report.summary()
-    summary["ledger"] = str(Path(outdir) / "ledger.sqlite")
+    summary["ledger"] = str(ledger_path(outdir))
     summary["threshold"] = None if run is None else float(run["threshold"])
     if curve_png is not None:
         write_curve_png(curve_png, report.curve(), threshold=summary["threshold"], target=target)
@@ -112,45 +111,3 @@ def tune_ledger(outdir, truth_path=None, *, target: float = 0.005, criterion: st
             "accepted": int(res.accepted), "wrong_accepted": int(res.wrong_accepted), "fields": int(res.fields),
             "target": float(target), "target_met": bool(res.met), "truth_source": source,
             "truth_pages_not_read": missing}
-
-
-_TABLE = re.compile(r"^\s*\[")
-_THRESHOLD = re.compile(r"^(\s*)threshold\s*=.*$")
-
-
-def store_threshold(layout_path, threshold: float) -> None:
-    """Set ``[form] threshold`` in a layout file, keeping everything else (comments too); atomic.
-
-    Raises
-    ------
-    LayoutError
-        The file cannot be read, has no ``[form]`` table, or would no longer parse.
-    """
-    from ..form.layout import parse_layout
-
-    path = Path(layout_path)
-    try:
-        lines = path.read_text(encoding="utf-8").splitlines()
-    except OSError as e:
-        raise LayoutError(f"{path}: cannot be read ({e.strerror or e})") from None
-    start = next((i for i, s in enumerate(lines) if s.strip() == "[form]"), None)
-    if start is None:
-        raise LayoutError(f"{path}: no [form] table to store the threshold in")
-    end = next((i for i in range(start + 1, len(lines)) if _TABLE.match(lines[i])), len(lines))
-    threshold = min(1.0, float(threshold))
-    value = f"threshold = {round(threshold, 6)!r}"
-    for i in range(start + 1, end):
-        m = _THRESHOLD.match(lines[i])
-        if m:
-            lines[i] = m.group(1) + value + "    # chosen by formread tune"
-            break
-    else:
-        last = end
-        while last > start + 1 and not lines[last - 1].strip():
-            last -= 1
-        lines.insert(last, value + "    # chosen by formread tune")
-    text = "\n".join(lines) + "\n"
-    layout = parse_layout(text, str(path))
-    if layout.threshold is None or abs(layout.threshold - float(threshold)) > 1e-6:
-        raise LayoutError(f"{path}: the threshold could not be stored")
-    atomic_write(path, text.encode("utf-8"))

@@ -12,6 +12,7 @@ import io
 import json
 from pathlib import Path
 
+from ..fileio import spreadsheet_cell
 from ..ledger.store import Ledger, atomic_write
 
 __all__ = ["READINGS_CSV", "FIELDS_JSONL", "field_value", "field_status", "write_outputs"]
@@ -43,7 +44,8 @@ def _field_names(rows: list[dict]) -> list[str]:
 
 
 def readings_csv(ledger: Ledger) -> str:
-    """``readings.csv`` text: one row per page, a value and a status column per field."""
+    """``readings.csv`` text: one row per page, a value and a status column per field (cells a
+    spreadsheet would run as a formula are quoted, see formread.fileio.spreadsheet_cell)."""
     pages = ledger.page_rows()
     fields = ledger.field_rows()
     names = _field_names(fields)
@@ -55,7 +57,7 @@ def readings_csv(ledger: Ledger) -> str:
     w.writerow(["page_id", "source", "page_number", "page_status", "page_error"]
                + [c for n in names for c in (n, f"{n}_status")])
     for p in pages:
-        row = [p["id"], p["source"], p["page_number"], p["status"], p["error"] or ""]
+        row = [p["id"], spreadsheet_cell(p["source"]), p["page_number"], p["status"], spreadsheet_cell(p["error"])]
         mine = by_page.get(p["id"], {})
         for n in names:
             f = mine.get(n)
@@ -63,7 +65,7 @@ def readings_csv(ledger: Ledger) -> str:
                 row += ["", ""]
             else:
                 v = field_value(f)
-                row += ["" if v is None else v, field_status(f)]
+                row += [spreadsheet_cell(v), field_status(f)]
         w.writerow(row)
     return buf.getvalue()
 

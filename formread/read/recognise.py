@@ -3,8 +3,8 @@
 Why batched: one ``predict_proba`` call over every digit image of every
 candidate segmentation of every field of a page (or of several pages) costs far
 less than one call per field, since the convolutions run as a few large matrix
-products.  The model's calibrated temperature is applied here, so the decoder
-sees calibrated digit probabilities.
+products.  The model bundle applies its calibrated temperature (and averages an
+ensemble), so the decoder sees calibrated digit probabilities.
 """
 
 from __future__ import annotations
@@ -48,16 +48,13 @@ def digit_images(pages: Sequence[Mapping]) -> tuple[np.ndarray, list]:
     return x, spans
 
 
-def recognise_pages(pages: Sequence[Mapping], model, *, temperature: float = 1.0,
-                    batch_size: int = 256) -> list[dict]:
+def recognise_pages(pages: Sequence[Mapping], bundle, *, batch_size: int = 256) -> list[dict]:
     """Digit probabilities for every candidate of every field of several pages, in ONE network pass.
 
     Parameters
     ----------
     pages : sequence of ``{name: FieldDigits}`` (``PageDigits.fields``)
-    model : ``formread.nn.model.Sequential`` (10 classes)
-    temperature : float
-        The model file's calibrated temperature.
+    bundle : formread.read.bundle.Bundle (anything with ``predict_proba(x) -> (N, 10)``)
 
     Returns
     -------
@@ -65,8 +62,7 @@ def recognise_pages(pages: Sequence[Mapping], model, *, temperature: float = 1.0
     an ndarray of shape (K, 10), float32.
     """
     x, spans = digit_images(pages)
-    probs = model.predict_proba(x, batch_size=batch_size, temperature=temperature) if len(x) else \
-        np.zeros((0, 10), np.float32)
+    probs = bundle.predict_proba(x, batch_size=batch_size) if len(x) else np.zeros((0, 10), np.float32)
     out = []
     for fields, mine in zip(pages, spans):
         out.append({name: evidence_from_digits(fd, [probs[a:b] for a, b in mine[name]])
@@ -74,6 +70,6 @@ def recognise_pages(pages: Sequence[Mapping], model, *, temperature: float = 1.0
     return out
 
 
-def recognise_page(fields: Mapping, model, *, temperature: float = 1.0) -> dict:
+def recognise_page(fields: Mapping, bundle) -> dict:
     """``recognise_pages`` for one page: ``{name: FieldDigits}`` -> ``{name: FieldEvidence}``."""
-    return recognise_pages([fields], model, temperature=temperature)[0]
+    return recognise_pages([fields], bundle)[0]

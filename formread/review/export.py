@@ -22,8 +22,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from ..errors import LedgerError
-from ..fileio import atomic_write
-from .actions import connect
+from ..fileio import atomic_write, spreadsheet_cell
+from ..ledger.store import open_ledger
 
 __all__ = ["HOW", "CSV_NAME", "JSONL_NAME", "ExportResult", "final_records", "export_final"]
 
@@ -61,7 +61,8 @@ def _value(how: str, reading: str | None, final_value: str | None) -> str:
 
 _RECORDS_SQL = (
     "SELECT f.id, f.page_id, f.name, f.reading, f.confidence, f.reason, f.decision, f.final_value, "
-    "f.final_status, p.source, p.page_number, p.status AS page_status, r.model_sha256, r.threshold, "
+    "f.final_status, p.source, p.page_number, p.status AS page_status, r.model_sha256, "
+    "coalesce(f.threshold, r.threshold) AS threshold, "
     "(SELECT v.reviewer FROM reviews v WHERE v.field_id = f.id ORDER BY v.id DESC LIMIT 1) AS reviewer, "
     "(SELECT v.at FROM reviews v WHERE v.field_id = f.id ORDER BY v.id DESC LIMIT 1) AS reviewed_at "
     "FROM fields f JOIN pages p ON p.id = f.page_id JOIN runs r ON r.id = p.run_id "
@@ -70,15 +71,13 @@ _RECORDS_SQL = (
 
 def _snapshot(outdir: str | Path) -> tuple[list[dict], list[dict]]:
     """(pages, field records) read in one transaction, so they agree with each other."""
-    conn = connect(outdir)
-    try:
+    with open_ledger(outdir, create=False) as led:
+        conn = led.conn
         conn.execute("BEGIN")
         pages = [dict(r) for r in conn.execute(
             "SELECT id AS page_id, source, page_number, status AS page_status FROM pages ORDER BY id")]
         rows = conn.execute(_RECORDS_SQL).fetchall()
         conn.execute("COMMIT")
-    finally:
-        conn.close()
     records = []
     for r in rows:
         how = _how(r["decision"], r["final_status"])
@@ -102,10 +101,6 @@ def final_records(outdir: str | Path) -> list[dict]:
     return _snapshot(outdir)[1]
 
 
-def _cell(text) -> str:
-    """A CSV cell that a spreadsheet will not run as a formula (common practice: prefix ')."""
-    s = "" if text is None else str(text)
-    return "'" + s if s[:1] in ("=", "+", "-", "@", "\t", "\r") else s
 
 
 def export_final(outdir: str | Path, out_dir: str | Path | None = None) -> ExportResult:
@@ -127,7 +122,7 @@ def export_final(outdir: str | Path, out_dir: str | Path | None = None) -> Expor
         raise LedgerError(f"{out}: cannot create the export folder ({e.strerror})") from None
 
     names: list[str] = []
-    pages = {p["page_id"]: dict(p, source=_cell(p["source"])) for p in page_rows}
+    pages = {p["page_id"]: dict(p, source=spreadsheet_cell(p["source"])) for p in page_rows}
     counts = {h: 0 for h in HOW}
     for rec in records:
         if rec["field"] not in names:

@@ -33,8 +33,9 @@ from pathlib import Path
 from urllib.parse import parse_qs, urlsplit
 
 from ..errors import LedgerError
-from . import actions
-from .actions import InvalidValue, StaleSave, UnknownItem
+from ..ledger.store import ledger_path, open_ledger
+from . import queries
+from .queries import InvalidValue, StaleSave, UnknownItem
 
 __all__ = ["HOST", "MAX_BODY", "TOKEN_HEADER", "ReviewServer", "running"]
 
@@ -90,7 +91,7 @@ class ReviewServer(ThreadingHTTPServer):
     allow_reuse_address = True
 
     def __init__(self, outdir: str | Path, *, reviewer: str, port: int = 0, token: str | None = None):
-        actions.connect(outdir).close()
+        open_ledger(outdir, create=False).close()
         self.outdir = Path(outdir).resolve()
         self.reviewer = reviewer
         self.token = token or secrets.token_urlsafe(24)
@@ -207,7 +208,7 @@ class _Handler(BaseHTTPRequestHandler):
 
     def _short(self, e: Exception) -> str:
         """The message without the ledger's path (the page needs no file names)."""
-        prefix = f"{actions.ledger_path(self.server.outdir)}: "
+        prefix = f"{ledger_path(self.server.outdir)}: "
         msg = str(e)
         return msg[len(prefix):] if msg.startswith(prefix) else msg
 
@@ -249,9 +250,9 @@ class _Handler(BaseHTTPRequestHandler):
         if path == "/api/queue":
             name = (query.get("name") or [""])[0] or None
             reason = (query.get("reason") or [""])[0] or None
-            return self._with_ledger(lambda conn: self._json(HTTPStatus.OK, {
-                "ids": actions.list_pending(conn, name=name, reason=reason),
-                "filters": actions.pending_filters(conn),
+            return self._with_ledger(lambda led: self._json(HTTPStatus.OK, {
+                "ids": queries.list_pending(led, name=name, reason=reason),
+                "filters": queries.pending_filters(led),
                 "reviewer": self.server.reviewer,
                 "outdir": str(self.server.outdir),
                 "saved": sum(self.server.saved.values()),
@@ -260,22 +261,18 @@ class _Handler(BaseHTTPRequestHandler):
         if not m:
             raise _Refused(HTTPStatus.NOT_FOUND, f"nothing at {path}")
         kind, item = m.group(1), int(m.group(2))
-        outdir = self.server.outdir
         if kind == "api/field":
-            return self._with_ledger(lambda conn: self._json(HTTPStatus.OK, actions.field_detail(conn, outdir, item)))
+            return self._with_ledger(lambda led: self._json(HTTPStatus.OK, queries.field_detail(led, item)))
         if kind == "api/page":
-            return self._with_ledger(lambda conn: self._json(HTTPStatus.OK, actions.page_detail(conn, outdir, item)))
-        file = self._with_ledger(lambda conn: actions.image_file(conn, outdir, kind.split("/")[1], item))
+            return self._with_ledger(lambda led: self._json(HTTPStatus.OK, queries.page_detail(led, item)))
+        file = self._with_ledger(lambda led: queries.image_file(led, kind.split("/")[1], item))
         if file.suffix.lower() != ".png":
             raise _Refused(HTTPStatus.NOT_FOUND, "no image for this id")
         return self._send(HTTPStatus.OK, file.read_bytes(), "image/png")
 
     def _with_ledger(self, fn):
-        conn = actions.connect(self.server.outdir)
-        try:
-            return fn(conn)
-        finally:
-            conn.close()
+        with open_ledger(self.server.outdir, create=False) as led:
+            return fn(led)
 
     # ------------------------------------------------------------------ POST
 
@@ -324,19 +321,16 @@ class _Handler(BaseHTTPRequestHandler):
             raise _Refused(HTTPStatus.BAD_REQUEST, "'version' must be the integer version shown")
         if value is not None and not isinstance(value, str):
             raise _Refused(HTTPStatus.BAD_REQUEST, "'value' must be a string")
-        conn = actions.connect(self.server.outdir)
-        try:
+        with open_ledger(self.server.outdir, create=False) as led:
             try:
-                detail = actions.save_decision(conn, self.server.outdir, field_id, action=action, value=value,
-                                               version=version, reviewer=self.server.reviewer)
-                warnings = actions.value_warnings(conn, self.server.outdir, field_id)
+                detail = queries.save_decision(led, field_id, action=action, value=value, version=version,
+                                               reviewer=self.server.reviewer)
+                warnings = queries.value_warnings(led, field_id)
             except InvalidValue as e:
                 raise _Refused(HTTPStatus.UNPROCESSABLE_ENTITY, e.short) from None
             except StaleSave:
-                current = actions.field_detail(conn, self.server.outdir, field_id)
+                current = queries.field_detail(led, field_id)
                 raise _Refused(HTTPStatus.CONFLICT, "another reviewer saved this field after it was shown; "
                                                     "it has been reloaded", {"field": current}) from None
-        finally:
-            conn.close()
         self.server.count_saved(detail["last_review"]["action"] if detail["last_review"] else action)
         self._json(HTTPStatus.OK, {"field": detail, "warnings": warnings})

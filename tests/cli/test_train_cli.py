@@ -81,9 +81,21 @@ def test_wrong_size_array(tmp_path):
     _one_line_error(runner.invoke(app, ["evaluate", str(q), "--dataset", f"npz:{q}"]), "short.npz")
 
 
-def test_bad_setting_is_one_line(tmp_path, arrays):
-    _one_line_error(runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(tmp_path / "m.npz"),
-                                        "--optimizer", "nosuch"]), "optimizer")
+@pytest.mark.parametrize("flag,value", [("--optimizer", "nosuch"), ("--schedule", "sometimes"),
+                                        ("--arch", "lenet6"), ("--lr", "inf"), ("--lr", "0"), ("--epochs", "0"),
+                                        ("--elastic-sigma", "0"), ("--seed", "-1"), ("--weight-decay", "nan")])
+def test_a_bad_setting_is_a_usage_error_naming_it(tmp_path, arrays, flag, value):
+    # a bad choice or a value out of range is the command line's fault: exit 2, nothing trained or written
+    res = runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(tmp_path / "m.npz"), flag, value])
+    assert res.exit_code == 2, res.output
+    assert flag in res.stderr and not (tmp_path / "m.npz").exists()
+
+
+def test_help_lists_the_choices():
+    res = runner.invoke(app, ["train", "--help"], terminal_width=200)
+    assert res.exit_code == 0
+    for choice in ("adam", "sgd", "cosine", "lenet5", "wide"):
+        assert choice in res.output
 
 
 def test_train_evaluate_info_and_listing(tmp_path, arrays, monkeypatch):

@@ -78,7 +78,7 @@ max_digits = 6
 optional = true
 
 [[relations]]                # cross-field rules: names, integers, + and -, compared with =, <=, >=
-rule = "litres_used = current_reading - previous_reading"
+rule = "current_reading >= previous_reading"
 """
 
 
@@ -98,7 +98,9 @@ def test_example_parses_into_the_contract_objects():
     o = lay.field("current_reading")
     assert (o.kind, o.cells, o.max_digits, o.optional, o.threshold, o.rules) == ("open", None, 6, True, None, {})
     assert isinstance(o.x, float)  # integers in the file become millimetre floats
-    assert lay.relations == ("litres_used = current_reading - previous_reading",)
+    assert lay.relations == ("current_reading >= previous_reading",)
+    assert [r.text for r in lay.rules.relations] == ["current_reading >= previous_reading"]
+    assert lay.rules.fields["member_number"].check == "luhn"       # compiled when the layout loads
     assert lay.field_names == ["member_number", "previous_reading", "current_reading"]
 
 
@@ -139,8 +141,16 @@ size = 4
 x = 5
 y = 95
 size = 4
+[[fields]]
+name = "n"
+kind = "open"
+x = 20
+y = 20
+w = 30
+h = 10
+max_digits = 3
 """, "m.toml")
-    assert (lay.binarize, lay.threshold, lay.header, lay.fields, lay.relations) == ("auto", None, None, (), ())
+    assert (lay.binarize, lay.threshold, lay.target_error, lay.header, lay.relations) == ("auto", None, None, None, ())
 
 
 def _bad(find: str, replace: str) -> str:
@@ -157,7 +167,7 @@ BAD = [
     (_bad("height_mm = 297.0", 'height_mm = "297"'), r"\[form\]: 'height_mm' must be a number; got string '297'"),
     (_bad("height_mm = 297.0", "height_mm = -1"), r"\[form\]: 'height_mm' must be > 0"),
     (_bad('binarize = "auto"', 'binarize = "magic"'), r"\[form\]: 'binarize' must be one of auto, otsu, sauvola"),
-    (_bad("threshold = 0.90", "threshold = 1.5"), r"\[form\]: 'threshold' must be in \(0, 1\]"),
+    (_bad("threshold = 0.90", "threshold = 1.5"), r"\[form\]: 'threshold' must be a number in \(0, 1\]"),
     (_bad("w = 150.0", "w = 250.0"), r"\[form.header\]: rectangle .* lies off the 210 x 297 mm page"),
     (_bad("x = 40.0 ", "x = 180.0 "), r"field 'member_number': rectangle x=180 y=60 w=48 h=7 lies off the 210 x 297 mm page"),
     (_bad('name = "member_number"', 'name = "Member-No"'), r"field 'Member-No': bad name"),
@@ -171,7 +181,13 @@ BAD = [
     (_bad("max_digits = 6", "cells = 6"), r"field 'previous_reading': an open field takes 'max_digits', not 'cells'"),
     (_bad("optional = false ", 'optional = "no" '), r"field 'member_number': 'optional' must be true or false"),
     (_bad("optional = false ", "colour = 3 "), r"field 'member_number': unknown key 'colour'"),
-    (_bad("threshold = 0.95 ", "threshold = 0 "), r"field 'member_number': 'threshold' must be in \(0, 1\]"),
+    (_bad("threshold = 0.95 ", "threshold = 0 "), r"field 'member_number': 'threshold' must be a number in \(0, 1\]"),
+    (_bad("threshold = 0.95 ", "target_error = 0.5 "),
+     r"field 'member_number': 'target_error' must be a number in \(0, 0.5\)"),
+    (_bad("threshold = 0.90", "target_error = -0.01"), r"\[form\]: 'target_error' must be a number in \(0, 0.5\)"),
+    (_bad('rule = "current_reading >= previous_reading"', 'rule = "litres_used = current_reading"'),
+     r"relation 'litres_used = current_reading': unknown field 'litres_used'"),
+    (EXAMPLE.split("[[fields]]")[0], r"layout: no \[\[fields\]\]"),
     (_bad("x = 110", "x = 90"), r"field 'current_reading': overlaps field 'previous_reading'"),
     (_bad("y = 60.0", "y = 55.0").replace("y = 80\n", "y = 58\n", 1), r"field 'previous_reading': overlaps field 'member_number'"),
     (_bad("h = 7.0", 'h = true'), r"field 'member_number': 'h' must be a number; got boolean True"),
@@ -187,7 +203,7 @@ BAD = [
     (_bad("x = 12.0\ny = 285.0", "x = 100.0\ny = 12.0").replace("x = 198.0\ny = 285.0", "x = 150.0\ny = 12.0"),
      r"marks: the marks lie \(nearly\) on one line"),
     (_bad("x = 40.0 ", "x = 8.0 ").replace("y = 60.0", "y = 10.0", 1), r"field 'member_number': covers registration mark 1"),
-    (_bad('rule = "litres_used', 'rule = 5 # "'), r"relation 1: 'rule' must be a string"),
+    (_bad('rule = "current_reading', 'rule = 5 # "'), r"relation 1: 'rule' must be a string"),
     (EXAMPLE + "\n[[relations]]\nrule = '  '\n", r"relation 2: 'rule' is empty"),
     ("relations = 3\n" + EXAMPLE.split("[[relations]]")[0], r"layout: 'relations' must be an array of tables"),
     ("fields = [1, 2]\n" + EXAMPLE.split("[[fields]]")[0], r"layout: 'fields' must be an array of tables"),
@@ -239,22 +255,24 @@ def test_layouts_are_frozen():
 # Property: any layout the parser accepts is written back by to_toml to the same layout.
 from hypothesis import given, settings, strategies as st  # noqa: E402
 
-_rule_value = st.one_of(st.integers(-10**6, 10**6), st.text(max_size=12),
-                        st.lists(st.integers(0, 999), min_size=2, max_size=2), st.booleans(),
-                        st.floats(allow_nan=False, allow_infinity=False, width=64))
+# Rules and relations are compiled when a layout loads, so the generated ones are valid ones.
+_rules = st.sampled_from([{}, {"check": "luhn"}, {"range": [0, 999]}, {"optional": True},
+                          {"range": [-5, 10**6], "check": "damm"}, {"date": "DDMMYY", "years": [2020, 2030]}])
+_relations = st.sampled_from(["member_number >= 0", "member_number=member_number", "0 <= member_number",
+                              "member_number != 12 + 3", "(member_number) < 10000000000"])
 
 
 @settings(max_examples=60, deadline=None)
 @given(name=st.text(max_size=30), threshold=st.one_of(st.none(), st.floats(0.001, 1.0)),
-       cells=st.integers(1, 12), rules=st.dictionaries(st.text(min_size=1, max_size=8), _rule_value, max_size=4),
-       relation=st.text(min_size=1, max_size=40).filter(lambda t: t.strip() != ""),
+       target=st.one_of(st.none(), st.floats(1e-4, 0.2)),
+       cells=st.integers(6, 12), rules=_rules, relation=_relations,
        x=st.floats(20.0, 100.0), w=st.floats(1.0, 60.0))
-def test_to_toml_round_trips_any_accepted_layout(name, threshold, cells, rules, relation, x, w):
+def test_to_toml_round_trips_any_accepted_layout(name, threshold, target, cells, rules, relation, x, w):
     base = parse_layout(EXAMPLE, "card.toml")
     f = base.field("member_number")
     f = FieldSpec(**{**f.__dict__, "x": x, "w": w, "cells": cells, "max_digits": cells, "rules": rules})
-    lay = Layout(**{**base.__dict__, "name": name, "threshold": threshold, "fields": (f,),
-                    "relations": (relation,)})
+    lay = Layout(**{**base.__dict__, "name": name, "threshold": threshold, "target_error": target,
+                    "fields": (f,), "relations": (relation,)})
     again = parse_layout(lay.to_toml(), "card.toml")
     assert again == lay
     assert again.field("member_number").rules == rules

@@ -1,14 +1,14 @@
-"""Field rules: compilation errors and evaluation (with small fakes of the layout objects)."""
+"""Field rules: compilation errors and evaluation (on real layouts built by tests/read/fakes.py)."""
 
 import pytest
 
 from formread.errors import RuleError
-from fakes import FakeField, FakeLayout
+from fakes import field_spec, layout_of
 from formread.form.rules import check_field, compile_rules
 
 
 def layout(**rules_by_field):
-    return FakeLayout([FakeField(n, rules=r) for n, r in rules_by_field.items()])
+    return layout_of([field_spec(n, rules=r) for n, r in rules_by_field.items()])
 
 
 def test_length_int_and_range_of_lengths():
@@ -72,8 +72,8 @@ def test_check_digit_rules():
 
 
 def test_empty_values_optional_and_required():
-    lay = FakeLayout([FakeField("a", optional=True, rules={"length": 3}), FakeField("b", rules={"length": 3}),
-                      FakeField("c", rules={"optional": True})])
+    lay = layout_of([field_spec("a", optional=True, rules={"length": 3}), field_spec("b", rules={"length": 3}),
+                      field_spec("c", rules={"optional": True})])
     c = compile_rules(lay)
     assert check_field(c, "a", "") == {}
     assert check_field(c, "b", "") == {"required": False}
@@ -113,9 +113,8 @@ def test_bad_rules_name_file_and_field(rules, fragment):
 
 
 def test_relations_are_compiled_and_indexed():
-    lay = layout(a={}, b={}, c={}, d={})
-    lay.relations = ["a = b - c", {"rule": "d <= 100"}]
-    c = compile_rules(lay)
+    lay = layout_of([field_spec(n) for n in "abcd"], relations=["a = b - c", "d <= 100"])
+    c = lay.rules
     assert [r.text for r in c.relations] == ["a = b - c", "d <= 100"]
     assert [r.text for r in c.relations_of("b")] == ["a = b - c"]
     assert c.relations_of("nothing") == ()
@@ -127,10 +126,8 @@ def test_relations_are_compiled_and_indexed():
     ("__import__('os').system('x')", "column"),
 ])
 def test_bad_relations_name_file_and_rule(text, fragment):
-    lay = layout(a={}, b={})
-    lay.relations = [text]
-    with pytest.raises(RuleError) as e:
-        compile_rules(lay)
+    with pytest.raises(RuleError) as e:           # refused when the layout loads
+        layout_of([field_spec("a"), field_spec("b")], relations=[text])
     msg = str(e.value)
     assert msg.startswith(f"cards/meter.toml: relation {text!r}: ") and fragment in msg
 
@@ -201,9 +198,9 @@ rule = "current >= previous"
 
 def test_check_relations_on_corrected_values():
     from formread.form.rules import check_relations
-    lay = layout(previous={}, current={}, litres={})
-    lay.relations = ["litres = current - previous", "current >= previous"]
-    c = compile_rules(lay)
+    lay = layout_of([field_spec(n) for n in ("previous", "current", "litres")],
+                    relations=["litres = current - previous", "current >= previous"])
+    c = lay.rules
     assert check_relations(c, {"previous": "100", "current": "120", "litres": "20"}) == {
         "litres = current - previous": True, "current >= previous": True}
     assert check_relations(c, {"previous": "100", "current": "120", "litres": "26"})[

@@ -9,7 +9,8 @@ import pytest
 from scipy import ndimage
 
 from digit_pages import FakeField, FakeRegistration
-from formread.imaging.fields import crop_to_page, cut_field, ink_map
+from formread.imaging.binarize import ink_map
+from formread.imaging.fields import crop_to_page, cut_field
 from formread.imaging.lines import _runs_open
 
 FIELD = FakeField("meter", "open", 30.0, 40.0, 50.0, 10.0)

@@ -5,15 +5,16 @@ import json
 import numpy as np
 
 from formread.learn.datasets import load_samples_folder
-from formread.review.actions import connect, field_detail, load_digits, save_decision
+from formread.ledger.store import load_digits, open_ledger
+from formread.review import queries
 from formread.learn.samples import MANIFEST, collect_samples
 
 
 def _decide(out, field_id, action, value=None, reviewer="ines"):
-    conn = connect(out)
+    conn = open_ledger(out, create=False)
     try:
-        version = field_detail(conn, out, field_id)["version"]
-        save_decision(conn, out, field_id, action=action, version=version, reviewer=reviewer, value=value)
+        version = queries.field_detail(conn, field_id)["version"]
+        queries.save_decision(conn, field_id, action=action, version=version, reviewer=reviewer, value=value)
     finally:
         conn.close()
 
@@ -43,8 +44,8 @@ def test_confirmed_and_corrected_fields_become_labelled_samples(ledger, tmp_path
     cur = sorted(by_field["current_reading"], key=lambda r: r["position"])
     assert "".join(str(r["digit"]) for r in cur) == "03247"
     # the image stored for a sample is the one the network saw, as 8-bit grey, ink light on dark
-    conn = connect(out)
-    path = conn.execute("SELECT digits_path FROM fields WHERE id = ?", (ids[(0, "current_reading")],)).fetchone()[0]
+    conn = open_ledger(out, create=False)
+    path = conn.conn.execute("SELECT digits_path FROM fields WHERE id = ?", (ids[(0, "current_reading")],)).fetchone()[0]
     conn.close()
     seen = load_digits(out / path)
     from PIL import Image

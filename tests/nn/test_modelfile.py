@@ -10,7 +10,8 @@ import pytest
 from formread.digits import NORMALISATION
 from formread.errors import ModelFileError
 from formread.nn.model import build_model
-from formread.nn.modelfile import HEADER_KEY, load_model, read_header, save_model, weights_sha256
+from formread.nn.modelfile import (HEADER_KEY, header_sha256, load_model, load_networks, read_header, save_model,
+                                   save_networks, weights_sha256)
 
 X = np.random.default_rng(1).random((5, 1, 28, 28), dtype=np.float32)
 
@@ -29,13 +30,15 @@ def test_roundtrip_and_header(saved):
     loaded, h = load_model(path)
     np.testing.assert_array_equal(loaded.forward(X), model.forward(X))
     assert h == header == read_header(path)
-    assert h["format"] == "formread-model" and h["format_version"] == 1
-    assert h["architecture"] == model.spec
+    assert h["format"] == "formread-model" and h["format_version"] == 2
+    assert h["networks"] == [model.spec]
     assert h["input"] == {"size": 28, "channels": 1, "normalisation": NORMALISATION}
     assert h["temperature"] == 1.3 and h["seed"] == 0 and h["metrics"] == {"acc": 0.5}
-    assert h["created"].endswith("+00:00") and len(h["sha256"]) == 64
-    assert set(h) >= {"format", "format_version", "architecture", "input", "labels", "training",
-                      "seed", "metrics", "temperature", "created", "sha256"}
+    assert h["created"].endswith("+00:00") and len(h["sha256"]) == 64 and len(h["weights_sha256"]) == 64
+    assert h["weights_sha256"] == weights_sha256({f"n0/{k}": v for k, v in model.state_dict().items()})
+    assert h["sha256"] == header_sha256(h) != h["weights_sha256"]
+    assert set(h) >= {"format", "format_version", "networks", "input", "labels", "training",
+                      "seed", "metrics", "temperature", "created", "weights_sha256", "sha256"}
     assert all(p.value.dtype == np.float32 for p in loaded.parameters())
     # no pickled objects inside: every member loads with allow_pickle=False
     with np.load(path, allow_pickle=False) as npz:
@@ -61,12 +64,16 @@ def test_sha_depends_on_names_dtype_shape_and_bytes():
     assert weights_sha256({"x": np.array([0, 0, 0, 1], dtype=np.float32)}) != base
 
 
-def _rewrite(path, change):
-    """Rewrite the npz at path with change(arrays: dict) applied (header included as a dict)."""
+def _rewrite(path, change, resign=False):
+    """Rewrite the npz at path with change(arrays: dict, header: dict) applied; ``resign`` recomputes
+    both checksums afterwards (a forger who knows the format), to reach the checks behind them."""
     with np.load(path, allow_pickle=False) as npz:
         arrays = {k: npz[k] for k in npz.files}
     header = json.loads(arrays.pop(HEADER_KEY).tobytes())
     change(arrays, header)
+    if resign:
+        header["weights_sha256"] = weights_sha256(arrays)
+        header["sha256"] = header_sha256(header)
     arrays[HEADER_KEY] = np.frombuffer(json.dumps(header).encode(), dtype=np.uint8)
     with open(path, "wb") as f:
         np.savez(f, **arrays)
@@ -116,16 +123,33 @@ def test_tampered_weights(saved):
     path = saved[0]
 
     def change(arrays, header):
-        arrays["0.conv2d.weight"] = arrays["0.conv2d.weight"] + np.float32(0.001)
+        arrays["n0/0.conv2d.weight"] = arrays["n0/0.conv2d.weight"] + np.float32(0.001)
     _rewrite(path, change)
     _expect(path, "checksum", header_too=False)
 
 
+def test_an_edited_header_value_is_caught(saved):
+    # an edited temperature (or any decoder constant) would change every decision: the checksum covers it
+    path = saved[0]
+    _rewrite(path, lambda a, h: h.update(temperature=0.5))
+    _expect(path, "checksum mismatch (header changed")
+    _rewrite(path, lambda a, h: h["metrics"].update(acc=0.99))
+    _expect(path, "checksum mismatch (header changed")
+
+
+def test_header_values_of_the_wrong_type(saved):
+    path = saved[0]
+    _rewrite(path, lambda a, h: h.update(temperature="1.3"), resign=True)
+    _expect(path, "temperature must be a number")
+    _rewrite(path, lambda a, h: h.update(temperature=1.3, input={"size": 10 ** 400, "channels": 1}), resign=True)
+    _expect(path, "input size")
+
+
 def test_wrong_version_and_format(saved):
     path = saved[0]
-    _rewrite(path, lambda a, h: h.update(format_version=2))
-    _expect(path, "version 2")
-    _rewrite(path, lambda a, h: h.update(format_version=1, format="something-else"))
+    _rewrite(path, lambda a, h: h.update(format_version=3))
+    _expect(path, "version 3")
+    _rewrite(path, lambda a, h: h.update(format_version=2, format="something-else"))
     _expect(path, "not a formread model")
 
 
@@ -133,22 +157,46 @@ def test_arrays_do_not_fit_architecture(saved):
     path = saved[0]
 
     def change(arrays, header):
-        arrays["0.conv2d.bias"] = np.zeros(7, dtype=np.float32)
-        header["sha256"] = weights_sha256(arrays)
-    _rewrite(path, change)
+        arrays["n0/0.conv2d.bias"] = np.zeros(7, dtype=np.float32)
+    _rewrite(path, change, resign=True)
     _expect(path, "do not fit", header_too=False)
 
     def drop(arrays, header):
-        del arrays["0.conv2d.bias"]
-        header["sha256"] = weights_sha256(arrays)
-    _rewrite(path, drop)
+        del arrays["n0/0.conv2d.bias"]
+    _rewrite(path, drop, resign=True)
     _expect(path, "do not fit", header_too=False)
 
 
 def test_bad_architecture_in_header(saved):
     path = saved[0]
-    _rewrite(path, lambda a, h: h.update(architecture=[{"type": "warp-drive"}]))
+    _rewrite(path, lambda a, h: h.update(networks=[[{"type": "warp-drive"}]]), resign=True)
     _expect(path, "architecture", header_too=False)
+
+
+def test_a_file_of_the_first_format_still_loads(tmp_path):
+    # format version 1 (the first release): arrays named by parameter, the checksum over the weights only
+    model = build_model("lenet5", np.random.default_rng(0))
+    arrays = model.state_dict()
+    header = {"format": "formread-model", "format_version": 1, "architecture": model.spec, "temperature": 1.2,
+              "input": {"size": 28, "channels": 1, "normalisation": NORMALISATION},
+              "labels": [str(d) for d in range(10)], "sha256": weights_sha256(arrays)}
+    path = tmp_path / "old.npz"
+    np.savez(path, **arrays, **{HEADER_KEY: np.frombuffer(json.dumps(header).encode(), dtype=np.uint8)})
+    loaded, h = load_model(path)
+    np.testing.assert_array_equal(loaded.forward(X), model.forward(X))
+    assert h["format_version"] == 1 and h["temperature"] == 1.2
+    _rewrite(path, lambda a, hh: a.update({"0.conv2d.bias": a["0.conv2d.bias"] + np.float32(1)}))
+    _expect(path, "checksum", header_too=False)
+
+
+def test_several_networks_in_one_file(tmp_path):
+    nets = [build_model("lenet5", np.random.default_rng(s)) for s in (0, 1)]
+    h = save_networks(tmp_path / "e.npz", nets, {})
+    loaded, h2 = load_networks(tmp_path / "e.npz")
+    assert h == h2 and len(loaded) == 2 and h["networks"] == [n.spec for n in nets]
+    for a, b in zip(loaded, nets):
+        np.testing.assert_array_equal(a.forward(X), b.forward(X))
+    _expect(tmp_path / "e.npz", "holds 2 networks", header_too=False)
 
 
 def test_damaged_header(saved):
@@ -167,7 +215,7 @@ def test_corrupted_member_bytes(saved):
     path = saved[0]
     data = bytearray(path.read_bytes())
     with zipfile.ZipFile(path) as z:
-        info = z.getinfo("0.conv2d.weight.npy")
+        info = z.getinfo("n0/0.conv2d.weight.npy")
     start = info.header_offset + 30 + len(info.filename) + len(info.extra) + 200
     data[start:start + 8] = b"\x00\x01\x02\x03\x04\x05\x06\x07"
     path.write_bytes(bytes(data))

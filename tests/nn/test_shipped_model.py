@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 from formread.learn.datasets import load_dataset
-from formread.nn.modelfile import load_model, read_header, weights_sha256
+from formread.nn.modelfile import header_sha256, load_model, networks_sha256, read_header
 
 ROOT = Path(__file__).resolve().parents[2]
 MODEL = ROOT / "models" / "default.npz"
@@ -27,7 +27,8 @@ def shipped():
 
 def test_header_checksum_verifies(shipped):
     model, header = shipped
-    assert weights_sha256(model.state_dict()) == header["sha256"] == read_header(MODEL)["sha256"]
+    assert networks_sha256(model) == header["weights_sha256"]
+    assert header_sha256(header) == header["sha256"] == read_header(MODEL)["sha256"]
     assert header["input"]["size"] == 28 and header["labels"] == [str(d) for d in range(10)]
     assert MODEL.stat().st_size < 3_000_000
 

@@ -34,7 +34,8 @@ def _toy(n=300, seed=0):
 
 
 def _cfg(**kw):
-    base = dict(epochs=8, batch_size=16, lr=5e-3, val_fraction=0.2, patience=0, augment=NO_AUG, seed=3)
+    base = dict(epochs=8, batch_size=16, lr=5e-3, val_fraction=0.2, patience=0, augment=NO_AUG, seed=3,
+                label_smoothing=0.0)
     base.update(kw)
     return TrainConfig(**base)
 
@@ -165,7 +166,7 @@ def test_cnn_beats_the_svc_of_scikit_learns_digits_example():
     assert svc_acc == pytest.approx(0.969, abs=0.001)  # the example prints 0.97 (two decimals)
 
     x = np.clip(upscale_small(images, 2) / 16.0, 0.0, 1.0)[:, None].astype(np.float32)
-    cfg = TrainConfig(epochs=50, batch_size=32, lr=2e-3, val_fraction=0.0, patience=0, seed=0,
+    cfg = TrainConfig(epochs=50, batch_size=32, lr=2e-3, val_fraction=0.0, patience=0, seed=0, label_smoothing=0.0,
                       augment=AugmentConfig(rotate_deg=10, scale=0.1, shear=0.15, shift_px=1.0,
                                             elastic=True, elastic_alpha=6.0, elastic_sigma=2.5, prob=0.9))
     t0 = time.monotonic()

@@ -33,7 +33,7 @@ def test_mixed_folder_failures_recorded_rest_read_then_rerun_skips(tmp_path, mod
     (scans / "broken.png").write_bytes(b"\x89PNG\r\n\x1a\n" + b"garbage" * 20)
     Image.fromarray(np.full((600, 420), 255, np.uint8)).save(scans / "white.png", dpi=(50, 50))
     out = tmp_path / "out"
-    rep = read_batch([scans], demo_layout(), out, model_path=model, workers=1)
+    rep = read_batch([scans], demo_layout(), out, bundle=model, workers=1)
     assert (rep.pages, rep.read, rep.failed, rep.unregistered) == (6, 3, 2, 1)
     assert not rep.all_read
     status = dict(_rows(out, "SELECT source, status FROM pages"))
@@ -58,7 +58,7 @@ def test_mixed_folder_failures_recorded_rest_read_then_rerun_skips(tmp_path, mod
     assert len((out / "fields.jsonl").read_text().splitlines()) == 4 * 6
 
     before = readings(out)
-    rep2 = read_batch([scans], demo_layout(), out, model_path=model, workers=1)
+    rep2 = read_batch([scans], demo_layout(), out, bundle=model, workers=1)
     assert (rep2.read, rep2.skipped, rep2.failed, rep2.unregistered) == (0, 4, 2, 0)
     assert len(rep2.problems) == 3                      # still tells about the unregistered page
     assert _rows(out, "SELECT count(*) FROM pages") == [(6,)]
@@ -70,21 +70,21 @@ def test_same_pixels_in_two_files_are_read_once(tmp_path, model):
     scans = tmp_path / "scans"
     a = write_copies(scans, 1)[0]
     shutil.copy(a, scans / "zz_copy.png")
-    rep = read_batch([scans], demo_layout(), tmp_path / "out", model_path=model, workers=1)
+    rep = read_batch([scans], demo_layout(), tmp_path / "out", bundle=model, workers=1)
     assert (rep.read, rep.skipped) == (1, 1)
 
 
 def test_threshold_from_option_else_layout_else_default(tmp_path, model):
     scans = write_copies(tmp_path / "scans", 1)
-    read_batch(scans, demo_layout(), tmp_path / "a", model_path=model, threshold=0.42, workers=1)
+    read_batch(scans, demo_layout(), tmp_path / "a", bundle=model, threshold=0.42, workers=1)
     text = demo_layout().read_text()
     no_thr = tmp_path / "plain.toml"
     no_thr.write_text("\n".join(line for line in text.splitlines() if not line.startswith("threshold")) + "\n")
-    read_batch(scans, no_thr, tmp_path / "b", model_path=model, workers=1)
+    read_batch(scans, no_thr, tmp_path / "b", bundle=model, workers=1)
     from formread.form.layout import load_layout
 
     layout_thr = load_layout(demo_layout()).threshold
-    read_batch(scans, demo_layout(), tmp_path / "c", model_path=model, workers=1)
+    read_batch(scans, demo_layout(), tmp_path / "c", bundle=model, workers=1)
     assert _rows(tmp_path / "a", "SELECT threshold, model_path FROM runs") == [(0.42, str(model))]
     assert _rows(tmp_path / "b", "SELECT threshold FROM runs") == [(0.9,)]
     assert _rows(tmp_path / "c", "SELECT threshold FROM runs") == [(layout_thr,)]
@@ -93,7 +93,7 @@ def test_threshold_from_option_else_layout_else_default(tmp_path, model):
 def test_digit_images_follow_the_reading(tmp_path, model):
     scans = write_copies(tmp_path / "scans", 1)
     out = tmp_path / "out"
-    read_batch(scans, demo_layout(), out, model_path=model, workers=1)
+    read_batch(scans, demo_layout(), out, bundle=model, workers=1)
     rows = _rows(out, "SELECT reading, digits_path, image_path, box_px FROM fields")
     assert rows
     for reading, digits_path, image_path, box in rows:
@@ -118,12 +118,12 @@ def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, mo
 
     monkeypatch.setattr(batch, "decode_page", flaky)
     with pytest.raises(RuntimeError, match="injected"):
-        read_batch(scans, demo_layout(), out, model_path=model, workers=1)
+        read_batch(scans, demo_layout(), out, bundle=model, workers=1)
     assert _rows(out, "SELECT count(*) FROM pages") == [(2,)]
     assert _rows(out, "SELECT count(*) FROM fields") == [(12,)]
     assert len(list(csv.DictReader((out / "readings.csv").read_text().splitlines()))) == 2
     monkeypatch.setattr(batch, "decode_page", real)
-    rep = read_batch(scans, demo_layout(), out, model_path=model, workers=1)
+    rep = read_batch(scans, demo_layout(), out, bundle=model, workers=1)
     assert (rep.read, rep.skipped) == (2, 2)
     assert _rows(out, "SELECT count(*) FROM pages") == [(4,)]
 
@@ -137,8 +137,8 @@ def test_worker_processes_read_the_same_as_one_process(tmp_path, model):
     for im in ims:
         im.close()
     inputs = scans[:2] + [tmp_path / "scans" / "multi.tif"]
-    read_batch(inputs, demo_layout(), tmp_path / "one", model_path=model, workers=1)
-    rep = read_batch(inputs, demo_layout(), tmp_path / "two", model_path=model, workers=2)
+    read_batch(inputs, demo_layout(), tmp_path / "one", bundle=model, workers=1)
+    rep = read_batch(inputs, demo_layout(), tmp_path / "two", bundle=model, workers=2)
     assert rep.read == 5 and rep.imaging_seconds > 0
     got = readings(tmp_path / "two")
     assert sorted(got) == [("multi.tif", 1), ("multi.tif", 2), ("multi.tif", 3), ("page_000.png", 1),
@@ -160,7 +160,7 @@ def test_list_scans_refuses_missing_inputs_and_sorts_folders(tmp_path):
         list_scans([tmp_path / "nope"])
 
 
-def test_recognition_is_one_network_call_for_several_pages_with_the_models_temperature():
+def test_recognition_is_one_network_call_for_several_pages():
     from types import SimpleNamespace
 
     from formread.read.recognise import recognise_pages
@@ -171,8 +171,8 @@ def test_recognition_is_one_network_call_for_several_pages_with_the_models_tempe
         def __init__(self):
             self.calls = []
 
-        def predict_proba(self, x, batch_size=256, temperature=1.0):
-            self.calls.append((x.shape, temperature))
+        def predict_proba(self, x, batch_size=256):     # a bundle applies its own temperature
+            self.calls.append(x.shape)
             k = x[:, 0, 0, 0].astype(int)
             return np.eye(10, dtype=np.float32)[k % 10]
 
@@ -191,8 +191,8 @@ def test_recognition_is_one_network_call_for_several_pages_with_the_models_tempe
     c, s = field("c", "open", [], s)                       # nothing segmented: no candidates
     d, s = field("d", "open", [2], s)
     model = Counting()
-    out = recognise_pages([{"a": a, "b": b, "c": c}, {"d": d}], model, temperature=1.7)
-    assert model.calls == [((8, 1, 28, 28), 1.7)]          # every digit of both pages in one call
+    out = recognise_pages([{"a": a, "b": b, "c": c}, {"d": d}], model)
+    assert model.calls == [(8, 1, 28, 28)]                 # every digit of both pages in one call
     assert [np.argmax(p, axis=1).tolist() for p in (cand.probs for cand in out[0]["b"].candidates)] == [[3, 4], [5]]
     assert np.argmax(out[0]["a"].candidates[0].probs, axis=1).tolist() == [0, 1, 2]
     assert out[0]["c"].candidates == []

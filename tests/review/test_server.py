@@ -12,7 +12,8 @@ import pytest
 from typer.testing import CliRunner
 
 from formread.cli.main import app
-from formread.review import actions
+from formread.ledger.store import load_digits, open_ledger
+from formread.review import queries, wording
 from formread.review.server import MAX_BODY, TOKEN_HEADER, running
 from review_fixture import snapshot
 
@@ -113,9 +114,9 @@ def test_image_paths_come_from_the_ledger_and_stay_inside(server, tmp_path):
     srv, out, info = server
     secret = tmp_path / "secret.png"
     secret.write_bytes(b"\x89PNG secret")
-    with actions.connect(out) as conn:
-        conn.execute("UPDATE pages SET image_path = ? WHERE id = ?", (str(secret), info["pages"][0]))
-        conn.execute("UPDATE pages SET image_path = '../secret.png' WHERE id = ?", (info["pages"][1],))
+    with open_ledger(out, create=False) as conn:
+        conn.conn.execute("UPDATE pages SET image_path = ? WHERE id = ?", (str(secret), info["pages"][0]))
+        conn.conn.execute("UPDATE pages SET image_path = '../secret.png' WHERE id = ?", (info["pages"][1],))
     conn.close()
     for pid in info["pages"][:2]:
         status, _, body = call(srv, "GET", f"/img/page/{pid}?token={srv.token}", token=False)
@@ -208,9 +209,9 @@ def test_a_very_large_body_is_refused_too(server):
 def test_stale_save_gets_409_with_the_current_field(server):
     srv, out, info = server
     fid, body = _valid(info)
-    conn = actions.connect(out)
+    conn = open_ledger(out, create=False)
     try:  # a second reviewer saves first, through the library
-        actions.save_decision(conn, out, fid, action="correct", value="03249", version=0, reviewer="bob")
+        queries.save_decision(conn, fid, action="correct", value="03249", version=0, reviewer="bob")
     finally:
         conn.close()
     before = snapshot(out)
@@ -227,8 +228,8 @@ def test_a_good_save_and_other_methods(server):
     assert status == 200 and data["field"]["final_status"] == "corrected" and data["field"]["version"] == 1
     assert data["warnings"] == []
     assert srv.saved == {"correct": 1}
-    with actions.connect(out) as conn:
-        assert conn.execute("SELECT reviewer FROM reviews").fetchone()[0] == "ann"
+    with open_ledger(out, create=False) as conn:
+        assert conn.conn.execute("SELECT reviewer FROM reviews").fetchone()[0] == "ann"
     conn.close()
     status, _, data = call(srv, "PUT", f"/api/field/{fid}", body=body)
     assert status == 405
