@@ -19,6 +19,7 @@ def register(app: typer.Typer) -> None:
     app.command("read")(read_cmd)
     app.command("tune")(tune_cmd)
     app.command("score")(score_cmd)
+    app.command("report")(report_cmd)
 
 
 def render_batch(report, *, out=None) -> None:
@@ -27,7 +28,8 @@ def render_batch(report, *, out=None) -> None:
     echo(f"pages: {report.pages} ({report.read} read, {report.skipped} already in the ledger, "
          f"{report.unregistered} not registered, {report.failed} failed) in {report.seconds:.1f} s "
          f"({report.pages_per_second:.2f} pages/s)")
-    echo(f"fields: {report.fields} new ({report.accepted} accepted, {report.review} sent to review)")
+    spot = f", of which {report.audited} spot checks" if report.audited else ""
+    echo(f"fields: {report.fields} new ({report.accepted} accepted, {report.review} sent to review{spot})")
     for source, page, status, error in report.problems[:20]:
         echo(f"  {status}: {source} page {page}" + (f": {error}" if error else ""))
     if len(report.problems) > 20:
@@ -42,7 +44,13 @@ def read_cmd(
     out: Path = typer.Option(..., "--out", "-o", help="Output folder (ledger, images, readings.csv)."),
     model: Optional[Path] = typer.Option(None, "--model", "-m", help="Model file; the shipped one by default."),
     threshold: Optional[float] = typer.Option(
-        None, "--threshold", "-t", help="Acceptance threshold; default: the layout's, else 0.9."),
+        None, "--threshold", "-t", min=1e-9, max=1.0,
+        help="Acceptance threshold for every field; default: the layout's, else the model's fitted one."),
+    audit: Optional[float] = typer.Option(
+        None, "--audit", min=0.0, max=0.999999,
+        help="Share of the fields that would be accepted sent to review as spot checks "
+             "(default: the layout's 'audit', else 0.02)."),
+    audit_seed: int = typer.Option(0, "--audit-seed", min=0, help="Seed of the spot-check draw."),
     workers: int = typer.Option(2, "--workers", "-w", help="Processes for the imaging step."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ):
@@ -54,7 +62,8 @@ def read_cmd(
     from ..read.batch import read_batch
 
     bar = ProgressBar("reading", enabled=not quiet)
-    report = read_batch(scans, layout, out, bundle=model, threshold=threshold, workers=workers,
+    report = read_batch(scans, layout, out, bundle=model, threshold=threshold, audit=audit, audit_seed=audit_seed,
+                        workers=workers,
                         progress=bar, command=_command_line())
     render_batch(report)
     if not report.all_read:
@@ -75,12 +84,17 @@ def render_summary(s: dict) -> str:
         f"pages scored:                 {s['pages']}",
         f"fields:                       {s['fields']}",
         f"accepted:                     {s['accepted']}",
-        f"sent to review:               {s['review']}  (review rate {_pct(s['review_rate'])})",
+        f"sent to review:               {s['review']}  (review rate {_pct(s['review_rate'])}"
+        + (f"; {s['audited']} of them spot checks)" if s.get("audited") else ")"),
         f"wrong among accepted:         {s['wrong_accepted']}  (error among accepted "
         f"{_pct(s['error_among_accepted'])})",
         f"field accuracy before review: {_pct(s['field_accuracy_before_review'])}",
         f"digit accuracy:               {_pct(s.get('digit_accuracy'))}",
     ]
+    if s.get("writer_mistakes") is not None:
+        lines.append(f"writer mistakes accepted:     {s['writer_mistakes_accepted']} of {s['writer_mistakes']} "
+                     "(values that break their own rules on paper)")
+        lines += [f"  {m}" for m in s.get("writer_mistakes_accepted_list", [])[:10]]
     if s.get("threshold") is not None:
         lines.append(f"threshold (latest run):       {s['threshold']:.4g}")
     per = s.get("per_field") or {}
@@ -161,3 +175,41 @@ def score_cmd(
     typer.echo(render_summary(summary))
     if curve is not None:
         typer.echo(f"curve: {curve}")
+
+
+def render_report(s: dict) -> str:
+    """The run report as a short table (text)."""
+    def err(f):
+        if f["error_among_accepted"] is None:
+            return "no spot check decided yet"
+        return (f"{_pct(f['error_among_accepted'])} ({f['audited_wrong']} of {f['audited_decided']} spot checks "
+                f"wrong; 95% upper bound {_pct(f['error_upper_95'])})")
+
+    lines = [f"runs in: {', '.join(s['outdirs'])}",
+             f"fields read:                  {s['fields']}",
+             f"accepted:                     {s['accepted']}",
+             f"sent to review:               {s['review']}  (review rate {_pct(s['review_rate'])}; "
+             f"{s['audited']} spot checks, {s['decided']} decided by a clerk)",
+             f"error among accepted:         {err(s)}"]
+    per = s.get("per_field") or {}
+    if per:
+        w = max(len(n) for n in per) + 2
+        lines += ["", f"{'field':<{w}}{'fields':>7}{'accepted':>10}{'review':>8}{'audited':>9}{'checked':>9}"
+                      f"{'wrong':>7}{'error acc.':>12}{'upper 95%':>11}"]
+        for n, f in per.items():
+            lines.append(f"{n:<{w}}{f['fields']:>7}{f['accepted']:>10}{f['review']:>8}{f['audited']:>9}"
+                         f"{f['audited_decided']:>9}{f['audited_wrong']:>7}{_pct(f['error_among_accepted']):>12}"
+                         f"{_pct(f['error_upper_95']):>11}")
+    return "\n".join(lines)
+
+
+@edge
+def report_cmd(
+    outdirs: List[Path] = typer.Argument(..., metavar="OUTDIR...", help="Output folders of read runs."),
+    as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
+):
+    """Review load and the error among accepted fields, estimated from the spot checks a clerk decided."""
+    from ..read.report import run_report
+
+    summary = run_report(outdirs).summary()
+    typer.echo(json.dumps(summary) if as_json else render_report(summary))

@@ -8,7 +8,9 @@ from pathlib import Path
 
 import typer
 
-from .common import edge
+from typing import Optional
+
+from .common import EXIT_PAGES_FAILED, edge
 
 
 def _login_name() -> str:
@@ -18,17 +20,40 @@ def _login_name() -> str:
         return "unknown"
 
 
+def _apply(outdir: Path, path: Path, reviewer: str) -> None:
+    from ..ledger.store import open_ledger
+    from ..review.bulk import apply_decisions, read_decisions
+
+    records = read_decisions(path)
+    with open_ledger(outdir, create=False) as led:
+        rep = apply_decisions(led, records, reviewer=reviewer)
+    for r in rep.refused:
+        typer.echo(f"formread: refused: {path} line {r.line}: {r.why}", err=True)
+    parts = ", ".join(f"{k} {v}" for k, v in sorted(rep.by_action.items()))
+    typer.echo(f"{rep.applied} decision{'s' if rep.applied != 1 else ''} applied"
+               + (f" ({parts})" if parts else "") + f", {len(rep.refused)} refused, from {path} as {reviewer}")
+    if rep.refused:
+        raise typer.Exit(EXIT_PAGES_FAILED)
+
+
 @edge
 def review(
     outdir: Path = typer.Argument(..., help="Output folder of `formread read` (holds ledger.sqlite)."),
     port: int = typer.Option(0, "--port", min=0, max=65535, help="Port on 127.0.0.1; 0 picks a free one."),
     reviewer: str = typer.Option(None, "--reviewer", help="Name recorded with each decision (default: login name)."),
+    apply: Optional[Path] = typer.Option(
+        None, "--apply", help="Apply decisions from a JSON Lines or CSV file (source, page_number, field, value; "
+                              "\"\" = blank, action \"unreadable\") instead of opening the page. Exit 3 when "
+                              "some lines were refused."),
 ) -> None:
-    """Check the flagged fields in a local web page (127.0.0.1 only; Ctrl-C stops, exit code 0)."""
+    """Check the flagged fields in a local web page (127.0.0.1 only; Ctrl-C stops, exit code 0),
+    or apply a file of decisions keyed elsewhere (--apply)."""
     from ..errors import LedgerError
     from ..review.server import ReviewServer
 
     name = (reviewer or _login_name()).strip() or "unknown"
+    if apply is not None:
+        return _apply(outdir, apply, name)
     try:
         server = ReviewServer(outdir, reviewer=name, port=port)
     except OSError as e:

@@ -22,7 +22,7 @@ except ModuleNotFoundError:  # pragma: no cover - Python 3.10
 
 from ..errors import LayoutError
 from .rules import CompiledRules, compile_rules
-from .thresholds import TARGET_RANGE, THRESHOLD_RANGE, is_target, is_threshold
+from .thresholds import AUDIT_RANGE, TARGET_RANGE, THRESHOLD_RANGE, is_audit_rate, is_target, is_threshold
 
 __all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout", "read_layout_text",
            "KINDS", "BINARIZE_METHODS", "NAME_PATTERN"]
@@ -96,6 +96,7 @@ class Layout:
     binarize: str = "auto"
     threshold: float | None = None
     target_error: float | None = None
+    audit: float | None = None
     source: str = "<layout>"
     rules: CompiledRules | None = dc_field(default=None, compare=False, repr=False)
     """The fields' rules and the relations, compiled and checked when the layout was parsed."""
@@ -130,6 +131,8 @@ class Layout:
             out.append(f"threshold = {_toml_value(float(self.threshold))}")
         if self.target_error is not None:
             out.append(f"target_error = {_toml_value(float(self.target_error))}")
+        if self.audit is not None:
+            out.append(f"audit = {_toml_value(float(self.audit))}")
         if self.header is not None:
             out += ["", "[form.header]"] + [f"{k} = {_toml_value(float(getattr(self.header, k)))}"
                                             for k in ("x", "y", "w", "h")]
@@ -300,8 +303,8 @@ class _Checker:
     def layout(self, doc: dict) -> Layout:
         self.unknown(doc, {"form", "marks", "fields", "relations"}, "layout")
         form = self.table(doc, "form", "layout")
-        self.unknown(form, {"name", "width_mm", "height_mm", "binarize", "threshold", "target_error", "header"},
-                     "[form]")
+        self.unknown(form, {"name", "width_mm", "height_mm", "binarize", "threshold", "target_error", "audit",
+                            "header"}, "[form]")
         name = self.string(form, "name", "[form]")
         W = self.number(form, "width_mm", "[form]", positive=True)
         H = self.number(form, "height_mm", "[form]", positive=True)
@@ -310,6 +313,9 @@ class _Checker:
             self.fail("[form]", f"'binarize' must be one of {', '.join(BINARIZE_METHODS)}; got {method!r}")
         threshold = self.threshold(form, "[form]")
         target = self.target(form, "[form]")
+        audit = self.number(form, "audit", "[form]", required=False)
+        if audit is not None and not is_audit_rate(audit):
+            self.fail("[form]", f"'audit' must be {AUDIT_RANGE}; got {audit:g}")
         header = self.table(form, "header", "[form]", required=False)
         header = None if header is None else self.region(header, "[form.header]", W, H)
         marks = self.marks(doc.get("marks"), W, H)
@@ -320,7 +326,7 @@ class _Checker:
             self.fail("layout", "no [[fields]]: a layout must describe at least one field to read")
         layout = Layout(name=name, width_mm=W, height_mm=H, marks=marks, fields=fields,
                         relations=relations, header=header, binarize=method, threshold=threshold,
-                        target_error=target, source=self.source)
+                        target_error=target, audit=audit, source=self.source)
         return dataclasses.replace(layout, rules=compile_rules(layout))
 
     def array(self, v, key: str) -> list[dict]:

@@ -7,6 +7,7 @@ comes back with no candidates, ``doubtful=True`` and the reason, for a person to
 
 from __future__ import annotations
 
+import dataclasses
 import logging
 import time
 from dataclasses import dataclass
@@ -40,12 +41,15 @@ class PageDigits:
         The binarisation used for the crops (``"otsu"`` or ``"sauvola"``).
     level : float
         The page's ink level (grey levels ``<= level`` are ink).
+    crops : dict of str -> FieldCrop
+        The crop each field was segmented from (missing for a field that could not be cut).
     """
 
     registration: object
     fields: dict
     method: str = "otsu"
     level: float = 127.0
+    crops: dict = dataclasses.field(default_factory=dict)
 
 
 def _failed(field, reg, reason: str, crop=None) -> FieldDigits:
@@ -107,10 +111,12 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
     t = add("binarize", t)
     where = f"{page.source} page {page.page_number}"
     out: dict[str, FieldDigits] = {}
+    crops = {}
     for field in layout.fields:
         crop = None
         try:
             crop = cut_field(reg, field, px_per_mm=px_per_mm, margin_mm=margin_mm, level=level, method=method)
+            crops[field.name] = crop
             t = add("cut", t)
             out[field.name] = segment_field(crop, field)
             t = add("segment", t)
@@ -118,4 +124,4 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
             log.info("%s: %s", where, e)
             out[field.name] = _failed(field, reg, str(e), crop)
             t = add("segment" if crop is not None else "cut", t)
-    return PageDigits(reg, out, method, level)
+    return PageDigits(reg, out, method, level, crops)

@@ -96,6 +96,10 @@ UPDATE fields SET threshold = (SELECT r.threshold FROM runs r JOIN pages p ON p.
                   threshold_source = 'run'
 WHERE threshold IS NULL;
 """),
+    (3, "audit sampling: fields sent to review as a random spot check of what would have been accepted", """
+ALTER TABLE fields ADD COLUMN audit INTEGER NOT NULL DEFAULT 0;  -- 1: would have been accepted, sent as a spot check
+ALTER TABLE runs ADD COLUMN audit_rate REAL NOT NULL DEFAULT 0;  -- the share of would-be-accepted fields spot-checked
+"""),
 )
 """Ordered migrations: (version reached, what it adds, SQL)."""
 

@@ -27,7 +27,7 @@ from ..errors import LedgerError
 from .schema import BASE_SCHEMA, MIGRATIONS, SCHEMA_VERSION
 
 __all__ = ["LEDGER_NAME", "FieldRow", "PageRow", "Ledger", "open_ledger", "ledger_path", "check_output_folder",
-           "atomic_write", "utc_now", "page_hash", "load_digits", "digits_npz", "BUSY_SECONDS"]
+           "atomic_write", "utc_now", "page_hash", "BUSY_SECONDS"]
 
 LEDGER_NAME = "ledger.sqlite"
 PAGE_STATUSES = ("read", "unregistered", "failed")
@@ -87,8 +87,8 @@ def atomic_write(path: Path, data: bytes) -> None:
 class FieldRow:
     """One field's result as the ledger stores it, plus the bytes of its files.
 
-    ``image_png`` is the field crop (PNG bytes), ``digits_npz`` the chosen
-    candidate's normalised digit images (``.npz`` bytes); either may be None.
+    ``image_png`` is the field crop (PNG bytes), ``digits_npz`` its digit file
+    (formread.ledger.fieldfile, ``.npz`` bytes); either may be None.
     ``box_px`` is ``[x0, y0, x1, y1]`` of the field on the stored page image.
     """
 
@@ -107,6 +107,7 @@ class FieldRow:
     threshold: float | None = None
     threshold_source: str | None = None
     max_digits: int | None = None
+    audit: bool = False
 
 
 @dataclass
@@ -156,7 +157,7 @@ class Ledger:
     # --- runs -------------------------------------------------------------------------------
     def start_run(self, *, layout_path: str, layout_sha256: str, model_path: str, model_sha256: str,
                   threshold: float, command: str, layout_text: str | None = None,
-                  bundle: dict | None = None) -> int:
+                  bundle: dict | None = None, audit_rate: float = 0.0) -> int:
         """Record a new run; returns its id.
 
         ``layout_text`` is the layout file as read (review checks values against it, not against
@@ -166,9 +167,10 @@ class Ledger:
         with self.transaction():
             cur = self.conn.execute(
                 "INSERT INTO runs (started, layout_path, layout_sha256, model_path, model_sha256, threshold,"
-                " command, layout_text, bundle) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                " command, layout_text, bundle, audit_rate) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (utc_now(), str(layout_path), layout_sha256, str(model_path), model_sha256, float(threshold),
-                 command, layout_text, None if bundle is None else json.dumps(bundle, sort_keys=True)))
+                 command, layout_text, None if bundle is None else json.dumps(bundle, sort_keys=True),
+                 float(audit_rate)))
             return int(cur.lastrowid)
 
     def finish_run(self, run_id: int) -> None:
@@ -242,13 +244,13 @@ class Ledger:
         self.conn.execute(
             "INSERT INTO fields (page_id, name, kind, reading, confidence, alternatives, digit_probs, rules,"
             " decision, reason, image_path, digits_path, box_px, final_value, final_status, threshold,"
-            " threshold_source, max_digits)"
-            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+            " threshold_source, max_digits, audit)"
+            " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (page_id, f.name, f.kind, f.reading, _opt_float(f.confidence), json.dumps(f.alternatives),
              json.dumps(f.digit_probs), json.dumps(f.rules), f.decision, f.reason, image_path, digits_path,
              None if f.box_px is None else json.dumps([round(float(v), 1) for v in f.box_px]),
              f.reading if accepted else None, "auto" if accepted else None, _opt_float(f.threshold),
-             f.threshold_source, None if f.max_digits is None else int(f.max_digits)))
+             f.threshold_source, None if f.max_digits is None else int(f.max_digits), int(bool(f.audit))))
 
     # --- reading back -----------------------------------------------------------------------
     def page_rows(self) -> list[dict]:
@@ -261,7 +263,7 @@ class Ledger:
         JSON columns (alternatives, digit_probs, rules, box_px) are decoded.
         """
         rows = self._dicts(
-            "SELECT f.*, p.source AS source, p.page_number AS page_number, p.status AS page_status"
+            "SELECT f.*, p.source AS source, p.page_number AS page_number, p.status AS page_status, p.run_id AS run_id"
             " FROM fields f JOIN pages p ON p.id = f.page_id ORDER BY f.page_id, f.id")
         for r in rows:
             for k in ("alternatives", "digit_probs", "rules", "box_px"):
@@ -431,48 +433,6 @@ def _upgrade(conn: sqlite3.Connection, version: int) -> None:
         with contextlib.suppress(sqlite3.Error):
             conn.execute("ROLLBACK")
         raise
-
-
-def digits_npz(digits: np.ndarray, positions: np.ndarray) -> bytes:
-    """The ``.npz`` bytes of a field's digit-image file (see :func:`load_digits`).
-
-    digits : ndarray of shape (K, 1, 28, 28), float32; positions : ndarray of shape (K,), int64
-    """
-    import io
-
-    buf = io.BytesIO()
-    np.savez_compressed(buf, digits=np.asarray(digits, np.float32), positions=np.asarray(positions, np.int64))
-    return buf.getvalue()
-
-
-def load_digits(path) -> np.ndarray:
-    """Digit images of a field's chosen segmentation (``digits/<page>/<field>.npz``).
-
-    Returns
-    -------
-    ndarray of shape (K, 1, 28, 28), float32
-        The array stored under ``digits`` (or the file's only array).
-
-    Raises
-    ------
-    LedgerError
-        When the file is missing, not an .npz, or holds no (K, 1, 28, 28) array.
-    """
-    import zipfile
-
-    try:
-        with np.load(path, allow_pickle=False) as z:
-            key = "digits" if "digits" in z.files else (z.files[0] if len(z.files) == 1 else None)
-            if key is None:
-                raise LedgerError(f"{path}: no 'digits' array (has {', '.join(z.files)})")
-            x = z[key]
-    except (OSError, ValueError, EOFError, zipfile.BadZipFile) as e:
-        raise LedgerError(f"{path}: digit images cannot be read ({e.__class__.__name__})") from None
-    if x.ndim == 3:
-        x = x[:, None]
-    if x.ndim != 4 or x.shape[1:] != (1, 28, 28) or not np.issubdtype(x.dtype, np.number):
-        raise LedgerError(f"{path}: digit images have shape {x.shape}, expected (K, 1, 28, 28)")
-    return x.astype(np.float32, copy=False)
 
 
 def _statements(script: str) -> list[str]:

@@ -31,11 +31,13 @@ from PIL import Image
 
 from ..errors import FormreadError, ImageError, RegistrationError, check_param, one_line
 from ..form.layout import Layout, load_layout, read_layout_text
-from ..form.thresholds import form_threshold, resolve_thresholds
+from ..form.thresholds import audit_rate, form_threshold, resolve_thresholds
 from ..imaging.load import iter_pages
 from ..imaging.pipeline import process_page
-from ..ledger.store import FieldRow, Ledger, PageRow, digits_npz, open_ledger, page_hash
-from ..paths import default_model_path
+from ..ledger.fieldfile import FieldFile
+from ..ledger.store import FieldRow, Ledger, PageRow, open_ledger, page_hash
+from ..store import in_use_path
+from .audit import apply_audit
 from .bundle import Bundle, load_bundle
 from .decode import decode_page, unregistered_page
 from .outputs import write_outputs
@@ -62,7 +64,8 @@ class BatchReport:
     failed: int = 0                # newly recorded as 'failed'
     fields: int = 0
     accepted: int = 0
-    review: int = 0
+    review: int = 0                # sent to review, spot checks included
+    audited: int = 0               # of which spot checks (formread.read.audit)
     problems: list = field(default_factory=list)   # [(source, page_number, status, error)] incl. skipped ones
     seconds: float = 0.0
     imaging_seconds: float = 0.0
@@ -133,6 +136,7 @@ class _Imaged:
     status: str                         # 'ok' | 'known' | 'unregistered' | 'failed'
     error: str | None = None
     fields: dict | None = None          # name -> FieldDigits
+    crops: dict = field(default_factory=dict)   # name -> FieldCrop
     page_png: bytes | None = None
     field_png: dict = field(default_factory=dict)
     box_px: dict = field(default_factory=dict)
@@ -220,7 +224,7 @@ def _image_page(page, content_hash: str) -> _Imaged:
     specs = {f.name: f for f in layout.fields}
     box = {name: _box_px(reg, specs[name], scale) for name in pd.fields if name in specs}
     field_png = {name: _png(fd.image) for name, fd in pd.fields.items() if fd.image is not None}
-    return _Imaged(status="ok", fields=dict(pd.fields), page_png=png, field_png=field_png, box_px=box,
+    return _Imaged(status="ok", fields=dict(pd.fields), crops=dict(pd.crops), page_png=png, field_png=field_png, box_px=box,
                    residual_mm=_opt(reg, "residual_mm"), rotated_180=_opt(reg, "rotated_180"),
                    skew_deg=_opt(reg, "skew_deg"), seconds=time.perf_counter() - t0, stages=stages, **base)
 
@@ -255,17 +259,33 @@ def _opt(obj, name):
 
 
 # ------------------------------------------------------------------------------------------ reading step
-def _digits_file(fd, reading) -> bytes | None:
-    """The digit images of the reading (one per character, in order) as the ledger's digit file."""
-    i = reading.candidate
-    if not fd.candidates or i is None or not 0 <= i < len(fd.candidates):
+def _digits_file(fd, crop, reading) -> bytes | None:
+    """The field's digit file (formread.ledger.fieldfile): the reading's digits, every candidate, the crop."""
+    if not fd.candidates:
         return None
-    d = np.asarray(fd.candidates[i].digits, dtype=np.float32).reshape(-1, 1, 28, 28)
+    i = reading.candidate
+    chosen = i if i is not None and 0 <= i < len(fd.candidates) else -1
+    d = (np.asarray(fd.candidates[chosen].digits, dtype=np.float32).reshape(-1, 1, 28, 28) if chosen >= 0
+         else np.zeros((0, 1, 28, 28), np.float32))
     keep = np.asarray([p for p in reading.positions if 0 <= p < len(d)], dtype=np.int64)
-    return digits_npz(d[keep], keep)
+    parts = [np.asarray(c.digits, np.float32).reshape(-1, 28, 28) for c in fd.candidates]
+    sizes = np.array([len(p) for p in parts], np.int64)
+    spans = np.column_stack([np.cumsum(sizes) - sizes, np.cumsum(sizes)])
+    every = np.concatenate(parts) if sizes.sum() else np.zeros((0, 28, 28), np.float32)
+    ff = FieldFile(digits=d[keep], positions=keep, chosen=chosen,
+                   cand_digits=np.clip(np.rint(every * 255.0), 0, 255).astype(np.uint8), cand_spans=spans,
+                   cand_costs=np.array([float(c.cost) for c in fd.candidates]),
+                   blank=fd.blank if fd.blank is not None else np.zeros(0, bool),
+                   doubtful=bool(fd.doubtful), reason=fd.reason or "")
+    if crop is not None and fd.kind == "open":   # only open fields are ever cut again (to a decided length)
+        ff.crop_gray, ff.crop_ink, ff.crop_rect = crop.gray, crop.ink, np.asarray(crop.rect, np.float64)
+        ff.crop_geometry = np.array([crop.x0_mm, crop.y0_mm, crop.px_per_mm], np.float64)
+        ff.crop_matrix = np.asarray(crop.matrix, np.float64)
+    return ff.to_bytes()
 
 
-def _field_row(layout: Layout, spec, r, threshold, *, image_png=None, digits=None, box_px=None) -> FieldRow:
+def _field_row(layout: Layout, spec, r, threshold, *, image_png=None, digits=None, box_px=None,
+               audit: bool = False) -> FieldRow:
     return FieldRow(
         name=spec.name, kind=spec.kind, reading=r.reading,
         confidence=None if r.confidence is None else float(r.confidence),
@@ -274,7 +294,8 @@ def _field_row(layout: Layout, spec, r, threshold, *, image_png=None, digits=Non
         digit_probs=_jsonable(r.digit_probs or []),
         rules={str(k): bool(v) for k, v in (r.rules or {}).items()},
         box_px=box_px, image_png=image_png, digits_npz=digits,
-        threshold=float(r.threshold), threshold_source=threshold.source, max_digits=layout.capacity(spec.name))
+        threshold=float(r.threshold), threshold_source=threshold.source, max_digits=layout.capacity(spec.name),
+        audit=audit)
 
 
 def _jsonable(v):
@@ -294,8 +315,9 @@ def _jsonable(v):
 class _Reader:
     """The main process's half: network, decoding, ledger rows."""
 
-    def __init__(self, layout: Layout, bundle: Bundle, thresholds: dict):
+    def __init__(self, layout: Layout, bundle: Bundle, thresholds: dict, audit: float, audit_seed: int):
         self.layout, self.bundle, self.thresholds = layout, bundle, thresholds
+        self.audit, self.audit_seed = audit, audit_seed
         self.specs = {f.name: f for f in layout.fields}
 
     def page_row(self, im: _Imaged, report: BatchReport) -> PageRow:
@@ -313,19 +335,22 @@ class _Reader:
         t0 = time.perf_counter()
         evidence = recognise_page(im.fields, self.bundle)
         readings = decode_page(evidence, self.layout, confidence=self.bundle.decoder, thresholds=self.thresholds)
+        audited = apply_audit(readings, self.audit, im.content_hash, self.audit_seed)
         report.recognition_seconds += time.perf_counter() - t0
         for name, r in readings.items():
             fd = im.fields.get(name)
             row.fields.append(_field_row(
                 self.layout, self.specs[name], r, self.thresholds[name], image_png=im.field_png.get(name),
-                digits=None if fd is None else _digits_file(fd, r), box_px=im.box_px.get(name)))
+                digits=None if fd is None else _digits_file(fd, im.crops.get(name), r),
+                box_px=im.box_px.get(name), audit=name in audited))
+        report.audited += len(audited)
         return row
 
 
 # ------------------------------------------------------------------------------------------ the job
 def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: float | None = None,
-               workers: int = 2, progress: Callable | None = None, command: str = "formread read"
-               ) -> BatchReport:
+               audit: float | None = None, audit_seed: int = 0, workers: int = 2,
+               progress: Callable | None = None, command: str = "formread read") -> BatchReport:
     """Read scanned forms into the ledger of ``outdir``.
 
     Parameters
@@ -336,6 +361,9 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
         ``readings.csv``, ``fields.jsonl``
     bundle : model bundle (Bundle or the path of a model file); the one in use by default
     threshold : acceptance threshold for every field (wins over the layout's; see formread.form.thresholds)
+    audit : share of the fields that would have been accepted sent to review as spot checks; else the
+        layout's ``audit``, else ``DEFAULT_AUDIT`` (formread.read.audit)
+    audit_seed : seed of the spot-check draw
     workers : processes for the imaging step (1 = all in this process)
     progress : ``progress(done, total, **figures)`` called after every page
     command : the command line, recorded in ``runs``
@@ -360,10 +388,11 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
         layout_text = read_layout_text(layout_path)
         layout = load_layout(layout_path)
     if not isinstance(bundle, Bundle):
-        bundle = load_bundle(bundle if bundle is not None else default_model_path())
+        bundle = load_bundle(bundle if bundle is not None else in_use_path())
     fitted = bundle.fitted_threshold(layout.name)
     thresholds = resolve_thresholds(layout, explicit=threshold, fitted=fitted)
     run_threshold = form_threshold(layout, explicit=threshold, fitted=fitted).value
+    rate = audit_rate(layout, audit)
     scans = list_scans(inputs)
     ledger = open_ledger(outdir)
     try:
@@ -372,9 +401,9 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
                                   layout_sha256=hashlib.sha256(layout_text.encode("utf-8")).hexdigest(),
                                   model_path=str(bundle.path.resolve()), model_sha256=bundle.sha256,
                                   threshold=run_threshold, command=command, layout_text=layout_text,
-                                  bundle=bundle.summary())
+                                  bundle=bundle.summary(), audit_rate=rate)
         report = BatchReport(run_id=run_id, outdir=Path(outdir))
-        reader = _Reader(layout, bundle, thresholds)
+        reader = _Reader(layout, bundle, thresholds, rate, audit_seed)
         try:
             _run(scans, layout, ledger, reader, report, workers, progress, t_start)
             ledger.finish_run(run_id)

@@ -138,12 +138,14 @@ class Decisions:
         return np.concatenate(parts) if parts else np.zeros((0, 3))
 
     def threshold_for(self, form: str | None, name: str | None, target: float) -> float | None:
-        """The lowest threshold whose error among accepted held-out fields stays within ``target``;
-        None when there is no evidence or no threshold meets it (the policy then falls through)."""
+        """The lowest threshold whose error among accepted held-out fields, observed or predicted by
+        their confidences (whichever is larger; formread.read.tune, criterion "calibrated"), stays
+        within ``target``; None when there is no evidence or no threshold meets it (the policy then
+        falls through)."""
         ev = self.evidence(form, name)
         if not len(ev):
             return None
-        res = choose_threshold(ev[:, 0], ev[:, 1] > 0.5, ev[:, 2] > 0.5, target=target)
+        res = choose_threshold(ev[:, 0], ev[:, 1] > 0.5, ev[:, 2] > 0.5, target=target, criterion="calibrated")
         return float(min(1.0, res.threshold)) if res.met else None
 
     def to_json(self, fitted_for: str) -> dict:

@@ -92,11 +92,17 @@ __all__ = [
 
 ACCEPTED = "accepted"
 REVIEW = "review"
-REASONS = ("page_not_registered", "segmentation_doubtful", "missing", "rule_failed:<rule>", "low_confidence")
+AUDIT = "audit"
+REASONS = ("page_not_registered", "segmentation_doubtful", "missing", "rule_failed:<rule>",
+           "best_breaks_rule:<rule>", "low_confidence", "audit")
 """Reasons for review, a fixed vocabulary.  ``rule_failed:<rule>`` names the rule
-(``length``, ``range``, ``date``, ``luhn``, ..., or ``relation``).  Order of
-precedence: page_not_registered (whole page), segmentation_doubtful when there is
-no reading at all, missing, rule_failed:<rule>, segmentation_doubtful, low_confidence."""
+(``length``, ``range``, ``date``, ``luhn``, ..., or ``relation``) the reading breaks;
+``best_breaks_rule:<rule>``: the reading keeps the rules only because it differs from the
+reader's own best reading, which breaks ``<rule>`` (a writer's mistake must reach a person,
+see ``ConfidenceModel.rule_fit_ratio``); ``audit``: a spot check of a field that would have
+been accepted (formread.read.audit).  Order of precedence: page_not_registered (whole page),
+segmentation_doubtful when there is no reading at all, missing, rule_failed:<rule>,
+best_breaks_rule:<rule>, segmentation_doubtful, low_confidence, audit."""
 
 TOP_PER_POSITION = 3
 MAX_STRINGS = 128
@@ -131,6 +137,13 @@ class ConfidenceModel:
         the relation stage, whether they keep the relations being unknown.  (In the
         field stage, strings never examined are weighed by the share of examined
         ones that keep the rules.)
+    rule_fit_ratio : float in [0, 1]
+        A reading that keeps the field's rules (or the page's relations) while the
+        reader's own most probable string breaks them is accepted only when its
+        probability is at least this share of that string's; otherwise the field goes to
+        review as ``best_breaks_rule:<rule>``.  Rules used to choose a reading must not
+        explain away what the writer wrote (a wrong check digit, a count over its range).
+        0 switches the test off.
     digit_calibration : tuple of (float, float) pairs, or None
         A reliability map for each digit's error ``e = 1 - max_d p(d)``: knots
         ``(log10 e, log10 e')`` interpolated piecewise linearly (ends held flat);
@@ -146,6 +159,7 @@ class ConfidenceModel:
     relation_slack: float = 1.0
     tail_weight: float = 1.0
     digit_calibration: tuple | None = None
+    rule_fit_ratio: float = 0.0
 
     def __post_init__(self):
         for k in ("temperature_boxed", "temperature_open", "prior_scale"):
@@ -154,6 +168,7 @@ class ConfidenceModel:
         check_param(0 < self.rule_slack <= 1, "rule_slack", "in (0, 1]", self.rule_slack)
         check_param(0 < self.relation_slack <= 1, "relation_slack", "in (0, 1]", self.relation_slack)
         check_param(0 <= self.tail_weight <= 1, "tail_weight", "in [0, 1]", self.tail_weight)
+        check_param(0 <= self.rule_fit_ratio <= 1, "rule_fit_ratio", "in [0, 1]", self.rule_fit_ratio)
         if self.digit_calibration is not None:
             k = np.asarray(self.digit_calibration, dtype=np.float64)
             check_param(k.ndim == 2 and k.shape[1] == 2 and len(k) >= 2 and bool(np.all(np.diff(k[:, 0]) > 0))
@@ -547,18 +562,34 @@ def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, rela
                 states[f].reading.rules["relation"] = not failing
 
 
-def _decide(st: _State, threshold: float) -> None:
+def _best_broken(st: _State, model: ConfidenceModel) -> str | None:
+    """The rule the reader's own best string breaks, when the reading keeps the rules only by being
+    another, much less probable string (see ``ConfidenceModel.rule_fit_ratio``); else None."""
+    if not model.rule_fit_ratio or not st.options or st.chosen is None:
+        return None
+    top = st.options[0]
+    if st.chosen.string == top.string or not top.string:
+        return None
+    if st.chosen.prob >= model.rule_fit_ratio * top.prob:
+        return None                  # the rule-keeping reading is itself nearly as likely
+    return _first_failure(top.rules) or "relation"
+
+
+def _decide(st: _State, threshold: float, model: ConfidenceModel | None = None) -> None:
     r = st.reading
     thr = float(threshold)
     r.threshold = thr
     doubtful = st.doubtful or (r.candidate is not None and st.interior_blank[r.candidate])
     failure = _first_failure(r.rules)
+    broken = None if model is None or r.reading is None else _best_broken(st, model)
     if r.reading is None:
         reason = "segmentation_doubtful"
     elif r.reading == "" and not st.rules.optional:
         reason = "missing"
     elif failure is not None:
         reason = f"rule_failed:{failure}"
+    elif broken is not None:
+        reason = f"best_breaks_rule:{broken}"
     elif doubtful:
         reason = "segmentation_doubtful"
     elif r.confidence < thr:
@@ -589,9 +620,9 @@ def decode_field(evidence: FieldEvidence | None, rules: FieldRules, *, threshold
                  confidence: ConfidenceModel, top_per_position: int = TOP_PER_POSITION,
                  max_strings: int = MAX_STRINGS, cost_scale: float | None = None) -> FieldReading:
     """Decode one field on its own (its own rules only, no relations); see :func:`decode_page`."""
-    st = _field_state(evidence, rules, top=top_per_position, limit=max_strings,
-                      model=_model(confidence, cost_scale))
-    _decide(st, threshold)
+    m = _model(confidence, cost_scale)
+    st = _field_state(evidence, rules, top=top_per_position, limit=max_strings, model=m)
+    _decide(st, threshold, m)
     return st.reading
 
 
@@ -635,7 +666,7 @@ def decode_page(evidence: dict[str, FieldEvidence], layout, *, confidence: Confi
                                       limit=max_strings, model=m)
     _apply_relations(states, compiled, relation_top=relation_top, max_combinations=max_combinations, model=m)
     for name, st in states.items():
-        _decide(st, _threshold(thresholds, name))
+        _decide(st, _threshold(thresholds, name), m)
     return {name: st.reading for name, st in states.items()}
 
 

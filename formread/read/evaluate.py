@@ -10,14 +10,16 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..errors import DataError
+from ..form.rules import check_field, check_relations
 from ..ledger.store import ledger_path, open_ledger
+from .runs import run_layouts
 from .score import score_readings, write_curve_png
 from .tune import choose_threshold
 
 __all__ = ["ledger_readings", "score_ledger", "tune_ledger", "ELIGIBLE_REASONS",
            "SUMMARY_KEYS"]
 
-ELIGIBLE_REASONS = (None, "low_confidence")
+ELIGIBLE_REASONS = (None, "low_confidence", "audit")
 """Reasons under which a field's decision depends on the threshold alone (rules hold, segmentation sure)."""
 
 SUMMARY_KEYS = ("pages", "fields", "accepted", "review", "wrong_accepted", "error_among_accepted", "review_rate",
@@ -38,13 +40,65 @@ def ledger_readings(outdir) -> tuple[list[dict], dict | None]:
     LedgerError
         No ledger in ``outdir``.
     """
+    recs, run, _ = _ledger_records(outdir)
+    return recs, run
+
+
+def _ledger_records(outdir):
     with open_ledger(outdir, create=False) as led:
         rows = led.field_rows()
         run = led.last_run()
+        layouts = run_layouts(led)
     recs = [{"source": r["source"], "page_number": r["page_number"], "field": r["name"], "reading": r["reading"],
              "confidence": float(r["confidence"] or 0.0), "decision": r["decision"], "reason": r["reason"],
-             "final_value": r["final_value"], "final_status": r["final_status"]} for r in rows]
-    return recs, run
+             "final_value": r["final_value"], "final_status": r["final_status"], "audit": bool(r["audit"]),
+             "run_id": r["run_id"]} for r in rows]
+    return recs, run, layouts
+
+
+def writer_mistakes(scored, run_of: dict, layouts: dict) -> dict:
+    """Truth values that break their own field's rules, and pages whose truth breaks a relation.
+
+    A writer's mistake must reach a person: ``accepted`` counts those the reader accepted (a field
+    mistake accepted, or a relation mistake whose every field was accepted), which must be 0.
+
+    Parameters
+    ----------
+    scored : list of FieldScore (formread.read.score)
+    run_of : dict (source, page_number) -> run id
+    layouts : dict run id -> Layout or None
+
+    Returns
+    -------
+    dict: ``fields`` (field mistakes), ``fields_accepted``, ``relations`` (page relation mistakes),
+    ``relations_accepted``, ``accepted`` (the sum), ``list`` (the accepted ones, as text)
+    """
+    pages: dict = {}
+    for f in scored:
+        pages.setdefault((f.source, f.page_number), []).append(f)
+    out = {"fields": 0, "fields_accepted": 0, "relations": 0, "relations_accepted": 0, "list": []}
+    for key, fields in pages.items():
+        layout = layouts.get(run_of.get((Path(key[0]).name, key[1])))
+        if layout is None:
+            continue
+        compiled = layout.rules
+        for f in fields:
+            if f.field in compiled.fields and not all(check_field(compiled, f.field, f.truth).values()):
+                out["fields"] += 1
+                if f.decision == "accepted":
+                    out["fields_accepted"] += 1
+                    out["list"].append(f"{f.source} page {f.page_number} {f.field}: {f.truth!r} accepted as "
+                                       f"{f.reading!r}")
+        by_name = {f.field: f for f in fields}
+        for text, ok in check_relations(compiled, {f.field: f.truth for f in fields}).items():
+            if ok is False:
+                out["relations"] += 1
+                rel = next(r for r in compiled.relations if r.text == text)
+                if all(n in by_name and by_name[n].decision == "accepted" for n in rel.fields):
+                    out["relations_accepted"] += 1
+                    out["list"].append(f"{key[0]} page {key[1]}: {text} broken on paper, all accepted")
+    out["accepted"] = out["fields_accepted"] + out["relations_accepted"]
+    return out
 
 
 def score_ledger(outdir, truth_path, *, curve_png=None, target: float = 0.005) -> dict:
@@ -59,11 +113,16 @@ def score_ledger(outdir, truth_path, *, curve_png=None, target: float = 0.005) -
     ``error_among_accepted``, ``review_rate``, ``field_accuracy_before_review``, ``digit_accuracy``,
     ``per_field``, ...) plus ``ledger`` and ``threshold`` (of the latest run).
     """
-    recs, run = ledger_readings(outdir)
+    recs, run, layouts = _ledger_records(outdir)
     if not recs:
         raise DataError(f"{outdir}: the ledger holds no field to score")
     report = score_readings(recs, truth_path)
     summary = report.summary()
+    run_of = {(Path(r["source"]).name, r["page_number"]): r["run_id"] for r in recs}
+    wm = writer_mistakes(report.fields, run_of, layouts)
+    summary["writer_mistakes"] = wm["fields"] + wm["relations"]
+    summary["writer_mistakes_accepted"] = wm["accepted"]
+    summary["writer_mistakes_accepted_list"] = wm["list"]
     summary["ledger"] = str(ledger_path(outdir))
     summary["threshold"] = None if run is None else float(run["threshold"])
     if curve_png is not None:

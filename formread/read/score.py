@@ -73,6 +73,7 @@ class FieldScore:
     eligible: bool          # acceptable at some threshold: accepted now, or in review only for low confidence
     digits_compared: int
     digits_correct: int
+    audit: bool = False     # would have been accepted; sent to review as a spot check
 
 
 def _base(source: str) -> str:
@@ -145,6 +146,7 @@ class ScoreReport:
             "fields": n,
             "accepted": len(acc),
             "review": n - len(acc),
+            "audited": sum(r.audit for r in rows),
             "wrong_accepted": wrong_acc,
             "error_among_accepted": wrong_acc / len(acc) if acc else 0.0,
             "review_rate": (n - len(acc)) / n if n else 0.0,
@@ -250,7 +252,7 @@ def score_readings(readings, truth, *, strict: bool = False, truth_name: str | N
             read[key] = {}
             order.append(key)
         read[key][fname] = {"reading": reading, "confidence": conf, "decision": decision,
-                            "reason": rec.get("reason")}
+                            "reason": rec.get("reason"), "audit": bool(rec.get("audit", False))}
 
     truth_not_read = [(truth_by_key[k].source, k[1]) for k in truth_by_key if k not in read]
     not_in_truth = [(read_src[k[0]], k[1]) for k in order if k not in truth_by_key]
@@ -276,9 +278,9 @@ def score_readings(readings, truth, *, strict: bool = False, truth_name: str | N
                 continue
             g = got[fname]
             dc, dok = _digits(true, g["reading"])
-            eligible = g["decision"] == "accepted" or g["reason"] == "low_confidence"
+            eligible = g["decision"] == "accepted" or g["reason"] in ("low_confidence", "audit")
             rows.append(FieldScore(tp.source, key[1], fname, true, g["reading"], g["confidence"], g["decision"],
-                                   g["reason"], g["reading"] == true, eligible, dc, dok))
+                                   g["reason"], g["reading"] == true, eligible, dc, dok, g["audit"]))
         fields_not_in_truth += [(tp.source, key[1], f) for f in got if f not in tp.fields]
     if strict and truth_fields_not_read:
         s, p, f = truth_fields_not_read[0]

@@ -14,17 +14,17 @@ or deleted since.
 
 from __future__ import annotations
 
-import hashlib
 import json
 import logging
 import re
 from dataclasses import dataclass
 from pathlib import Path
 
-from ..errors import LayoutError, ReviewError, RuleError
-from ..form.layout import Layout, parse_layout, read_layout_text
+from ..errors import ReviewError
+from ..form.layout import Layout
 from ..form.rules import check_field, check_relations
 from ..ledger.store import Ledger, utc_now
+from ..read.runs import run_layout
 from .wording import STATUS_WORDS, explain_reason
 
 __all__ = [
@@ -147,36 +147,6 @@ def pending_filters(ledger: Ledger) -> dict:
 
 
 # ----------------------------------------------------------------------------- the run's layout
-
-def run_layout(ledger: Ledger, run_id: int) -> Layout | None:
-    """The layout a run read its pages with, as it was then; None when it cannot be known.
-
-    From ``runs.layout_text`` (stored since schema version 2).  A first-release ledger has only
-    the file's path and hash: the file is used only while its hash is unchanged.
-    """
-    row = ledger.conn.execute("SELECT layout_path, layout_sha256, layout_text FROM runs WHERE id = ?",
-                              (int(run_id),)).fetchone()
-    if row is None:
-        return None
-    try:
-        if row["layout_text"] is not None:
-            return parse_layout(row["layout_text"], str(row["layout_path"]))
-        cands = [Path(row["layout_path"])]
-        if not cands[0].is_absolute():
-            cands.append(ledger.outdir / row["layout_path"])
-        for p in cands:
-            if p.is_file():
-                text = read_layout_text(p)
-                if hashlib.sha256(p.read_bytes()).hexdigest() != row["layout_sha256"]:
-                    log.warning("%s: changed since run %s read its pages; field sizes and rules unknown", p, run_id)
-                    return None
-                return parse_layout(text, str(p))
-    except (LayoutError, RuleError, OSError) as e:
-        log.warning("%s; field sizes and rules unknown", e)
-        return None
-    log.warning("%s: layout of run %s not found; field sizes and rules unknown", row["layout_path"], run_id)
-    return None
-
 
 def _spec(layout: Layout | None, name: str):
     if layout is None:

@@ -68,6 +68,13 @@ def explain_reason(reason: str | None, *, confidence: float | None = None,
                 out.append(f"A cross-field rule does not hold: {rule}.")
             else:
                 out.append(f"The rule '{rule}' failed for this reading.")
+        elif part.startswith("best_breaks_rule:"):
+            rule = part.split(":", 1)[1]
+            out.append(f"What the reader saw best breaks a rule ({rule}: {rule_words(rule)}); the value proposed "
+                       "keeps the rule but is only a weaker reading. Check whether the writer made a mistake.")
+        elif part == "audit":
+            out.append("Spot check: the reader would have accepted this field. A few accepted fields are checked "
+                       "at random so the office knows how often accepted values are wrong.")
         elif part == "segmentation_doubtful":
             out.append("The digits could not be told apart cleanly (touching, broken or stray marks).")
         elif part == "page_not_registered":

@@ -18,7 +18,7 @@ from PIL import Image
 from formread.imaging.load import load_pages
 from formread.nn.model import build_model
 from formread.nn.modelfile import save_model
-from formread.paths import demo_dir
+from formread.store import demo_forms as demo_dir
 
 SCAN_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".pdf")
 

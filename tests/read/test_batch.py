@@ -10,6 +10,7 @@ from PIL import Image
 from readkit import demo_layout, readings, tiny_model, write_copies
 
 import formread.read.batch as batch
+from formread.ledger.fieldfile import load_digits, load_field_file
 from formread.read.batch import list_scans, read_batch
 
 
@@ -94,14 +95,16 @@ def test_digit_images_follow_the_reading(tmp_path, model):
     scans = write_copies(tmp_path / "scans", 1)
     out = tmp_path / "out"
     read_batch(scans, demo_layout(), out, bundle=model, workers=1)
-    rows = _rows(out, "SELECT reading, digits_path, image_path, box_px FROM fields")
+    rows = _rows(out, "SELECT reading, digits_path, image_path, box_px, kind FROM fields")
     assert rows
-    for reading, digits_path, image_path, box in rows:
+    for reading, digits_path, image_path, box, kind in rows:
         assert (out / image_path).is_file() and box is not None
         if reading:
-            with np.load(out / digits_path, allow_pickle=False) as z:
-                assert z["digits"].shape == (len(reading), 1, 28, 28)
-                assert z["digits"].dtype == np.float32
+            d = load_digits(out / digits_path)
+            assert d.shape == (len(reading), 1, 28, 28) and d.dtype == np.float32
+            ff = load_field_file(out / digits_path)     # every candidate split is kept, for learning
+            assert ff.cand_digits is not None and len(ff.cand_spans) == len(ff.cand_costs) >= 1
+            assert (ff.crop_gray is not None) == (kind == "open")
 
 
 def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, model, monkeypatch):

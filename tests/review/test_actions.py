@@ -9,7 +9,8 @@ import numpy as np
 import pytest
 
 from formread.errors import LedgerError, ReviewError
-from formread.ledger.store import load_digits, open_ledger
+from formread.ledger.fieldfile import load_digits
+from formread.ledger.store import open_ledger
 from formread.review import queries, wording
 from formread.review.queries import InvalidValue, StaleSave, UnknownItem
 from review_fixture import snapshot

@@ -12,7 +12,7 @@ import pytest
 from typer.testing import CliRunner
 
 from formread.cli.main import app
-from formread.ledger.store import load_digits, open_ledger
+from formread.ledger.store import open_ledger
 from formread.review import queries, wording
 from formread.review.server import MAX_BODY, TOKEN_HEADER, running
 from review_fixture import snapshot
