@@ -60,7 +60,7 @@ def _formread(*args: str) -> str:
 def _demo_set(args, work: Path) -> Path:
     """The folder holding the scans, layout.toml and truth.jsonl."""
     if args.shipped:
-        from formread.paths import demo_dir
+        from formread.store import demo_forms as demo_dir
 
         return demo_dir()
     d = work / f"set_seed{args.seed}_n{args.count}"
@@ -173,7 +173,7 @@ def _extract(d: Path, cache: Path) -> None:
     from formread.form.layout import load_layout
     from formread.imaging.load import load_pages
     from formread.imaging.pipeline import process_page
-    from formread.paths import default_model_path
+    from formread.store import in_use_path as default_model_path
     from formread.read.bundle import load_bundle
     from formread.read.recognise import recognise_page
 
@@ -228,7 +228,7 @@ def decode_cached(pages, layout_path: Path, threshold=None, confidence=None, **k
     ``confidence``: the decoder constants (default: those of the model bundle in use)."""
     from formread.form.layout import load_layout
     from formread.form.thresholds import resolve_thresholds
-    from formread.paths import default_model_path
+    from formread.store import in_use_path as default_model_path
     from formread.read.bundle import load_bundle
     from formread.read.decode import decode_page, unregistered_page
 

@@ -15,6 +15,12 @@ for _sub in ("review", "read", "imaging", "cli"):      # review_fixture, fakes, 
 from review_fixture import make_ledger  # noqa: E402
 
 
+@pytest.fixture(autouse=True)
+def _own_model_store(tmp_path_factory, monkeypatch):
+    """Every test gets an empty model store of its own: nothing is ever written to the user's."""
+    monkeypatch.setenv("FORMREAD_HOME", str(tmp_path_factory.mktemp("home")))
+
+
 @pytest.fixture(scope="session")
 def _ledger_template(tmp_path_factory):
     base = tmp_path_factory.mktemp("review_template")

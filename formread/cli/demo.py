@@ -48,11 +48,11 @@ def demo_cmd(
     """
     if ctx.invoked_subcommand is not None:
         return
-    from ..paths import demo_dir
+    from ..store import demo_forms
     from ..read.batch import read_batch
     from ..read.evaluate import score_ledger
 
-    folder = demo_dir()
+    folder = demo_forms()
     layout, truth = folder / "layout.toml", folder / "truth.jsonl"
     if not layout.is_file() or not truth.is_file():
         fail(f"{folder}: the demo forms are missing (no layout.toml or truth.jsonl)")

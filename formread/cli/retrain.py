@@ -1,10 +1,10 @@
-"""Commands that close the loop: ``samples`` (from a clerk's decisions) and ``retrain``."""
+"""Commands that close the loop: ``learn`` (the whole step after a review), and its parts ``samples`` and ``retrain``."""
 
 from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Optional
+from typing import List, Optional
 
 import typer
 
@@ -16,7 +16,8 @@ def samples_cmd(
     outdir: Path = typer.Argument(..., metavar="OUTDIR", help="Output folder of `formread read` (reviewed)."),
     to: Path = typer.Option(Path("samples"), "--to", help="Samples folder (DIR/<digit>/*.png + manifest.jsonl)."),
 ):
-    """Add labelled digit images from confirmed and corrected fields to a samples folder."""
+    """Add labelled digit images from confirmed and corrected fields to a samples folder
+    (a part of `formread learn`, which also cuts fields again to their decided length)."""
     from ..learn.samples import collect_samples
 
     rep = collect_samples(outdir, to)
@@ -33,36 +34,115 @@ def retrain_cmd(
     samples: Path = typer.Option(..., "--samples", help="Local samples folder (DIR/<digit>/*.png)."),
     model: Optional[Path] = typer.Option(None, "--model", help="Model to fine-tune (default: the one in use)."),
     out: Optional[Path] = typer.Option(None, "--out", help="New version's path (default: <model>-r<N>.npz)."),
-    held_out: float = typer.Option(0.3, "--held-out", help="Share of each digit's samples kept for measuring."),
-    epochs: int = typer.Option(6, "--epochs", help="Fine-tuning epochs."),
-    margin: float = typer.Option(0.005, "--margin",
+    held_out: float = typer.Option(0.3, "--held-out", min=0.05, max=0.8,
+                                   help="Share of each digit's samples kept for measuring."),
+    epochs: int = typer.Option(6, "--epochs", min=1, max=1000, help="Fine-tuning epochs."),
+    margin: float = typer.Option(0.005, "--margin", min=0.0, max=0.5,
                                  help="Most accuracy an original test part may lose for promotion."),
-    min_gain: float = typer.Option(0.01, "--min-gain", help="Least held-out local accuracy gain for promotion."),
-    seed: int = typer.Option(0, "--seed", help="Seeds the split, the original-data sample and training."),
+    min_gain: float = typer.Option(0.01, "--min-gain", min=-0.5, max=0.5,
+                                   help="Least held-out local accuracy gain for promotion."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Seeds the split, the original-data sample and training."),
+    promote_inherited: bool = typer.Option(
+        False, "--promote-inherited", help="Put the new version in use (when it helps) although its fitted "
+                                          "decisions are the parent's; `formread learn` refits them instead."),
     as_json: bool = typer.Option(False, "--json", help="Machine-readable report."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ):
-    """Fine-tune the model on local samples; write a new version; promote it only if it helps."""
-    from ..paths import default_model_path
+    """Fine-tune the model on local samples and write a new version (a part of `formread learn`).
+
+    The new version keeps the parent's fitted decisions (inherited), so it is put in use only with
+    --promote-inherited; `formread learn` fine-tunes, refits the decisions and promotes in one step.
+    """
+    from ..store import in_use_path
     from ..learn.retrain import retrain
 
-    model_path = model or default_model_path()
+    model_path = model or in_use_path()
     bar = ProgressBar("fine-tuning", enabled=not quiet and not as_json)
     rep = retrain(model_path, samples, out=out, held_out=held_out, epochs=epochs, margin=margin,
-                  min_gain=min_gain, seed=seed, progress=bar)
+                  min_gain=min_gain, seed=seed, promote_inherited=promote_inherited, progress=bar)
     if as_json:
         typer.echo(json.dumps(rep.as_dict(), indent=2))
         return
     typer.echo(f"local samples: {rep.n_local_train} for fine-tuning, {rep.n_local_held_out} held out; "
                f"{rep.n_original} original training images mixed in")
     typer.echo(f"held-out local accuracy: {rep.local_before:.4f} -> {rep.local_after:.4f}")
-    for part in rep.original_before:
+    for part in rep.original_before or {}:
         typer.echo(f"{part} accuracy: {rep.original_before[part]:.4f} -> {rep.original_after[part]:.4f}")
     typer.echo(f"wrote {rep.model_after} (temperature {rep.temperature:.3f})")
     typer.echo(("promoted: now in use. " if rep.promoted else "not promoted: ") + rep.reason)
 
 
+
+
+def _pct(v) -> str:
+    return "-" if v is None else f"{100 * v:.1f}%"
+
+
+def _render_learn(rep) -> list[str]:
+    b, a = rep.before, rep.after
+    lines = [f"learnt from {rep.fields_clerk} fields decided by a clerk ({rep.fields_known} with a known value); "
+             f"{rep.split}",
+             f"digit samples: {rep.samples} from the fitting pages ({rep.resegmented} fields cut again to their "
+             f"decided length, {len(rep.skipped)} fields gave none)",
+             "held-out pages                before    after",
+             f"  field accuracy              {_pct(b['field_accuracy']):>6}   {_pct(a['field_accuracy']):>6}",
+             f"  review rate at the target   {_pct(b['review_rate']):>6}   {_pct(a['review_rate']):>6}",
+             f"  error among accepted        {_pct(b['error_among_accepted']):>6}   {_pct(a['error_among_accepted']):>6}"
+             f"   (95% upper bound after: {_pct(a['upper_95'])}, {a['wrong_accepted']} of {a['accepted']})"]
+    for form, f in a["forms"].items():
+        t = "no threshold meets it" if f["threshold"] is None else f"threshold {f['threshold']:.4f}"
+        lines.append(f"  {form}: target {_pct(f['target'])} -> {t}")
+    for part in rep.original_before or {}:
+        lines.append(f"{part} accuracy: {rep.original_before[part]:.4f} -> {rep.original_after[part]:.4f}")
+    lines.append(f"wrote {rep.bundle_after} (temperature {rep.temperature:.3f}; decoder and decisions refitted)")
+    lines.append(("promoted: now in use. " if rep.promoted else "not promoted: ") + rep.reason)
+    return lines
+
+
+@edge
+def learn_cmd(
+    runs: List[Path] = typer.Argument(..., metavar="RUN...", help="Output folders of reviewed `formread read` runs."),
+    model: Optional[Path] = typer.Option(None, "--model", help="Bundle to learn from (default: the one in use)."),
+    out: Optional[Path] = typer.Option(None, "--out", help="New version's path (default: the store's next -r<N>)."),
+    target: Optional[float] = typer.Option(
+        None, "--target", min=1e-6, max=0.499, help="Error among accepted fields aimed at (default: each layout's "
+                                                    "target_error, else 0.005)."),
+    held_out: float = typer.Option(0.3, "--held-out", min=0.05, max=0.8,
+                                   help="Share of the pages held out to measure and refit on."),
+    epochs: int = typer.Option(6, "--epochs", min=1, max=1000, help="Fine-tuning epochs."),
+    margin: float = typer.Option(0.005, "--margin", min=0.0, max=0.5,
+                                 help="Most accuracy an original held-out part may lose for promotion."),
+    seed: int = typer.Option(0, "--seed", min=0, help="Seeds the page split, the original-data sample and training."),
+    resume: bool = typer.Option(False, "--resume", help="Continue an interrupted fine-tuning from its checkpoint."),
+    truth: Optional[Path] = typer.Option(None, "--truth", help="Known values of the runs' pages (truth.jsonl), "
+                                                               "for development sets."),
+    refit_only: bool = typer.Option(False, "--refit-only", help="No training: fit the decisions of the bundle's "
+                                                                "own network on every page (e.g. a new form)."),
+    as_json: bool = typer.Option(False, "--json", help="Machine-readable report."),
+    quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
+):
+    """Learn the office's handwriting AND refit the decisions for the new network, from reviewed runs.
+
+    Fine-tunes on the digits of the fields a clerk decided (pages split into fitting and held-out),
+    refits the decoder and the thresholds on the held-out pages, and promotes the new bundle only
+    when its review rate at the target falls there and the original held-out parts hold.  The next
+    `formread read` uses it. Ctrl-C stops (exit 130, nothing promoted); --resume continues.
+    """
+    from ..learn.loop import LearnConfig, learn
+
+    bar = ProgressBar("fine-tuning", enabled=not quiet and not as_json)
+    cfg = LearnConfig(held_out=held_out, seed=seed, epochs=epochs, margin=margin, target=target,
+                      refit_only=refit_only)
+    rep = learn(runs, bundle=model, out=out, config=cfg, progress=bar, resume=resume, truth=truth)
+    if as_json:
+        typer.echo(json.dumps(rep.as_dict(), indent=2))
+        return
+    for line in _render_learn(rep):
+        typer.echo(line)
+
+
 def register(app: typer.Typer) -> None:
-    """Add ``samples`` and ``retrain`` to the main app."""
+    """Add ``learn``, ``samples`` and ``retrain`` to the main app."""
+    app.command("learn")(learn_cmd)
     app.command("samples")(samples_cmd)
     app.command("retrain")(retrain_cmd)

@@ -10,6 +10,7 @@ from typing import Optional
 
 import typer
 
+from ..errors import FormreadError, one_line
 from ..learn.recipe import Recipe, train_recipe
 from ..nn.model import ARCHITECTURES
 from ..nn.train import OPTIMIZERS, SCHEDULES
@@ -242,14 +243,12 @@ def render_card(bundle) -> str:
 
 
 def list_models() -> list[tuple[Path, dict | None, str | None]]:
-    """Model files in the models folder: (path, header or None, problem or None), by name."""
-    from ..errors import FormreadError, one_line
+    """The shipped model and the store's model files: (path, header or None, problem or None)."""
     from ..nn.modelfile import read_header
-    from ..paths import models_dir
+    from ..store import shipped_model, store_models
 
     out = []
-    d = models_dir()
-    for p in sorted(d.glob("*.npz")) if d.is_dir() else []:
+    for p in [shipped_model()] + store_models():
         try:
             out.append((p, read_header(p), None))
         except FormreadError as e:
@@ -263,10 +262,10 @@ def info_cmd(
                                                 help="Model file; without it, list the model files."),
     as_json: bool = typer.Option(False, "--json", help="Print the raw header as JSON."),
 ):
-    """Show a model file's card (architecture, data, split, metrics, temperature, checksum),
-    or list the model files and mark the one in use."""
-    from ..paths import default_model_path, models_dir
+    """Show a model file's card (architecture, data, split, metrics, temperature, what was fitted for
+    it, checksum), or list the shipped model and the store's models, marking the one in use."""
     from ..read.bundle import load_bundle
+    from ..store import in_use_path, migrate_checkout_models, shipped_model, store_dir
 
     if model_path is not None:
         bundle = load_bundle(model_path)  # verifies the checksums
@@ -277,24 +276,33 @@ def info_cmd(
         typer.echo("checksum:     " + ("verified (weights and header)" if bundle.header.get("format_version", 1) >= 2
                                        else "weights verified; header not covered (format version 1)"))
         return
-    in_use = default_model_path().resolve()
+    note = migrate_checkout_models()
+    if note:
+        typer.echo(f"formread: {note}", err=True)
+    in_use = in_use_path().resolve()
     rows = list_models()
     if as_json:
-        listing = [{"file": p.name, "in_use": p.resolve() == in_use, "created": (h or {}).get("created"),
-                    "metrics": (h or {}).get("metrics"), "problem": err} for p, h, err in rows]
-        typer.echo(json.dumps(listing, indent=2))
+        listing = [{"file": str(p), "in_use": p.resolve() == in_use, "shipped": p == shipped_model(),
+                    "created": (h or {}).get("created"), "metrics": (h or {}).get("metrics"), "problem": err}
+                   for p, h, err in rows]
+        typer.echo(json.dumps({"store": str(store_dir()), "models": listing}, indent=2))
         return
-    if not rows:
-        typer.echo(f"no model files in {models_dir()}")
-        return
-    typer.echo(f"model files in {models_dir()} (* = in use):")
+    typer.echo(f"shipped model: {shipped_model()} (read-only)")
+    typer.echo(f"model store:   {store_dir()} (FORMREAD_HOME/models when FORMREAD_HOME is set)")
+    typer.echo("models (* = in use):")
     for p, h, err in rows:
         mark = "*" if p.resolve() == in_use else " "
+        name = "shipped " + p.name if p == shipped_model() else p.name
         if h is None:
-            typer.echo(f"{mark} {p.name:<24} unreadable: {err}")
+            typer.echo(f"{mark} {name:<26} unreadable: {err}")
             continue
-        accs = "  ".join(f"{k} {v['accuracy']:.4f}" for k, v in (h.get("metrics") or {}).items()
-                         if isinstance(v, dict) and k != "validation" and "accuracy" in v)
-        typer.echo(f"{mark} {p.name:<24} {str(h.get('created') or '-'):<26} {accs}")
+        fitted = ""
+        try:
+            b = load_bundle(p)
+            fitted = f"decoder {b.decoder_status}, decisions {b.decisions.status}"
+        except FormreadError as e:
+            fitted = f"unusable: {one_line(e)}"
+        typer.echo(f"{mark} {name:<26} {str(h.get('created') or '-'):<26} {fitted}")
     if not in_use.exists():
-        typer.echo(f"the model in use ({in_use.name}) is missing")
+        typer.echo(f"the model in use ({in_use.name}) is missing: put another in use, or delete "
+                   f"{store_dir() / 'in_use.json'} to use the shipped one")

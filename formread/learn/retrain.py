@@ -8,35 +8,34 @@ refitted on the run's validation split.  Accuracy is measured before and after o
 local samples and on the original held-out test parts (the MNIST sample's test part and the
 second half of scikit-learn's digits for the shipped model).
 
-The new model is always written as a new version beside the old one (``<name>-r<N>.npz``);
-the model in use is never overwritten.  It is promoted (``models/in_use.json`` points to it)
-only when held-out local accuracy improves by at least ``min_gain`` and no original test part
-loses more than ``margin`` accuracy.  Samples with wrong labels cannot improve held-out local
-accuracy (their held-out part is wrong in the same random way), so such a model is refused.
+The new model is always written as a new version in the model store (``<name>-r<N>.npz``,
+formread/store.py); the model in use is never overwritten.  Its decoder constants and fitted
+decisions are the parent's, inherited: they were fitted for the parent network, and a retrained
+network is more confident, so they would keep its review load where it was.  So ``retrain`` does
+not put it in use unless asked (``promote_inherited``), and then only when held-out local accuracy
+improves by at least ``min_gain`` and no original test part loses more than ``margin``;
+``formread learn`` is the step that refits the decisions and promotes.  Samples with wrong labels
+cannot improve held-out local accuracy (their held-out part is wrong in the same random way), so
+such a model is refused.
 """
 
 from __future__ import annotations
 
-import json
-import re
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Callable
 
 import numpy as np
 
-from .datasets import Dataset, load_samples_folder
 from ..errors import DataError, check_param
-from ..fileio import atomic_write
-from ..nn.augment import AugmentConfig
-from ..nn.model import build_model
+from ..nn.train import evaluate, stratified_split
 from ..read.bundle import load_bundle
-from ..nn.train import TrainConfig, evaluate, stratified_split, train
-from .datasets import held_out_parts, load_named
+from ..store import in_use_path, next_version_path, promote, store_dir
+from .datasets import Dataset, load_samples_folder
+from .finetune import accuracy, fine_tune, original_data
 
-__all__ = ["RetrainReport", "retrain", "next_version_path", "promote", "IN_USE"]
+__all__ = ["RetrainReport", "retrain"]
 
-IN_USE = "in_use.json"
 MIN_LOCAL_SAMPLES = 20
 
 
@@ -74,33 +73,9 @@ class RetrainReport:
         return asdict(self)
 
 
-def next_version_path(model_path: Path) -> Path:
-    """``default.npz`` -> ``default-r1.npz``; ``default-r1.npz`` -> ``default-r2.npz`` (first free)."""
-    stem = re.sub(r"-r\d+$", "", model_path.stem)
-    n = 1
-    while (model_path.parent / f"{stem}-r{n}.npz").exists():
-        n += 1
-    return model_path.parent / f"{stem}-r{n}.npz"
-
-
-def promote(model_path: Path, models_dir: Path) -> None:
-    """Make ``model_path`` the model in use by writing ``models_dir/in_use.json`` atomically."""
-    atomic_write(models_dir / IN_USE, json.dumps({"model": model_path.name}) + "\n")
-
-
-def _accuracy(model, x: np.ndarray, y: np.ndarray) -> float:
-    return float(evaluate(model, x, y)["accuracy"]) if len(y) else float("nan")
-
-
-def _training_name(header: dict) -> str:
-    """The dataset name the model was trained on, without its part (e.g. ``default``)."""
-    name = str((header.get("training") or {}).get("dataset") or "default")
-    return name.rsplit(":", 1)[0] if name.split(":", 1)[0] in ("default", "mnist", "digits") else name
-
-
 def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path | None = None,
             held_out: float = 0.3, epochs: int = 6, lr: float = 5e-4, original_ratio: float = 4.0,
-            margin: float = 0.005, min_gain: float = 0.01, seed: int = 0,
+            margin: float = 0.005, min_gain: float = 0.01, seed: int = 0, promote_inherited: bool = False,
             original: Dataset | None = None, original_tests: dict[str, Dataset] | None = None,
             progress: Callable | None = None) -> RetrainReport:
     """Fine-tune ``model_path`` on local samples; write a new version; promote it if it helps.
@@ -116,6 +91,8 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
     margin : most accuracy an original test part may lose for promotion
     min_gain : least held-out local accuracy gain for promotion
     seed : seeds the local split, the sample of original data and training
+    promote_inherited : put the new version in use (when it helps) although its decisions are the
+        parent's (never done silently: the reason says so)
     original, original_tests : override the original training data and test parts
         (x of shape (N, 1, 28, 28) float32); default: those named in the model header
     progress : ``progress(done, total, **figures)`` per epoch
@@ -131,9 +108,14 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
     import time
 
     t0 = time.monotonic()
+    model_path = Path(model_path)
+    out_path = Path(out) if out is not None else next_version_path(model_path)
+    if out_path.resolve() in (model_path.resolve(), in_use_path().resolve()):
+        raise DataError(f"{out_path}: the new version must not overwrite the model in use")
     check_param(0 < held_out < 1, "held_out", "a number in (0, 1)", held_out)
     check_param(isinstance(epochs, int) and epochs >= 1, "epochs", "an integer >= 1", epochs)
-    model_path = Path(model_path)
+    check_param(0 <= margin < 1, "margin", "a number in [0, 1)", margin)
+    check_param(-1 < min_gain < 1, "min_gain", "a number in (-1, 1)", min_gain)
     parent = load_bundle(model_path)
     model, header = parent.networks[0], parent.header
     if len(parent.networks) != 1:
@@ -148,31 +130,18 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
         raise DataError(f"{samples_dir}: too few local samples per digit to hold some out")
     x_hold, y_hold = local.x[hold_idx], local.y[hold_idx]
 
-    name = _training_name(header)
-    if original is None:
-        original = load_named(name, "train")
-    if original_tests is None:
-        original_tests = {p: load_named(*p.split(":")) for p in held_out_parts(name)}
+    if original is None or original_tests is None:
+        default_original, default_tests = original_data(header)
+        original = default_original if original is None else original
+        original_tests = default_tests if original_tests is None else original_tests
 
-    n_orig = int(min(len(original), max(1000, round(original_ratio * len(tune_idx)))))
-    orig_idx = np.sort(rng.choice(len(original), size=n_orig, replace=False))
-    x_mix = np.concatenate([original.x[orig_idx], local.x[tune_idx]])
-    y_mix = np.concatenate([original.y[orig_idx], local.y[tune_idx]])
+    local_before = accuracy(model, x_hold, y_hold)
+    original_before = {p: accuracy(model, d.x, d.y) for p, d in original_tests.items()}
+    tuned = fine_tune(model, header, local.x[tune_idx], local.y[tune_idx], original, epochs=epochs, lr=lr,
+                      original_ratio=original_ratio, seed=seed, progress=progress)
+    new, result, cfg, n_orig = tuned.network, tuned.result, tuned.config, tuned.n_original
 
-    local_before = _accuracy(model, x_hold, y_hold)
-    original_before = {p: _accuracy(model, d.x, d.y) for p, d in original_tests.items()}
-
-    new = build_model(model.spec, np.random.default_rng(seed))
-    new.load_state_dict(model.state_dict())
-    base_cfg = (header.get("training") or {}).get("config") or {}
-    aug = AugmentConfig(**base_cfg["augment"]) if isinstance(base_cfg.get("augment"), dict) else AugmentConfig()
-    cfg = TrainConfig(epochs=epochs, lr=lr, optimizer="adam", schedule="cosine", warmup=0,
-                      batch_size=int(base_cfg.get("batch_size", 64)), val_fraction=0.1,
-                      label_smoothing=float(base_cfg.get("label_smoothing", 0.0)),
-                      patience=0, augment=aug, seed=seed)
-    result = train(new, x_mix, y_mix, cfg, progress=progress)
-
-    local_after = _accuracy(new, x_hold, y_hold)
+    local_after = accuracy(new, x_hold, y_hold)
     figures = {p: evaluate(new, d.x, d.y, result.temperature) for p, d in original_tests.items()}
     original_after = {p: float(ev["accuracy"]) for p, ev in figures.items()}
 
@@ -189,9 +158,13 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
         promoted, reason = True, (f"held-out local accuracy {local_before:.4f} -> {local_after:.4f}; "
                                   f"original test parts within the margin {margin:.4f}")
 
-    out_path = Path(out) if out is not None else next_version_path(model_path)
-    if out_path.resolve() == model_path.resolve():
-        raise DataError(f"{out_path}: the new version must not overwrite the model in use")
+    if promoted and not promote_inherited:
+        promoted, reason = False, (f"not put in use: {reason}, but its decisions are the parent's (inherited); "
+                                   "`formread learn` refits them, or retrain with --promote-inherited")
+    elif promoted:
+        reason += "; put in use with the parent's decisions (inherited, as asked)"
+    if promoted and out_path.resolve().parent != store_dir().resolve():
+        promoted, reason = False, f"written outside the model store ({store_dir()}); not put in use"
     metrics = {p: {k: ev[k] for k in ("n", "accuracy", "ece_raw", "ece", "nll_raw", "nll")}
                for p, ev in figures.items()}
     metrics["validation"] = {"n": int(len(result.val_indices)), "accuracy": result.val_accuracy,
@@ -211,7 +184,7 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
                                           "training": training, "seed": seed, "metrics": metrics,
                                           "temperature": result.temperature})
     if promoted:
-        promote(out_path, out_path.parent)
+        promote(out_path)
     return RetrainReport(
         model_before=str(model_path), model_after=str(out_path), n_local_train=int(len(tune_idx)),
         n_local_held_out=int(len(hold_idx)), n_original=n_orig, local_before=local_before,

@@ -25,7 +25,8 @@ from PIL import Image
 
 from ..errors import DataError, LedgerError
 from ..fileio import atomic_write
-from ..ledger.store import load_digits, open_ledger
+from ..ledger.fieldfile import load_digits
+from ..ledger.store import open_ledger
 from ..review.queries import list_decided
 
 __all__ = ["SamplesReport", "collect_samples", "MANIFEST"]

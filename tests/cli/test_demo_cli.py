@@ -10,7 +10,7 @@ from typer.testing import CliRunner
 sys.path.insert(0, str(Path(__file__).resolve().parents[1] / "read"))   # the reading tests' helpers
 from readkit import _base_pages, demo_layout, tiny_model, write_copies  # noqa: E402
 
-import formread.paths  # noqa: E402
+import formread.store  # noqa: E402
 from formread.cli.main import app  # noqa: E402
 
 runner = CliRunner()
@@ -25,7 +25,7 @@ def _small_demo(tmp_path: Path) -> Path:
     write_copies(folder, 3, prefix="card")
     shutil.copy(demo_layout(), folder / "layout.toml")
     shipped = {(r["source"], r["page_number"]): r["fields"] for r in
-               map(json.loads, (formread.paths.demo_dir() / "truth.jsonl").read_text().splitlines())}
+               map(json.loads, (formread.store.demo_forms() / "truth.jsonl").read_text().splitlines())}
     (folder / "truth.jsonl").write_text("".join(
         json.dumps({"source": f"card_{i:03d}.png", "page_number": 1,
                     "fields": shipped[(Path(p.source).name, p.page_number)]}) + "\n" for i, p in enumerate(base)))
@@ -38,7 +38,7 @@ def test_demo_reads_scores_and_tells_where_outputs_are(tmp_path, monkeypatch):
     models = tmp_path / "models"
     models.mkdir()
     tiny_model(models / "default.npz")
-    monkeypatch.setattr(formread.paths, "demo_dir", lambda: folder)
+    monkeypatch.setattr(formread.store, "demo_forms", lambda: folder)
     monkeypatch.setenv("FORMREAD_MODELS", str(models))
     monkeypatch.chdir(tmp_path)
     res = runner.invoke(app, ["demo", "--workers", "1", "-q"])
@@ -57,7 +57,7 @@ def test_demo_reads_scores_and_tells_where_outputs_are(tmp_path, monkeypatch):
 
 
 def test_demo_without_its_forms_is_a_one_line_error(tmp_path, monkeypatch):
-    monkeypatch.setattr(formread.paths, "demo_dir", lambda: tmp_path / "nothing")
+    monkeypatch.setattr(formread.store, "demo_forms", lambda: tmp_path / "nothing")
     (tmp_path / "nothing").mkdir()
     res = runner.invoke(app, ["demo", "--out", str(tmp_path / "o")])
     assert res.exit_code == 1 and "demo forms are missing" in res.stderr
@@ -82,7 +82,7 @@ def test_demo_make_writes_a_fresh_set(tmp_path):
 def test_the_shipped_demo_runs_with_no_arguments(tmp_path, monkeypatch):
     """The real thing: shipped demo forms, shipped model, default options (output in the current folder)."""
     monkeypatch.chdir(tmp_path)
-    truth = (formread.paths.demo_dir() / "truth.jsonl").read_text().splitlines()
+    truth = (formread.store.demo_forms() / "truth.jsonl").read_text().splitlines()
     res = runner.invoke(app, ["demo", "--json", "-q"])
     assert res.exit_code == 0, res.output                      # every shipped page registered and read
     s = json.loads(res.stdout)

@@ -14,7 +14,7 @@ from readkit import demo_layout, readings, tiny_model, write_copies  # noqa: E40
 
 from formread.cli.main import app  # noqa: E402
 from formread.form.layout import load_layout  # noqa: E402
-from formread.paths import demo_dir  # noqa: E402
+from formread.store import demo_forms as demo_dir  # noqa: E402
 
 runner = CliRunner()
 

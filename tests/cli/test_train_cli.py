@@ -1,6 +1,7 @@
 """``formread train / evaluate / info``: exit codes, one-line errors, Ctrl-C and resume, the card."""
 
 import json
+import shutil
 
 import numpy as np
 import pytest
@@ -11,6 +12,7 @@ from typer.testing import CliRunner
 from formread.cli.main import app
 from formread.nn.model import Sequential
 from formread.nn.modelfile import load_model
+from formread.store import store_dir
 
 runner = CliRunner()
 FAST = ["--arch", "lenet5", "--epochs", "2", "--batch-size", "32", "--no-affine", "--no-elastic",
@@ -120,14 +122,20 @@ def test_train_evaluate_info_and_listing(tmp_path, arrays, monkeypatch):
     for word in ("lenet5", "temperature", "sha256", header["sha256"], "verified", "seed:         4"):
         assert word in res.output
 
-    monkeypatch.setenv("FORMREAD_MODELS", str(out.parent))
-    (out.parent / "junk.npz").write_bytes(b"nope")
+    store = store_dir()
+    store.mkdir(parents=True)
+    shutil.copy(out, store / "bars.npz")
+    (store / "junk.npz").write_bytes(b"nope")
+    (store / "in_use.json").write_text(json.dumps({"model": "gone.npz"}))
     res = runner.invoke(app, ["info"])
     assert res.exit_code == 0
-    assert "bars.npz" in res.output and "junk.npz" in res.output and "missing" in res.output
-    (out.parent / "in_use.json").write_text(json.dumps({"model": "bars.npz"}))
+    assert "bars.npz" in res.output and "junk.npz" in res.output and "gone.npz) is missing" in res.output
+    assert str(store) in res.output and "shipped default.npz" in res.output
+    (store / "in_use.json").write_text(json.dumps({"model": "bars.npz"}))
     res = runner.invoke(app, ["info"])
     assert "* bars.npz" in res.output and "missing" not in res.output
+    (store / "in_use.json").write_text("garbage")                 # never ignored silently
+    _one_line_error(runner.invoke(app, ["info"]), "in_use.json", "not a pointer")
 
 
 def test_info_on_a_damaged_file(tmp_path):

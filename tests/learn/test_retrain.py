@@ -18,10 +18,11 @@ from typer.testing import CliRunner
 from formread.cli.main import app
 from formread.learn.datasets import mnist_raw, mnist_split_indices
 from formread.digits import normalize_batch
-from formread.paths import REPO_ROOT
 from formread.learn.retrain import retrain
+from formread.read.bundle import load_bundle
+from formread.store import shipped_model, store_dir
 
-SHIPPED = REPO_ROOT / "models" / "default.npz"
+SHIPPED = shipped_model()
 
 
 def _stippled(img: np.ndarray) -> np.ndarray:
@@ -58,30 +59,33 @@ def _sha(path):
 
 
 @pytest.fixture
-def models(tmp_path, monkeypatch):
-    d = tmp_path / "models"
-    d.mkdir()
-    shutil.copy(SHIPPED, d / "default.npz")
-    monkeypatch.setenv("FORMREAD_MODELS", str(d))
-    return d
+def models():
+    """The test's own model store (tests/conftest.py points FORMREAD_HOME at a fresh folder)."""
+    return store_dir()
 
 
-def test_retraining_on_a_new_writer_helps_and_is_promoted(local_writer, models, tmp_path):
+def test_retraining_on_a_new_writer_helps_but_inherited_decisions_are_not_put_in_use_silently(
+        local_writer, models, tmp_path):
     samples = _write_samples(tmp_path / "samples", *local_writer)
-    before_sha = _sha(models / "default.npz")
-    rep = retrain(models / "default.npz", samples, epochs=4, seed=0)
+    before_sha = _sha(SHIPPED)
+    rep = retrain(SHIPPED, samples, epochs=4, seed=0)
     # a clear margin on the new writer's held-out samples
     assert rep.local_after >= rep.local_before + 0.10, rep
-    assert rep.promoted, rep.reason
     for part, acc in rep.original_before.items():
         assert rep.original_after[part] >= acc - 0.005
-    # a new version beside the old one; the model in use is never overwritten
-    assert rep.model_after.endswith("default-r1.npz")
-    assert _sha(models / "default.npz") == before_sha
-    assert json.loads((models / "in_use.json").read_text()) == {"model": "default-r1.npz"}
+    # a new version in the store; the shipped model is never written; its decisions are the parent's,
+    # so it is not put in use unless asked
+    assert rep.model_after == str(models / "default-r1.npz") and not rep.promoted
+    assert "inherited" in rep.reason and not (models / "in_use.json").exists()
+    assert _sha(SHIPPED) == before_sha
+    assert load_bundle(models / "default-r1.npz").decoder_status == "inherited"
+    # asked to, it is put in use, and says so
+    rep = retrain(SHIPPED, samples, epochs=4, seed=0, promote_inherited=True)
+    assert rep.promoted and "inherited" in rep.reason and rep.model_after.endswith("default-r2.npz")
+    assert json.loads((models / "in_use.json").read_text()) == {"model": "default-r2.npz"}
     res = CliRunner().invoke(app, ["info"])
     assert res.exit_code == 0, res.output
-    assert "default-r1.npz" in res.output and "default.npz" in res.output
+    assert "default-r2.npz" in res.output and "default.npz" in res.output and "inherited" in res.output
 
 
 def test_mislabelled_samples_are_not_promoted(local_writer, models, tmp_path):
@@ -94,6 +98,18 @@ def test_mislabelled_samples_are_not_promoted(local_writer, models, tmp_path):
     assert rep["promoted"] is False
     assert not (models / "in_use.json").exists()
     assert (models / "default-r1.npz").is_file()  # kept as a version, not in use
+
+
+def test_retrain_never_overwrites_the_model_in_use(local_writer, models, tmp_path):
+    samples = _write_samples(tmp_path / "samples", *local_writer)
+    models.mkdir(parents=True, exist_ok=True)
+    shutil.copy(SHIPPED, models / "mine.npz")
+    (models / "in_use.json").write_text('{"model": "mine.npz"}')
+    before = _sha(models / "mine.npz")
+    res = CliRunner().invoke(app, ["retrain", "--samples", str(samples), "--model", str(SHIPPED),
+                                   "--out", str(models / "mine.npz")])
+    assert res.exit_code == 1 and "must not overwrite the model in use" in res.stderr
+    assert _sha(models / "mine.npz") == before
 
 
 def test_too_few_samples_is_a_one_line_error(models, tmp_path, local_writer):

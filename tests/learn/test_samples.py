@@ -5,7 +5,8 @@ import json
 import numpy as np
 
 from formread.learn.datasets import load_samples_folder
-from formread.ledger.store import load_digits, open_ledger
+from formread.ledger.fieldfile import load_digits
+from formread.ledger.store import open_ledger
 from formread.review import queries
 from formread.learn.samples import MANIFEST, collect_samples
 
