@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import Optional
 
 import typer
 
@@ -84,13 +85,24 @@ def make_cmd(
     outdir: Path = typer.Argument(..., help="New or empty folder (or an earlier demo set, replaced)."),
     count: int = typer.Option(30, "--count", "-n", help="Number of pages."),
     seed: int = typer.Option(7, "--seed", help="Seed: the same count and seed give the same files."),
+    style: str = typer.Option("demo", "--style",
+                              help="Writers and scanners: demo, hairline, ballpoint, felt-tip, slanted, "
+                                   "small, large, grey-pen, blotchy, blurry, bilevel, jpeg-low or mixed."),
+    form: str = typer.Option("meter", "--form", help="Which form: meter (water-meter card) or slip "
+                                                     "(produce delivery slip)."),
+    half: Optional[str] = typer.Option(None, "--half",
+                                       help="Draw the handwriting from one fixed half (a or b) of the "
+                                            "MNIST test part only."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ):
-    """Make a fresh demo set: filled and scanned demo cards, their layout.toml and truth.jsonl."""
+    """Make a fresh demo set: filled and scanned demo forms, their layout.toml and truth.jsonl.
+
+    The styles are described in formread/demo/styles.py; the defaults make the shipped demo set.
+    """
     from ..demo import make_demo
 
-    bar = ProgressBar("making cards", enabled=not quiet)
-    info = make_demo(outdir, count=count, seed=seed, progress=bar)
+    bar = ProgressBar("making forms", enabled=not quiet)
+    info = make_demo(outdir, count=count, seed=seed, style=style, form=form, half=half, progress=bar)
     typer.echo(f"{info['pages']} pages in {info['files']} files, {info['fields']} fields, "
-               f"{info['mistakes']} cards with a writer's mistake, in {outdir}/ ({info['seconds']} s)")
+               f"{info['mistakes']} forms with a writer's mistake, in {outdir}/ ({info['seconds']} s)")
     typer.echo(f"read them: formread read {outdir}/scan_* --layout {outdir}/layout.toml --out OUT")

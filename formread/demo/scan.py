@@ -67,7 +67,8 @@ def scan_matrix(s: ScanSettings, shape: tuple[int, int]) -> np.ndarray:
 
 def random_scan_settings(rng: np.random.Generator, *, dpi: int, page_mm: tuple[float, float],
                          marks_mm: list[tuple[float, float, float]], upside_down: bool = False,
-                         noise: tuple[float, float] = (0.5, 1.5), margin_mm: float = 1.5) -> ScanSettings:
+                         noise: tuple[float, float] = (0.5, 1.5), margin_mm: float = 1.5,
+                         blur: tuple[float, float] = (0.35, 0.9)) -> ScanSettings:
     """Random scanner and paper placement that keeps every registration mark on the glass.
 
     Parameters
@@ -77,6 +78,8 @@ def random_scan_settings(rng: np.random.Generator, *, dpi: int, page_mm: tuple[f
     noise : (low, high) range of the sensor noise in grey levels; a scanner that filters its
         noise (lossless PNG output) gets (0, 0), which also keeps its files small
     margin_mm : every mark corner stays at least this far inside the scanned image
+    blur : (low, high) range of the optical blur, Gaussian sigma in pixels at 200 dpi (scaled
+        with ``dpi``)
     """
     w_mm, h_mm = page_mm
     shape = (round(mm_to_px(h_mm, dpi)), round(mm_to_px(w_mm, dpi)))
@@ -92,7 +95,7 @@ def random_scan_settings(rng: np.random.Generator, *, dpi: int, page_mm: tuple[f
     hi = np.array([shape[1], shape[0]]) - lo
     base = dict(
         dpi=dpi,
-        blur_px=float(rng.uniform(0.35, 0.9)) * dpi / 200,
+        blur_px=float(rng.uniform(*blur)) * dpi / 200,
         noise=float(rng.uniform(*noise)),
         paper=float(rng.uniform(236, 250)),
         gradient=float(rng.uniform(0.0, 0.12)),
@@ -170,7 +173,7 @@ def simulate_scan(clean: np.ndarray, s: ScanSettings, rng: np.random.Generator) 
 
 
 def to_bilevel(scan: np.ndarray, threshold: int = 150) -> Image.Image:
-    """The scanner's bilevel mode: a fixed threshold.
+    """The scanner's bilevel mode: a fixed threshold (grey levels ``>= threshold`` are paper).
 
     Parameters
     ----------
