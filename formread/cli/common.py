@@ -42,36 +42,59 @@ def edge(fn):
     return wrapper
 
 
-class ProgressBar:
-    """A one-line progress bar on stderr, driven by a library progress callback.
+_PLAIN_EVERY = 5.0
+"""Seconds between two progress lines when the output is not a terminal (a log file)."""
 
-    Call it as ``bar(done, total, **figures)``; figures are shown after the bar.
+
+def _figure(v) -> str:
+    return f"{v:,.1f}" if isinstance(v, float) else str(v)
+
+
+class ProgressBar:
+    """Progress of long work on stderr, driven by a library progress callback ``bar(done, total, **figures)``.
+
+    On a terminal: a rich bar with the count, the rate in ``unit`` per second, the time left and the
+    figures.  Elsewhere (a log, a pipe): one plain line at most every :data:`_PLAIN_EVERY` seconds and
+    one at the end, never a carriage return.  ``enabled=False`` (``--quiet``) shows nothing.
     """
 
-    def __init__(self, label: str, *, width: int = 28, stream=None, enabled: bool = True):
-        self.label, self.width = label, width
+    def __init__(self, label: str, *, unit: str = "items", enabled: bool = True, stream=None):
+        self.label, self.unit, self.enabled = label, unit, enabled
         self.stream = stream or sys.stderr
-        self.enabled = enabled
         self.t0 = time.monotonic()
-        self._last = 0.0
+        self._last = -1e9
+        self._rich = None
+        self._task = None
+        if enabled and getattr(self.stream, "isatty", lambda: False)():
+            from rich.console import Console
+            from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn)
+
+            self._rich = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
+                                  TextColumn("{task.fields[rate]}"), TimeRemainingColumn(),
+                                  TextColumn("{task.fields[extra]}"), console=Console(file=self.stream),
+                                  transient=False)
+
+    def _rate(self, done: int) -> str:
+        el = time.monotonic() - self.t0
+        return f"{done / el:,.1f} {self.unit}/s" if el > 0 and done else ""
 
     def __call__(self, done: int, total: int, **figures) -> None:
         if not self.enabled:
             return
+        extra = "  ".join(f"{k.replace('_', ' ')} {_figure(v)}" for k, v in figures.items())
+        if self._rich is not None:
+            if self._task is None:
+                self._rich.start()
+                self._task = self._rich.add_task(self.label, total=total, rate="", extra="")
+            self._rich.update(self._task, completed=done, total=total, rate=self._rate(done), extra=extra)
+            if done >= total:
+                self._rich.stop()
+            return
         now = time.monotonic()
-        if done < total and now - self._last < 0.1:
+        if done < total and now - self._last < _PLAIN_EVERY:
             return
         self._last = now
-        frac = done / total if total else 1.0
-        fill = int(round(frac * self.width))
-        extra = "  ".join(f"{k} {v:.4g}" if isinstance(v, float) else f"{k} {v}" for k, v in figures.items())
-        line = f"\r{self.label} [{'#' * fill}{'.' * (self.width - fill)}] {done}/{total} {extra}"
-        self.stream.write(line)
-        if done >= total:
-            self.stream.write("\n")
+        rate = self._rate(done)
+        self.stream.write(f"{self.label}: {done}/{total}" + (f", {rate}" if rate else "")
+                          + (f", {extra}" if extra else "") + "\n")
         self.stream.flush()
-
-    def newline(self) -> None:
-        if self.enabled:
-            self.stream.write("\n")
-            self.stream.flush()

@@ -60,7 +60,7 @@ def demo_cmd(
     scans = demo_scans(folder)
     if not scans:
         fail(f"{folder}: the demo forms are missing (no scans)")
-    bar = ProgressBar("reading demo", enabled=not quiet)
+    bar = ProgressBar("reading demo", unit="pages", enabled=not quiet)
     report = read_batch(scans, layout, out, workers=workers, progress=bar, command="formread demo")
     summary = score_ledger(out, truth)
     if as_json:
@@ -101,7 +101,7 @@ def make_cmd(
     """
     from ..demo import make_demo
 
-    bar = ProgressBar("making forms", enabled=not quiet)
+    bar = ProgressBar("making forms", unit="pages", enabled=not quiet)
     info = make_demo(outdir, count=count, seed=seed, style=style, form=form, half=half, progress=bar)
     typer.echo(f"{info['pages']} pages in {info['files']} files, {info['fields']} fields, "
                f"{info['mistakes']} forms with a writer's mistake, in {outdir}/ ({info['seconds']} s)")

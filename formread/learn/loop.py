@@ -163,17 +163,20 @@ def _truth(row: dict) -> tuple[str | None, bool]:
     return None, False
 
 
-def _gather(runs: list[Path], truth_file=None) -> tuple[list[_Field], dict]:
+def _gather(runs: list[Path], truths=None) -> tuple[list[_Field], dict]:
     """Every field of the runs with a known true value; and ``{form name: Layout}``.
 
-    With ``truth_file`` (a truth.jsonl, formread.read.score), its values are the truth of every
-    field it names, counted as a clerk's (development sets, whose every value is known)."""
+    ``truths``: None, or one truth.jsonl (formread.read.score) per run, in order, or None for a run;
+    a truth file's values are the truth of every field it names, counted as a clerk's (development
+    sets, whose every value is known)."""
     fields: list[_Field] = []
     layouts: dict = {}
-    known = {}
-    if truth_file is not None:
-        known = {(PurePath(t.source).name, t.page_number): t.fields for t in load_truth(truth_file)}
-    for outdir in runs:
+    truths = list(truths) if truths is not None else [None] * len(runs)
+    if len(truths) != len(runs):
+        raise DataError(f"{len(truths)} truth files for {len(runs)} runs: give one per run, in order")
+    for outdir, truth_file in zip(runs, truths):
+        known = {} if truth_file is None else {(PurePath(t.source).name, t.page_number): t.fields
+                                              for t in load_truth(truth_file)}
         with open_ledger(outdir, create=False) as led:
             by_run = run_layouts(led)
             rows = led.field_rows()
@@ -399,7 +402,8 @@ def learn(runs, *, bundle=None, out=None, config: LearnConfig | None = None, pro
     out : path of the new version; default: the next ``-r<N>.npz`` of the store
     progress : ``progress(done, total, stage=...)`` (fine-tuning: per batch and epoch)
     resume : continue an interrupted fine-tuning from its checkpoint (``out`` + ``.ckpt``)
-    truth : a truth.jsonl whose values are known for every field it names (development sets)
+    truth : None, or one truth.jsonl per run (in order): known values of the fields they name
+        (development sets)
 
     Raises
     ------

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -69,11 +70,27 @@ def _png_bytes(img: np.ndarray) -> bytes:
     return buf.getvalue()
 
 
+_SAMPLE = re.compile(r"[0-9]/[0-9a-f]{20}\.png\Z")
+
+
+def _inside(root: Path, rel) -> Path | None:
+    """The sample file ``rel`` (as a manifest names it) inside ``root``, or None: a manifest record
+    never makes formread touch a file outside the samples folder."""
+    if not isinstance(rel, str) or not _SAMPLE.match(rel):
+        return None
+    p = (root / rel).resolve()
+    return p if p.parent.parent == root.resolve() else None
+
+
 def _read_manifest(path: Path) -> list[dict]:
     if not path.is_file():
         return []
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except UnicodeDecodeError as e:
+        raise DataError(f"{path}: not UTF-8 text (byte {e.start})") from None
     out = []
-    for n, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+    for n, line in enumerate(text.splitlines(), 1):
         if not line.strip():
             continue
         try:
@@ -82,6 +99,9 @@ def _read_manifest(path: Path) -> list[dict]:
             raise DataError(f"{path}: line {n} is not JSON") from None
         if not isinstance(rec, dict) or "file" not in rec or "digit" not in rec:
             raise DataError(f"{path}: line {n} is not a sample record")
+        if _inside(path.parent, rec["file"]) is None:
+            raise DataError(f"{path}: line {n} names {str(rec['file'])[:60]!r}, not a sample of this folder "
+                            "(<digit>/<name>.png)")
         out.append(rec)
     return out
 
@@ -150,7 +170,7 @@ def collect_samples(outdir: str | Path, samples_dir: str | Path, *,
                 report.duplicates += 1
                 continue
             if old is not None:
-                (root / old["file"]).unlink(missing_ok=True)
+                _inside(root, old["file"]).unlink(missing_ok=True)
                 records.remove(old)
                 report.relabelled += 1
             rel = f"{digit}/{name}"

@@ -24,8 +24,10 @@ from __future__ import annotations
 import hashlib
 import json
 import logging
+import math
 import os
 import time
+import zipfile
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 from typing import Callable
@@ -94,7 +96,21 @@ class TrainConfig:
     workers: int = 1
 
     def validate(self) -> None:
-        """Raise ParameterError for an impossible setting."""
+        """Raise ParameterError for an impossible setting (every number finite and in its range)."""
+        def num(v) -> bool:
+            return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+        for name in ("lr", "momentum", "weight_decay", "label_smoothing", "val_fraction"):
+            check_param(num(getattr(self, name)), name, "a finite number", getattr(self, name))
+        a = self.augment
+        for name in ("rotate_deg", "scale", "shear", "shift_px", "elastic_alpha", "elastic_sigma", "prob"):
+            v = getattr(a, name)
+            check_param(num(v) and v >= 0, f"augment.{name}", "a finite number >= 0", v)
+        check_param(a.elastic_sigma > 0 or not a.elastic, "augment.elastic_sigma", "a number > 0", a.elastic_sigma)
+        check_param(a.scale < 1, "augment.scale", "a number in [0, 1)", a.scale)
+        check_param(self.lr <= 10, "lr", "a number in (0, 10]", self.lr)
+        check_param(isinstance(self.seed, int) and 0 <= self.seed < 2 ** 32, "seed", "an integer in [0, 2**32)",
+                    self.seed)
         check_param(isinstance(self.epochs, int) and self.epochs >= 1, "epochs", "an integer >= 1", self.epochs)
         check_param(isinstance(self.batch_size, int) and self.batch_size >= 1, "batch_size",
                     "an integer >= 1", self.batch_size)
@@ -286,7 +302,7 @@ def _load_checkpoint(path: Path) -> tuple[dict, dict[str, np.ndarray]]:
         with np.load(path, allow_pickle=False) as npz:
             arrays = {k: npz[k] for k in npz.files}
         meta = json.loads(arrays.pop("meta.json").tobytes().decode("utf-8"))
-    except (OSError, ValueError, KeyError, EOFError, UnicodeDecodeError):
+    except (OSError, ValueError, KeyError, EOFError, UnicodeDecodeError, zipfile.BadZipFile, RecursionError):
         raise DataError(f"{path}: not a readable training checkpoint") from None
     if not isinstance(meta, dict) or meta.get("format") != CHECKPOINT_FORMAT:
         raise DataError(f"{path}: not a formread training checkpoint")

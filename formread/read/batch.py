@@ -19,6 +19,8 @@ from __future__ import annotations
 import hashlib
 import io
 import multiprocessing
+import os
+import stat
 import time
 from collections import deque
 from collections.abc import Callable, Iterable
@@ -29,7 +31,7 @@ from pathlib import Path
 import numpy as np
 from PIL import Image
 
-from ..errors import FormreadError, ImageError, RegistrationError, check_param, one_line
+from ..errors import FormreadError, ImageError, LedgerError, RegistrationError, check_param, one_line
 from ..form.layout import Layout, load_layout, read_layout_text
 from ..form.thresholds import audit_rate, form_threshold, resolve_thresholds
 from ..imaging.load import iter_pages
@@ -42,6 +44,7 @@ from .bundle import Bundle, load_bundle
 from .decode import decode_page, unregistered_page
 from .outputs import write_outputs
 from .recognise import recognise_page
+from .runs import run_layouts
 
 __all__ = ["SCAN_SUFFIXES", "PAGE_DPI", "BatchReport", "list_scans", "read_batch"]
 
@@ -102,22 +105,60 @@ def list_scans(inputs: Iterable) -> list[tuple[str, str | None]]:
         An input path does not exist.
     """
     out: list[tuple[str, str | None]] = []
+    seen: set = set()
     for p in inputs:
         path = Path(p)
         if path.is_dir():
-            for child in sorted(path.iterdir(), key=lambda c: c.name):
+            try:
+                children = sorted(path.iterdir(), key=lambda c: c.name)
+            except OSError as e:
+                raise ImageError(f"{display_name(path)}: folder cannot be listed ({e.strerror or e})") from None
+            found = 0
+            for child in children:
                 if child.name.startswith(".") or child.is_dir():
                     continue
-                if child.suffix.lower() in SCAN_SUFFIXES:
-                    out.append((str(child), None))
-                else:
+                found += 1
+                if child.suffix.lower() not in SCAN_SUFFIXES:
                     out.append((str(child), f"not a scan (suffix {child.suffix or 'none'!r}; "
                                             f"expected one of {', '.join(SCAN_SUFFIXES)})"))
-        elif path.exists():
-            out.append((str(path), None))
+                else:
+                    out.append((str(child), _not_regular(child)))
+            if not found:
+                raise ImageError(f"{display_name(path)}: no scans in this folder")
+        elif path.exists() or path.is_symlink():
+            out.append((str(path), _not_regular(path)))
         else:
-            raise ImageError(f"{path}: no such file or folder")
-    return out
+            raise ImageError(f"{display_name(path)}: no such file or folder")
+    # the same file named twice (or by two paths) is read once
+    unique = []
+    for source, refusal in out:
+        try:
+            key = Path(source).resolve()
+        except (OSError, RuntimeError):
+            key = source
+        if key in seen:
+            continue
+        seen.add(key)
+        unique.append((source, refusal))
+    return unique
+
+
+def display_name(path) -> str:
+    """A file name as the ledger and messages hold it: undecodable bytes (a name from another system's
+    encoding) are shown as backslash escapes instead of stopping every batch."""
+    return os.fsencode(str(path)).decode("utf-8", "backslashreplace")
+
+
+def _not_regular(path: Path) -> str | None:
+    """Why ``path`` cannot be read as a scan (a named pipe would block the batch; a link loop, a
+    device), or None for a regular file."""
+    try:
+        st = path.stat()
+    except OSError as e:
+        return f"cannot be opened ({e.strerror or e})"
+    if not stat.S_ISREG(st.st_mode):
+        return "not a regular file (a pipe, a device or a socket is never read)"
+    return None
 
 
 def _file_failure_hash(source: str) -> str:
@@ -150,25 +191,29 @@ class _Imaged:
 _STATE: dict = {}
 
 
-def _init_imaging(layout: Layout, pin_threads: bool) -> None:
+def _init_imaging(layout: Layout, pin_threads: bool, parent: int | None = None) -> None:
     """Worker start: keep the run's layout; one BLAS thread; Ctrl-C left to the main process."""
     import signal
 
     if pin_threads:
         signal.signal(signal.SIGINT, signal.SIG_IGN)   # Ctrl-C is the main process's business
+        if parent is not None:
+            _watch_parent(parent)
         from threadpoolctl import threadpool_limits
 
         _STATE["limits"] = threadpool_limits(limits=1)
-        _watch_parent()
     _STATE["layout"] = layout
 
 
-def _watch_parent() -> None:
-    """End this worker when the reader that started it is gone (killed), instead of lingering idle."""
-    import os
+def _watch_parent(parent: int) -> None:
+    """End this worker when the reader that started it (pid ``parent``) is gone, instead of lingering.
+
+    The pid is the reader's own, passed in: a reader killed while its workers still start up has
+    already gone when they get here, so asking for the parent now would name init's pid instead."""
     import threading
 
-    parent = os.getppid()
+    if os.getppid() != parent:
+        os._exit(0)
 
     def watch():
         while True:
@@ -235,7 +280,7 @@ def _decoded_pages(scans):
     for source, refusal in scans:
         if refusal is not None:
             yield _Imaged(source=source, page_number=1, content_hash=_file_failure_hash(source), status="failed",
-                          error=f"{source}: {refusal}")
+                          error=f"{display_name(source)}: {refusal}")
             continue
         n = 0
         t0 = time.perf_counter()
@@ -321,7 +366,7 @@ class _Reader:
         self.specs = {f.name: f for f in layout.fields}
 
     def page_row(self, im: _Imaged, report: BatchReport) -> PageRow:
-        row = PageRow(content_hash=im.content_hash, source=im.source, page_number=im.page_number,
+        row = PageRow(content_hash=im.content_hash, source=display_name(im.source), page_number=im.page_number,
                       status="read", error=im.error, residual_mm=im.residual_mm, rotated_180=im.rotated_180,
                       skew_deg=im.skew_deg, image_png=im.page_png)
         if im.status == "failed":
@@ -396,6 +441,7 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
     scans = list_scans(inputs)
     ledger = open_ledger(outdir)
     try:
+        _check_same_form(ledger, layout)
         # absolute paths: the review page finds the layout from wherever it is started
         run_id = ledger.start_run(layout_path=str(layout_path.resolve()),
                                   layout_sha256=hashlib.sha256(layout_text.encode("utf-8")).hexdigest(),
@@ -413,6 +459,15 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
     finally:
         ledger.close()
     return report
+
+
+def _check_same_form(ledger: Ledger, layout: Layout) -> None:
+    """Refuse to add pages read with another version of a form to a ledger (its tables would mix
+    two sets of fields); a layout moved, re-commented or with other thresholds is the same form."""
+    for run_id, earlier in run_layouts(ledger).items():
+        if earlier is not None and earlier.name == layout.name and earlier.structure() != layout.structure():
+            raise LedgerError(f"{ledger.outdir}: read with another version of the layout {layout.name!r} (run "
+                              f"{run_id}); read into a new output folder, or use the layout of that run")
 
 
 class _Done:
@@ -433,7 +488,7 @@ def _run(scans, layout: Layout, ledger: Ledger, reader: _Reader, report: BatchRe
     if pin:
         ctx = multiprocessing.get_context("spawn")
         pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_imaging,
-                                   initargs=(layout, True))
+                                   initargs=(layout, True, os.getpid()))
     else:
         _init_imaging(layout, False)
     from threadpoolctl import threadpool_limits
@@ -465,10 +520,7 @@ def _run(scans, layout: Layout, ledger: Ledger, reader: _Reader, report: BatchRe
             if progress is not None:
                 # total: pages met so far plus one per file not opened yet
                 total = counts["pages"] + max(0, counts["files"] - len(counts["sources"]))
-                el = time.perf_counter() - t_start
-                progress(report.pages, max(total, report.pages),
-                         pages_per_second=report.pages / el if el > 0 else 0.0,
-                         review=report.review, failed=len(report.problems))
+                progress(report.pages, max(total, report.pages), review=report.review, failed=len(report.problems))
     finally:
         if limits is not None:
             limits.restore_original_limits()

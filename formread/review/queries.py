@@ -212,6 +212,8 @@ def _last_review(ledger: Ledger, field_id: int) -> dict | None:
 
 
 def _field_row(ledger: Ledger, field_id: int):
+    if not 0 <= int(field_id) < 2 ** 62:
+        raise UnknownItem(f"{ledger.path}: no field with id {str(field_id)[:30]}")
     row = ledger.conn.execute(_FIELD_SQL, (int(field_id),)).fetchone()
     if row is None:
         raise UnknownItem(f"{ledger.path}: no field with id {field_id}")
@@ -361,8 +363,8 @@ def save_decision(ledger: Ledger, field_id: int, *, action: str, version: int, r
     where = f"{ledger.path}: field {field_id}"
     if not isinstance(reviewer, str) or not reviewer.strip():
         raise InvalidValue(where, "a reviewer name is needed for the audit trail")
-    if isinstance(version, bool) or not isinstance(version, int):
-        raise InvalidValue(where, f"version must be an integer; got {version!r}")
+    if isinstance(version, bool) or not isinstance(version, int) or not 0 <= version < 2 ** 62:
+        raise InvalidValue(where, f"version must be an integer; got {str(version)[:30]}")
     at = at or utc_now()
     with ledger.transaction() as conn:
         row = _field_row(ledger, field_id)

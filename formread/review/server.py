@@ -149,8 +149,11 @@ class _Handler(BaseHTTPRequestHandler):
     # ------------------------------------------------------------------ plumbing
 
     def log_request(self, code="-", size="-") -> None:
-        # never log the query string: it holds the session token
-        log.info("%s %s -> %s", self.command, urlsplit(self.path).path, code)
+        # never log the query string: it holds the session token; a garbage request line leaves
+        # command and path unset (the standard library answers it with 400, 414 or 505 itself)
+        path = getattr(self, "path", None)
+        log.info("%s %s -> %s", getattr(self, "command", None) or "-",
+                 urlsplit(path).path[:200] if isinstance(path, str) else "-", code)
 
     def log_message(self, format, *args) -> None:  # noqa: A002 - BaseHTTPRequestHandler's name
         log.debug("review server: " + format, *args)
@@ -294,7 +297,7 @@ class _Handler(BaseHTTPRequestHandler):
             raise _Refused(HTTPStatus.UNSUPPORTED_MEDIA_TYPE, "send JSON with Content-Type: application/json")
         try:
             data = json.loads(body.decode("utf-8"))
-        except (UnicodeDecodeError, ValueError):
+        except (UnicodeDecodeError, ValueError, RecursionError):
             raise _Refused(HTTPStatus.BAD_REQUEST, "the body is not valid JSON") from None
         if not isinstance(data, dict):
             raise _Refused(HTTPStatus.BAD_REQUEST, "the body must be a JSON object")
@@ -317,7 +320,7 @@ class _Handler(BaseHTTPRequestHandler):
         action, value, version = data.get("action"), data.get("value"), data.get("version")
         if not isinstance(action, str):
             raise _Refused(HTTPStatus.BAD_REQUEST, "'action' must be a string")
-        if isinstance(version, bool) or not isinstance(version, int):
+        if isinstance(version, bool) or not isinstance(version, int) or not 0 <= version < 2 ** 62:
             raise _Refused(HTTPStatus.BAD_REQUEST, "'version' must be the integer version shown")
         if value is not None and not isinstance(value, str):
             raise _Refused(HTTPStatus.BAD_REQUEST, "'value' must be a string")
