@@ -14,14 +14,14 @@ with a chosen confidence (their bound is a union-bounded binomial tail; ours is
 the plain Clopper-Pearson bound at the chosen threshold, without their
 correction for having searched several thresholds).
 
-Selecting with ``criterion="calibrated"`` holds the larger of the observed error and a
-predicted error to the target: a logistic model of a field being wrong given its confidence
-(:func:`fit_error_model`, two numbers fitted on the same fields, starting from the
-confidence taken at its word) averaged over the accepted fields.  On a few hundred fields the
-observed error is often 0 at thresholds far too low (no error happened to fall there: the
-lowest such threshold is a lucky one); the model, fitted on every field, does not vanish with
-small counts.  This is how a model bundle's fitted decisions turn a target into a threshold
-(formread.read.bundle).
+Selecting with ``criterion="calibrated"`` holds a smoothed error to the target: the errors
+observed among the accepted fields plus :data:`PRIOR_FIELDS` pseudo-fields at the error a
+logistic model predicts for them (:func:`fit_error_model`, two numbers fitted on all the
+fields, starting from the confidence taken at its word).  On a few hundred fields the observed
+error is often 0 at thresholds far too low (no error happened to fall there: the lowest such
+threshold is a lucky one); the model, fitted on every field, does not vanish with small counts,
+while on thousands of fields the observation decides.  This is how a model bundle's fitted
+decisions turn a target into a threshold (formread.read.bundle).
 
 Only fields whose rules hold take part: fields failing a rule, or with doubtful
 segmentation, go to review whatever the threshold.  They still count in the
@@ -149,6 +149,8 @@ def error_review_curve(confidences, correct, rules_ok=None, *, confidence_level:
 
 
 _E_FLOOR = 1e-6
+PRIOR_FIELDS = 200
+"""Weight, in accepted fields, of the fitted error model against the errors observed (criterion "calibrated")."""
 
 
 def _sigmoid(z: np.ndarray) -> np.ndarray:
@@ -216,9 +218,8 @@ def choose_threshold(confidences, correct, rules_ok=None, *, target: float = 0.0
     confidence_level : float in (0, 1)
         For the one-sided Clopper-Pearson upper bound reported beside the error.
     criterion : {"estimate", "bound", "calibrated"}
-        Hold the observed error ("estimate"), its upper bound ("bound"), or the larger of the
-        observed error and the error predicted by :func:`fit_error_model` ("calibrated") to the
-        target.
+        Hold the observed error ("estimate"), its upper bound ("bound"), or the observed error
+        smoothed by the error :func:`fit_error_model` predicts ("calibrated") to the target.
 
     Returns
     -------
@@ -234,7 +235,11 @@ def choose_threshold(confidences, correct, rules_ok=None, *, target: float = 0.0
     n = c.size
     accepted = np.rint((1.0 - curve[:, 1]) * n).astype(int)
     if criterion == "calibrated":
-        held = np.maximum(curve[:, 2], _predicted_error(c[r], ~ok[r], curve[:, 0]))
+        # the observed error shrunk towards the model's by PRIOR_FIELDS pseudo-fields: the model decides
+        # when few fields are accepted, the observation when many are
+        acc_e = np.rint((1.0 - curve[:, 1]) * n)
+        wrong = curve[:, 2] * acc_e
+        held = (wrong + PRIOR_FIELDS * _predicted_error(c[r], ~ok[r], curve[:, 0])) / (acc_e + PRIOR_FIELDS)
     else:
         held = curve[:, 2 if criterion == "estimate" else 3]
     good = np.flatnonzero((held <= target) & (accepted > 0))
