@@ -64,7 +64,7 @@ def proof_cmd(
     atomic_write(target, buf.getvalue())
     reg = result.registration
     typer.echo(f"{scan} page {page}: {reg.marks_found} marks, residual {reg.residual_mm:.2f} mm, "
-               f"skew {reg.skew_deg:+.2f} deg{', turned 180 deg' if reg.rotated_180 else ''}")
+               f"skew {reg.skew_deg:+.2f} deg" + (f", turned {reg.turn_deg} deg" if reg.turn_deg else ""))
     for name, fd in result.fields.items():
         if fd.kind == "boxed" and fd.blank is not None:
             what = f"{int((~fd.blank).sum())} of {len(fd.blank)} cells written"
