@@ -21,12 +21,15 @@ except ModuleNotFoundError:  # pragma: no cover - Python 3.10
 
 from ..errors import LayoutError
 
-__all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout",
-           "KINDS", "BINARIZE_METHODS", "NAME_PATTERN"]
+__all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout", "set_header_fingerprint",
+           "KINDS", "BINARIZE_METHODS", "NAME_PATTERN", "FINGERPRINT_PATTERN"]
 
 KINDS = ("boxed", "open")
 BINARIZE_METHODS = ("auto", "otsu", "sauvola")
 NAME_PATTERN = re.compile(r"[a-z_][a-z0-9_]*\Z")
+FINGERPRINT_PATTERN = re.compile(r"([1-9][0-9]?)x([1-9][0-9]{0,2}):([0-9a-f]*)\Z")
+"""``[form.header] fingerprint``: ROWSxCOLS, then one hex digit per grid cell, row by row
+(formread/imaging/fingerprint.py makes and compares them)."""
 
 
 @dataclass(frozen=True)
@@ -92,6 +95,7 @@ class Layout:
     binarize: str = "auto"
     threshold: float | None = None
     source: str = "<layout>"
+    header_fingerprint: str | None = None
 
     def field(self, name: str) -> FieldSpec:
         """The field called ``name``; ``LayoutError`` if there is none."""
@@ -115,6 +119,8 @@ class Layout:
         if self.header is not None:
             out += ["", "[form.header]"] + [f"{k} = {_toml_value(float(getattr(self.header, k)))}"
                                             for k in ("x", "y", "w", "h")]
+            if self.header_fingerprint is not None:
+                out.append(f"fingerprint = {_toml_value(self.header_fingerprint)}")
         for m in self.marks:
             out += ["", "[[marks]]"] + [f"{k} = {_toml_value(float(getattr(m, k)))}"
                                         for k in ("x", "y", "size")]
@@ -130,6 +136,30 @@ class Layout:
         for r in self.relations:
             out += ["", "[[relations]]", f"rule = {_toml_value(r)}"]
         return "\n".join(out) + "\n"
+
+
+def set_header_fingerprint(text: str, fingerprint: str, source: str = "<layout>") -> str:
+    """Layout TOML ``text`` with ``[form.header] fingerprint`` set (replaced or added), everything else
+    (comments included) kept; the result is parsed, so a bad fingerprint or a layout without a
+    ``[form.header]`` table raises ``LayoutError("<source>: ...")``."""
+    lines = text.splitlines(keepends=True)
+    start = next((i for i, ln in enumerate(lines) if re.match(r"\s*\[\s*form\s*\.\s*header\s*\]", ln)), None)
+    if start is None:
+        raise LayoutError(f"{source}: no [form.header] table (add x, y, w, h around the printed title first)")
+    end = next((i for i in range(start + 1, len(lines)) if re.match(r"\s*\[", lines[i])), len(lines))
+    line = f"fingerprint = {_toml_value(fingerprint)}\n"
+    old = [i for i in range(start + 1, end) if re.match(r"\s*fingerprint\s*=", lines[i])]
+    if old:
+        lines[old[0]] = line
+    else:
+        last = max([i for i in range(start, end) if lines[i].strip() and not lines[i].lstrip().startswith("#")])
+        if not lines[last].endswith("\n"):
+            lines[last] += "\n"
+        lines.insert(last + 1, line)
+    out = "".join(lines)
+    if parse_layout(out, source).header_fingerprint != fingerprint:
+        raise LayoutError(f"{source}: the fingerprint could not be set in [form.header]")
+    return out
 
 
 def _toml_key(k: str) -> str:
@@ -275,14 +305,32 @@ class _Checker:
             self.fail("[form]", f"'binarize' must be one of {', '.join(BINARIZE_METHODS)}; got {method!r}")
         threshold = self.threshold(form, "[form]")
         header = self.table(form, "header", "[form]", required=False)
-        header = None if header is None else self.region(header, "[form.header]", W, H)
+        fingerprint = None
+        if header is not None:
+            self.unknown(header, {"x", "y", "w", "h", "fingerprint"}, "[form.header]")
+            fingerprint = self.fingerprint(header)
+            header = self.region({k: v for k, v in header.items() if k != "fingerprint"}, "[form.header]", W, H)
         marks = self.marks(doc.get("marks"), W, H)
         self.marks_seen = marks
         fields = self.fields(doc.get("fields"), W, H)
         relations = self.relations(doc.get("relations"))
         return Layout(name=name, width_mm=W, height_mm=H, marks=marks, fields=fields,
                       relations=relations, header=header, binarize=method, threshold=threshold,
-                      source=self.source)
+                      source=self.source, header_fingerprint=fingerprint)
+
+    def fingerprint(self, header: dict) -> str | None:
+        fp = self.string(header, "fingerprint", "[form.header]", required=False)
+        if fp is None:
+            return None
+        m = FINGERPRINT_PATTERN.match(fp)
+        if m is None:
+            self.fail("[form.header]", f"'fingerprint' must be ROWSxCOLS:HEX (as `formread layout fingerprint` "
+                                       f"writes it); got {fp[:24]!r}{'...' if len(fp) > 24 else ''}")
+        need = int(m.group(1)) * int(m.group(2))
+        if len(m.group(3)) != need:
+            self.fail("[form.header]", f"'fingerprint' has {len(m.group(3))} cells; {m.group(1)}x{m.group(2)} "
+                                       f"needs {need}")
+        return fp
 
     def array(self, v, key: str) -> list[dict]:
         if v is None:
