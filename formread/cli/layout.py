@@ -1,4 +1,5 @@
-"""Commands of the layout group: ``layout proof`` (check a layout on a scan) and ``layout draft``."""
+"""Commands of the layout group: ``layout proof`` (check a layout on a scan), ``layout draft`` and
+``layout fingerprint`` (record the look of a blank form's header in its layout)."""
 
 from __future__ import annotations
 
@@ -64,7 +65,7 @@ def proof_cmd(
     atomic_write(target, buf.getvalue())
     reg = result.registration
     typer.echo(f"{scan} page {page}: {reg.marks_found} marks, residual {reg.residual_mm:.2f} mm, "
-               f"skew {reg.skew_deg:+.2f} deg{', turned 180 deg' if reg.rotated_180 else ''}")
+               f"skew {reg.skew_deg:+.2f} deg" + (f", turned {reg.turn_deg} deg" if reg.turn_deg else ""))
     for name, fd in result.fields.items():
         if fd.kind == "boxed" and fd.blank is not None:
             what = f"{int((~fd.blank).sum())} of {len(fd.blank)} cells written"
@@ -105,6 +106,41 @@ def draft_cmd(
     parse_layout(text, str(target))  # what is written must load back
     atomic_write(target, text.encode("utf-8"))
     kinds = [f.kind for f in layout.fields]
+    hd = layout.header
+    head = ("no header (no print above the first field)" if hd is None else
+            f"header x={hd.x:g} y={hd.y:g} w={hd.w:g} h={hd.h:g} mm"
+            + (" with its fingerprint" if layout.header_fingerprint else ""))
     typer.echo(f"{blank_form} page {page}: {len(layout.marks)} marks, {len(kinds)} fields "
-               f"({kinds.count('boxed')} boxed, {kinds.count('open')} open)")
+               f"({kinds.count('boxed')} boxed, {kinds.count('open')} open), {head}")
+    typer.echo(f"wrote {target}")
+
+
+@group.command("fingerprint")
+@edge
+def fingerprint_cmd(
+    blank_form: Path = typer.Argument(..., help="Scan of the blank form (PNG, TIFF, JPEG or PDF), any way round."),
+    layout_file: Path = typer.Option(..., "--layout", "-l", help="The form's layout (TOML), with a [form.header] region."),
+    out: Optional[Path] = typer.Option(None, "--out", "-o",
+                                       help="Layout file to write (default: update LAYOUT in place)."),
+    page: int = typer.Option(1, "--page", "-p", help="Page of BLANK_FORM to use (1 = first)."),
+):
+    """Record the look of the blank form's header in its layout ([form.header] fingerprint).
+
+    With fingerprints, pages of forms that share their marks and fields are told apart by their
+    printed headers; the rest of the layout file, comments included, is kept as it is.
+    """
+    from ..form.edit import set_header_fingerprint
+    from ..form.layout import load_layout
+    from ..imaging.fingerprint import blank_fingerprint
+
+    layout = load_layout(layout_file)
+    if layout.header is None:
+        raise LayoutError(f"{layout_file}: no [form.header] region (add x, y, w, h around the printed title first)")
+    pg = _page(blank_form, page)
+    fp = blank_fingerprint(pg, layout)
+    target = out if out is not None else layout_file
+    text = set_header_fingerprint(layout_file.read_bytes().decode("utf-8"), fp, str(target))
+    atomic_write(target, text.encode("utf-8"))
+    rows, cols = fp.split(":", 1)[0].split("x")
+    typer.echo(f"{blank_form} page {page}: header fingerprint of {rows} x {cols} cells")
     typer.echo(f"wrote {target}")

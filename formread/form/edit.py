@@ -18,7 +18,37 @@ from ..errors import LayoutError
 from ..fileio import atomic_write
 from .layout import Layout, parse_layout, read_layout_text
 
-__all__ = ["edit_layout", "set_form_value"]
+__all__ = ["edit_layout", "edit_text", "set_form_value", "set_header_fingerprint"]
+
+
+def edit_text(text: str, change: Callable[[tomlkit.TOMLDocument], None], source: str = "<layout>"
+              ) -> tuple[str, Layout]:
+    """Layout TOML ``text`` with ``change`` applied to its tomlkit document, and the layout it now is.
+
+    Raises LayoutError when the text is not TOML or would no longer be a valid layout."""
+    try:
+        doc = tomlkit.parse(text)
+    except TOMLKitError as e:
+        raise LayoutError(f"{source}: TOML syntax error: {str(e).splitlines()[0]}") from None
+    change(doc)
+    new = tomlkit.dumps(doc)
+    return new, parse_layout(new, source)
+
+
+def set_header_fingerprint(text: str, fingerprint: str, source: str = "<layout>") -> str:
+    """Layout TOML ``text`` with ``[form.header] fingerprint`` set (replaced or added), everything else
+    (comments included) kept; a bad fingerprint, or a layout without a ``[form.header]`` table, raises
+    ``LayoutError("<source>: ...")``."""
+    def change(doc):
+        header = (doc.get("form") or {}).get("header")
+        if not isinstance(header, dict):
+            raise LayoutError(f"{source}: no [form.header] table (add x, y, w, h around the printed title first)")
+        header["fingerprint"] = fingerprint
+
+    new, layout = edit_text(text, change, source)
+    if layout.header_fingerprint != fingerprint:
+        raise LayoutError(f"{source}: the fingerprint could not be set in [form.header]")
+    return new
 
 
 def edit_layout(path, change: Callable[[tomlkit.TOMLDocument], None]) -> Layout:
@@ -39,14 +69,7 @@ def edit_layout(path, change: Callable[[tomlkit.TOMLDocument], None]) -> Layout:
         The file cannot be read, is not TOML, or would no longer be a valid layout (file unchanged).
     """
     path = Path(path)
-    text = read_layout_text(path)
-    try:
-        doc = tomlkit.parse(text)
-    except TOMLKitError as e:
-        raise LayoutError(f"{path}: TOML syntax error: {str(e).splitlines()[0]}") from None
-    change(doc)
-    new = tomlkit.dumps(doc)
-    layout = parse_layout(new, str(path))
+    new, layout = edit_text(read_layout_text(path), change, str(path))
     atomic_write(path, new)
     return layout
 

@@ -25,7 +25,7 @@ from .rules import CompiledRules, compile_rules
 from .thresholds import AUDIT_RANGE, TARGET_RANGE, THRESHOLD_RANGE, is_audit_rate, is_target, is_threshold
 
 __all__ = ["Mark", "Region", "FieldSpec", "Layout", "load_layout", "parse_layout", "read_layout_text",
-           "KINDS", "BINARIZE_METHODS", "NAME_PATTERN"]
+           "KINDS", "BINARIZE_METHODS", "NAME_PATTERN", "FINGERPRINT_PATTERN"]
 
 KINDS = ("boxed", "open")
 MAX_DIGITS = 64
@@ -36,6 +36,9 @@ MAX_LAYOUT_CHARS = 1_000_000
 MAX_FIELDS = 500
 BINARIZE_METHODS = ("auto", "otsu", "sauvola")
 NAME_PATTERN = re.compile(r"[a-z_][a-z0-9_]*\Z")
+FINGERPRINT_PATTERN = re.compile(r"([1-9][0-9]?)x([1-9][0-9]{0,2}):([0-9a-f]*)\Z")
+"""``[form.header] fingerprint``: ROWSxCOLS, then one hex digit per grid cell, row by row
+(formread/imaging/fingerprint.py makes and compares them)."""
 
 
 @dataclass(frozen=True)
@@ -106,6 +109,7 @@ class Layout:
     source: str = "<layout>"
     rules: CompiledRules | None = dc_field(default=None, compare=False, repr=False)
     """The fields' rules and the relations, compiled and checked when the layout was parsed."""
+    header_fingerprint: str | None = None
 
     def field(self, name: str) -> FieldSpec:
         """The field called ``name``; ``LayoutError`` if there is none."""
@@ -150,6 +154,8 @@ class Layout:
         if self.header is not None:
             out += ["", "[form.header]"] + [f"{k} = {_toml_value(float(getattr(self.header, k)))}"
                                             for k in ("x", "y", "w", "h")]
+            if self.header_fingerprint is not None:
+                out.append(f"fingerprint = {_toml_value(self.header_fingerprint)}")
         for m in self.marks:
             out += ["", "[[marks]]"] + [f"{k} = {_toml_value(float(getattr(m, k)))}"
                                         for k in ("x", "y", "size")]
@@ -340,7 +346,11 @@ class _Checker:
         if audit is not None and not is_audit_rate(audit):
             self.fail("[form]", f"'audit' must be {AUDIT_RANGE}; got {audit:g}")
         header = self.table(form, "header", "[form]", required=False)
-        header = None if header is None else self.region(header, "[form.header]", W, H)
+        fingerprint = None
+        if header is not None:
+            self.unknown(header, {"x", "y", "w", "h", "fingerprint"}, "[form.header]")
+            fingerprint = self.fingerprint(header)
+            header = self.region({k: v for k, v in header.items() if k != "fingerprint"}, "[form.header]", W, H)
         marks = self.marks(doc.get("marks"), W, H)
         self.marks_seen = marks
         fields = self.fields(doc.get("fields"), W, H)
@@ -349,8 +359,22 @@ class _Checker:
             self.fail("layout", "no [[fields]]: a layout must describe at least one field to read")
         layout = Layout(name=name, width_mm=W, height_mm=H, marks=marks, fields=fields,
                         relations=relations, header=header, binarize=method, threshold=threshold,
-                        target_error=target, audit=audit, source=self.source)
+                        target_error=target, audit=audit, source=self.source,
+                        header_fingerprint=fingerprint)
         return dataclasses.replace(layout, rules=compile_rules(layout))
+    def fingerprint(self, header: dict) -> str | None:
+        fp = self.string(header, "fingerprint", "[form.header]", required=False)
+        if fp is None:
+            return None
+        m = FINGERPRINT_PATTERN.match(fp)
+        if m is None:
+            self.fail("[form.header]", f"'fingerprint' must be ROWSxCOLS:HEX (as `formread layout fingerprint` "
+                                       f"writes it); got {fp[:24]!r}{'...' if len(fp) > 24 else ''}")
+        need = int(m.group(1)) * int(m.group(2))
+        if len(m.group(3)) != need:
+            self.fail("[form.header]", f"'fingerprint' has {len(m.group(3))} cells; {m.group(1)}x{m.group(2)} "
+                                       f"needs {need}")
+        return fp
 
     def array(self, v, key: str) -> list[dict]:
         if v is None:

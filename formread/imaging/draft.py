@@ -1,4 +1,4 @@
-"""A first layout from a blank form: corner squares, printed rectangles and their cells.
+"""A first layout from a blank form: corner squares, printed rectangles and their cells, the header.
 
 On a straight scan of the blank form, solid squares become registration marks;
 printed rectangles become fields: a rectangle divided by inner vertical lines is a
@@ -6,23 +6,28 @@ boxed field with that many cells, a row of separate equal boxes is one boxed fie
 and an undivided rectangle is an open field (a single box about as wide as it is
 tall is a one-cell boxed field).  Fields are named ``field_1``, ``field_2``, ... in
 reading order, for a person to rename and adjust; millimetres come from the scan's
-dpi, so the form must be scanned straight and at its true size.
+dpi, so the form must be scanned straight and at its true size.  The print above the
+first field (the title, less the marks) becomes the header region, with its
+fingerprint (``fingerprint.py``): it tells upright from upside down, and this form
+from others with the same marks.
 """
 
 from __future__ import annotations
 
 import logging
+import math
 from dataclasses import dataclass
 
 import numpy as np
 from scipy import ndimage
 
-from ..errors import LayoutError
-from ..form.layout import FieldSpec, Layout, Mark
+from ..errors import LayoutError, RegistrationError
+from ..form.layout import FieldSpec, Layout, Mark, Region
 from .binarize import binarize
 from .deskew import estimate_skew, rotate
+from .fingerprint import InkMap, make_fingerprint
 
-__all__ = ["draft_layout", "find_marks", "find_boxes", "Box"]
+__all__ = ["draft_layout", "find_marks", "find_boxes", "find_header", "Box"]
 
 log = logging.getLogger(__name__)
 
@@ -176,6 +181,41 @@ def _rows_of_boxes(boxes: list[Box]) -> list[Box]:
     return others + joined
 
 
+def find_header(ink: np.ndarray, dpi: float, marks: list[Mark], boxes: list[Box]) -> Region | None:
+    """The printed matter above the first field (marks and field boxes left out), in mm, or None.
+
+    Parameters
+    ----------
+    ink : (H, W) bool, the binarised blank form; marks, boxes : what was found on it (mm)
+
+    Returns
+    -------
+    Region around that print with 1.5 mm of paper (kept on the page), or None when there is none
+    at least 10 mm wide and 2 mm tall (specks under half a millimetre are ignored).
+    """
+    k = dpi / 25.4
+    H, W = ink.shape
+    top = min(b.y for b in boxes) - 1.0
+    if top * k < 2:
+        return None
+    band = ink[:int(top * k)].copy()
+    for x0, y0, x1, y1 in ([(m.x - m.size / 2, m.y - m.size / 2, m.x + m.size / 2, m.y + m.size / 2) for m in marks]
+                           + [(b.x, b.y, b.x + b.w, b.y + b.h) for b in boxes]):
+        band[max(0, int((y0 - 1) * k)):max(0, int((y1 + 1) * k)), max(0, int((x0 - 1) * k)):max(0, int((x1 + 1) * k))] = False
+    lab, n = ndimage.label(band, _8)
+    keep = [sl for sl in ndimage.find_objects(lab) if sl is not None
+            and max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start) >= 0.5 * k]
+    if not keep:
+        return None
+    r0, r1 = min(sl[0].start for sl in keep), max(sl[0].stop for sl in keep)
+    c0, c1 = min(sl[1].start for sl in keep), max(sl[1].stop for sl in keep)
+    if (c1 - c0) < 10 * k or (r1 - r0) < 2 * k:
+        return None
+    x0, y0 = math.ceil(max(0.0, c0 / k - 1.5) * 10) / 10, math.ceil(max(0.0, r0 / k - 1.5) * 10) / 10
+    x1, y1 = math.floor(min(W / k, c1 / k + 1.5) * 10) / 10, math.floor(min(H / k, r1 / k + 1.5) * 10) / 10
+    return Region(x0, y0, round(x1 - x0, 1), round(y1 - y0, 1))   # whole tenths of a mm, inside the page
+
+
 def draft_layout(page, *, name: str | None = None) -> Layout:
     """Draft a layout from a straight scan of a blank form.
 
@@ -188,7 +228,8 @@ def draft_layout(page, *, name: str | None = None) -> Layout:
 
     Returns
     -------
-    Layout whose fields are ``field_1``, ``field_2``, ... in reading order.
+    Layout whose fields are ``field_1``, ``field_2``, ... in reading order, with the header
+    region and its fingerprint when there is print above the first field.
 
     Raises
     ------
@@ -226,6 +267,15 @@ def draft_layout(page, *, name: str | None = None) -> Layout:
         else:
             fields.append(FieldSpec(f"field_{i}", "open", x, y, w, h, None, max(1, int(w / (0.7 * h)))))
     label = name or str(page.source).rsplit("/", 1)[-1].rsplit(".", 1)[0]
-    log.info("%s: %d marks, %d fields drafted", where, len(marks), len(fields))
+    header = find_header(ink, dpi, marks, boxes)
+    fingerprint = None
+    if header is not None:
+        try:
+            fingerprint = make_fingerprint(InkMap.of(gray, k), np.array([[k, 0.0, 0.0], [0.0, k, 0.0]]), header)
+        except RegistrationError:  # print too faint to measure: a header region without a fingerprint
+            fingerprint = None
+    log.info("%s: %d marks, %d fields drafted%s", where, len(marks), len(fields),
+             "" if header is None else ", a header with its fingerprint")
     return Layout(name=f"Draft of {label}", width_mm=width_mm, height_mm=height_mm, marks=tuple(marks),
-                  fields=tuple(fields), binarize="auto", source=where)
+                  fields=tuple(fields), header=header, binarize="auto", source=where,
+                  header_fingerprint=fingerprint)

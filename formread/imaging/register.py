@@ -9,9 +9,14 @@ tight fit wins (ties: the one nearest the nominal placement, image top-left = pa
 at full resolution (ink-weighted centroids) and the final affine transform from layout millimetres
 to page pixels is fitted by least squares; its RMS residual is reported in mm.
 
-Four identical corner squares look the same on a page turned 180 degrees, so both ways round are
-tried and, when both fit, the page content decides: the printed field borders and the header region
-(``[form.header]``) are dark where the layout says they are only in the right orientation.
+A sheet may go through the scanner in any quarter turn (0, 90, 180 or 270 degrees), so the marks
+are matched in all four: a turned page's image is landscape when the form is portrait, and the
+marks' pattern turns with it, so for a form that is not square only the right quarter turn and
+its half-turn partner fit. Four identical corner squares look the same on a page turned 180
+degrees, so when several turns fit equally the page content decides: the printed field borders and
+the header region (``[form.header]``) are dark where the layout says they are only in the right
+orientation. ``Registration.image`` is the page turned upright and ``matrix`` maps into it, so what
+comes after registration never sees the turn.
 
 A page that cannot be matched is refused (``RegistrationError("<file> page N: <reason>")``); it is
 never read with a wrong geometry.
@@ -37,13 +42,14 @@ from ..form.layout import Layout
 from .affine import affine_scale, apply_affine, fit_affine
 from .load import Page
 
-__all__ = ["Registration", "register_page", "fit_affine", "apply_affine", "WORK_DPI"]
+__all__ = ["Registration", "register_page", "fit_affine", "apply_affine", "turn_points", "WORK_DPI", "TURNS"]
 
 log = logging.getLogger(__name__)
 
 WORK_DPI = 75.0          # resolution of the reduced copy the marks are searched on
 _MAX_BLOBS = 60          # mark-like squares considered at most
 _MIN_CONTENT_GAP = 0.02  # orientation scores closer than this cannot decide; upright is kept
+TURNS = (0, 90, 180, 270)  # quarter turns tried, degrees counter-clockwise (Pillow's sense)
 
 
 @dataclass(frozen=True, eq=False)
@@ -55,14 +61,19 @@ class Registration:
     residual_mm : RMS distance between found mark centres and the fitted transform, in mm
         (0.0 when exactly three marks were used: three points fix an affine transform)
     marks_found : how many of the layout's marks were used
-    rotated_180 : the scan was upside down; ``image`` is it turned the right way up
-    skew_deg : rotation of the page content, counter-clockwise positive (Pillow's convention)
-    image : ndarray of shape (H, W), uint8, the page in the orientation ``matrix`` maps into
+    rotated_180 : the scan was upside down (``turn_deg == 180``); ``image`` is it turned the right way up
+    skew_deg : rotation of the page content, counter-clockwise positive (Pillow's convention), after the
+        quarter turn is undone
+    image : ndarray of shape (H', W'), uint8, the page turned upright (the orientation ``matrix`` maps
+        into): the scan itself when ``turn_deg == 0``, else the scan turned back by ``turn_deg``
+        (``numpy.rot90(scan, -turn_deg // 90)``; H', W' swap for 90 and 270)
     dpi : the resolution used: the page's, or the one its size implies when the stated one did not fit
     mark_px : ndarray of shape (marks_found, 2), float64, refined mark centres (x, y) in ``image``
         (same continuous coordinates as ``matrix``)
     mark_index : which layout marks those are (0-based, layout order)
     scale : mean pixels per mm of the fit (compare with dpi / 25.4)
+    turn_deg : the quarter turn the scan showed the form in, degrees counter-clockwise (0, 90, 180
+        or 270; 90 = the form's top edge lies along the scan's left edge)
     """
     matrix: np.ndarray
     residual_mm: float
@@ -74,6 +85,7 @@ class Registration:
     mark_px: np.ndarray | None = None
     mark_index: tuple[int, ...] = ()
     scale: float = 0.0
+    turn_deg: int = 0
 
     def to_pixels(self, points_mm) -> np.ndarray:
         """Layout points in mm, ndarray of shape (N, 2) (x, y) -> pixels (x = col, y = row) of ``image``."""
@@ -85,6 +97,40 @@ def _rms_mm(matrix: np.ndarray, src: np.ndarray, dst: np.ndarray) -> float:
     res = apply_affine(matrix, src) - dst
     scale = affine_scale(matrix)
     return float(np.sqrt(np.mean(np.sum(res ** 2, axis=1)))) / max(scale, 1e-12)
+
+
+def _turn_matrix(turn_deg: int, shape: tuple[int, int]) -> np.ndarray:
+    """(3, 3) float64: pixel-centre (x, y, 1) of a scan of ``shape`` (H, W) -> the same point in the scan
+    turned back by ``turn_deg`` (``numpy.rot90(scan, -turn_deg // 90)``)."""
+    H, W = shape
+    q = (turn_deg // 90) % 4
+    return np.array([[[1, 0, 0], [0, 1, 0]],
+                     [[0, -1, H - 1], [1, 0, 0]],
+                     [[-1, 0, W - 1], [0, -1, H - 1]],
+                     [[0, 1, 0], [-1, 0, W - 1]]][q] + [[0, 0, 1]], dtype=np.float64)
+
+
+def turn_points(points, turn_deg: int, shape: tuple[int, int]) -> np.ndarray:
+    """Pixel-centre points (x, y) of a scan of ``shape`` (H, W), ndarray of shape (N, 2) -> (N, 2) float64,
+    the same points in ``numpy.rot90(scan, -turn_deg // 90)`` (the scan turned back by ``turn_deg``)."""
+    m = _turn_matrix(turn_deg, shape)
+    return apply_affine(m[:2], points)
+
+
+def _upright(gray: np.ndarray, turn_deg: int, tile: int = 256) -> np.ndarray:
+    """The scan turned back by ``turn_deg`` (a contiguous copy unless no turn). A quarter turn is
+    copied in tiles: a whole-page transposed copy is several times slower (cache misses)."""
+    q = (turn_deg // 90) % 4
+    if q == 0:
+        return gray
+    view = np.rot90(gray, -q)
+    if q == 2:
+        return np.ascontiguousarray(view)
+    out = np.empty(view.shape, dtype=gray.dtype)
+    for r in range(0, view.shape[0], tile):
+        for c in range(0, view.shape[1], tile):
+            out[r:r + tile, c:c + tile] = view[r:r + tile, c:c + tile]
+    return out
 
 
 # ------------------------------------------------------------------------------------ reduced copy
@@ -173,20 +219,18 @@ def _plausible(m: np.ndarray, px_per_mm: float, max_rot: float, max_scale: float
     return abs(rot) <= max_rot + 1.0
 
 
-def _best_fit(layout: Layout, blobs: list[_Blob], shape: tuple[int, int], flip: bool, px_per_mm: float,
+def _best_fit(layout: Layout, blobs: list[_Blob], pts: np.ndarray, px_per_mm: float,
               max_rot: float, max_scale: float, max_residual: float) -> _Fit | None:
     """The best consistent assignment of blobs to layout marks in one orientation, or None.
+
+    pts : ndarray of shape (len(blobs), 2), the blobs' centres in that orientation (pixel centres)
 
     Every pair of layout marks and every pair of blobs at the right distance and angle proposes a
     similarity transform; the blobs it predicts the other marks onto complete the proposal. Each
     distinct set of three or more marks is then fitted with an affine transform and judged: most
     marks first, then the smallest residual, then the placement nearest the nominal one.
     """
-    H, W = shape
     marks = layout.marks
-    pts = np.array([[b.x, b.y] for b in blobs], dtype=np.float64).reshape(-1, 2)
-    if flip:
-        pts = np.column_stack([W - 1 - pts[:, 0], H - 1 - pts[:, 1]])
     src_all = np.array([[mk.x, mk.y] for mk in marks], dtype=np.float64)
     sides = np.array([b.side for b in blobs])
     # Which blobs may be which mark: side within the scale range (with room for blur and rounding).
@@ -328,15 +372,19 @@ def _refine(gray: np.ndarray, x: float, y: float, side: float) -> tuple[float, f
 # ----------------------------------------------------------------------------------------- main
 
 def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, max_rotation_deg: float = 5.0,
-                  max_scale_change: float = 0.05) -> Registration:
+                  max_scale_change: float = 0.05, cache: dict | None = None) -> Registration:
     """Find the layout's registration marks on ``page`` and fit layout mm -> page pixels.
 
-    page : a loaded page (gray (H, W) uint8, dpi)
+    page : a loaded page (gray (H, W) uint8, dpi), in any quarter turn
     layout : the form's layout (at least 3 marks)
     max_residual_mm : refuse the page when the fitted marks are off by more than this (RMS, mm)
-    max_rotation_deg, max_scale_change : how far the scan may be turned and scaled (the page may sit
-        anywhere in the image: among equally good fits the one nearest the nominal placement wins)
-    Returns a ``Registration``; raises ``RegistrationError("<file> page N: <reason>")``.
+    max_rotation_deg, max_scale_change : how far the scan may be skewed (beyond its quarter turn) and
+        scaled (the page may sit anywhere in the image: among equally good fits the one nearest the
+        nominal placement wins)
+    cache : an empty dict to share between calls on the SAME page with other layouts (form
+        identification): the reduced copy and its squares are then found once
+    Returns a ``Registration`` (``image`` upright, ``turn_deg`` the quarter turn undone); raises
+    ``RegistrationError("<file> page N: <reason>")``.
 
     When the marks do not fit at the page's stated resolution but the image is the size of the form
     at another one (a file that states no or a wrong dpi), that resolution is tried once too;
@@ -345,17 +393,23 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
     check_param(max_residual_mm > 0, "max_residual_mm", "> 0", max_residual_mm)
     check_param(0 <= max_scale_change < 0.5, "max_scale_change", "in [0, 0.5)", max_scale_change)
     check_param(0 <= max_rotation_deg <= 45, "max_rotation_deg", "in [0, 45]", max_rotation_deg)
+    check_param(cache is None or isinstance(cache, dict), "cache", "None or a dict", type(cache).__name__)
     where = f"{page.source} page {page.page_number}"
     gray = np.asarray(page.gray)
     if gray.ndim != 2 or gray.dtype != np.uint8:
         raise RegistrationError(f"{where}: page image must be (H, W) uint8; got {gray.shape} {gray.dtype}")
     if not (page.dpi > 0 and math.isfinite(page.dpi)):
         raise RegistrationError(f"{where}: page resolution must be a positive number; got {page.dpi!r}")
-    opts = (max_residual_mm, max_rotation_deg, max_scale_change)
+    if cache is not None and cache.get("gray") is not gray:
+        cache.clear()
+        cache["gray"] = gray
+    opts = (max_residual_mm, max_rotation_deg, max_scale_change, cache)
     try:
         return _register(gray, float(page.dpi), layout, where, *opts)
     except RegistrationError as first:
         H, W = gray.shape
+        if (W > H) != (layout.width_mm > layout.height_mm):  # a quarter-turned page: its sides swap
+            H, W = W, H
         guesses = [W * 25.4 / layout.width_mm, H * 25.4 / layout.height_mm]
         guess = float(np.mean(guesses))
         if (abs(guesses[0] / guesses[1] - 1) > 0.08 or abs(guess / page.dpi - 1) < 2 * max_scale_change + 0.02
@@ -370,19 +424,37 @@ def register_page(page: Page, layout: Layout, *, max_residual_mm: float = 1.0, m
         return reg
 
 
+def _squares(gray: np.ndarray, dpi: float, layout: Layout, max_scale_change: float, cache: dict | None):
+    """The reduced copy's darkness, its reduction factor and the mark-like squares (full-resolution
+    pixel centres of the scan), reused from ``cache`` when another layout asked for the same."""
+    px_per_mm = dpi / 25.4
+    f = max(1, int(round(dpi / WORK_DPI)))
+    block = max(2, int(round(max(m.size for m in layout.marks) * 1.6 * px_per_mm / f)))
+    sizes = [m.size * px_per_mm for m in layout.marks]
+    side = (round((1 - max_scale_change) * min(sizes), 3), round((1 + max_scale_change) * max(sizes), 3))
+    cache = {} if cache is None else cache
+    if ("small", f) not in cache:
+        cache[("small", f)] = _reduce(gray, f)
+    small = cache[("small", f)]
+    if min(small.shape) < 8:
+        return small, None, f, None
+    if ("dark", f, block) not in cache:
+        cache[("dark", f, block)] = _darkness(small, block)
+    dark = cache[("dark", f, block)]
+    if ("blobs", f, block, side) not in cache:
+        cache[("blobs", f, block, side)] = _mark_blobs(dark, f, side)
+    return small, dark, f, cache[("blobs", f, block, side)]
+
+
 def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_residual_mm: float,
-              max_rotation_deg: float, max_scale_change: float) -> Registration:
+              max_rotation_deg: float, max_scale_change: float, cache: dict | None = None) -> Registration:
     """register_page at one assumed resolution."""
     H, W = gray.shape
     px_per_mm = dpi / 25.4
-    f = max(1, int(round(dpi / WORK_DPI)))
-    small = _reduce(gray, f)
-    if min(small.shape) < 8:
+    small, dark, f, blobs = _squares(gray, dpi, layout, max_scale_change, cache)
+    if dark is None:
         raise RegistrationError(f"{where}: page too small to register ({W} x {H} pixels)")
-    block = max(2, int(round(max(m.size for m in layout.marks) * 1.6 * px_per_mm / f)))
-    dark = _darkness(small, block)
     sizes = [m.size * px_per_mm for m in layout.marks]
-    blobs = _mark_blobs(dark, f, ((1 - max_scale_change) * min(sizes), (1 + max_scale_change) * max(sizes)))
     if not blobs:
         if float(np.mean(dark > 0.5)) < 0.001:
             raise RegistrationError(f"{where}: no registration marks found (the page looks blank)")
@@ -392,7 +464,8 @@ def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_resi
         want = float(np.median(sizes))
         blobs = sorted(blobs, key=lambda b: abs(b.side - want))[:_MAX_BLOBS]
     args = (px_per_mm, max_rotation_deg, max_scale_change, max_residual_mm)
-    fits = {flip: _best_fit(layout, blobs, (H, W), flip, *args) for flip in (False, True)}
+    centres = np.array([[b.x, b.y] for b in blobs], dtype=np.float64).reshape(-1, 2)
+    fits = {t: _best_fit(layout, blobs, turn_points(centres, t, (H, W)), *args) for t in TURNS}
     cand = {k: v for k, v in fits.items() if v is not None}
     if not cand:
         if len(blobs) < 3:
@@ -403,30 +476,31 @@ def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_resi
                                 f"wrong resolution: {dpi:g} dpi?)")
     most = max(len(v.marks) for v in cand.values())
     cand = {k: v for k, v in cand.items() if len(v.marks) == most}
-    if len(cand) == 2:
+    if len(cand) > 1:
         score = {}
-        for flip, fit in cand.items():
-            d = dark[::-1, ::-1] if flip else dark
-            # a flipped reduced copy maps back with the same offset only when H, W divide by f
-            m = fit.matrix.copy()
-            if flip:
-                m[:, 2] -= np.array([W - small.shape[1] * f, H - small.shape[0] * f], dtype=np.float64)
-            score[flip] = _content_score(layout, d, f, m)
-        flip = bool(score[True] > score[False] + _MIN_CONTENT_GAP)
-        log.debug("%s: orientation scores upright %.3f, turned %.3f", where, score[False], score[True])
+        for t, fit in cand.items():
+            # layout mm -> the turned-back frame (fit) -> the scan, whose reduced copy is sampled
+            back = np.linalg.inv(_turn_matrix(t, (H, W)))
+            m = (back @ np.vstack([fit.matrix, [0, 0, 1]]))[:2]
+            score[t] = _content_score(layout, dark, f, m)
+        best = max(score, key=score.get)
+        near = [t for t in cand if score[t] >= score[best] - _MIN_CONTENT_GAP]
+        turn = 0 if 0 in near else best
+        log.debug("%s: orientation scores %s", where, {t: round(v, 3) for t, v in score.items()})
     else:
-        flip = next(iter(cand))
-    fit = cand[flip]
+        turn = next(iter(cand))
+    fit = cand[turn]
+    to_scan = np.linalg.inv(_turn_matrix(turn, (H, W)))[:2]
 
-    # Refine each used mark at full resolution (in the page's own coordinates), then refit.
+    # Refine each used mark at full resolution (in the scan's own coordinates), then refit.
     refined, used = [], []
-    for i, (px, py) in zip(fit.marks, fit.points):
-        pred = apply_affine(fit.matrix, [[layout.marks[i].x, layout.marks[i].y]])[0]
-        ox, oy = (W - 1 - pred[0], H - 1 - pred[1]) if flip else (pred[0], pred[1])
+    for i in fit.marks:
+        pred = apply_affine(fit.matrix, [[layout.marks[i].x, layout.marks[i].y]])
+        ox, oy = apply_affine(to_scan, pred)[0]
         c = _refine(gray, ox, oy, layout.marks[i].size * px_per_mm)
         if c is None:
             continue
-        refined.append((W - 1 - c[0], H - 1 - c[1]) if flip else c)
+        refined.append(turn_points([c], turn, (H, W))[0])
         used.append(i)
     if len(used) < 3:
         raise RegistrationError(f"{where}: only {len(used)} of {len(layout.marks)} registration marks could be "
@@ -441,10 +515,15 @@ def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_resi
                                 f"{residual:.2f} mm > {max_residual_mm:g} mm)")
     if not _plausible(matrix, px_per_mm, max_rotation_deg, max_scale_change):
         raise RegistrationError(f"{where}: registration marks imply an implausible scale, stretch or rotation")
-    image = np.ascontiguousarray(gray[::-1, ::-1]) if flip else gray
+    if cache is not None:
+        image = cache.get(("upright", turn))
+        if image is None:
+            image = cache[("upright", turn)] = _upright(gray, turn)
+    else:
+        image = _upright(gray, turn)
     skew = -math.degrees(math.atan2(matrix[1, 0], matrix[0, 0]))
     matrix[:, 2] += 0.5  # pixel-centre -> continuous (pixel-edge) coordinates
     dst = dst + 0.5
-    return Registration(matrix=matrix, residual_mm=float(residual), marks_found=len(used), rotated_180=flip,
-                        skew_deg=float(skew), image=image, dpi=float(dpi), mark_px=dst,
-                        mark_index=tuple(used), scale=affine_scale(matrix))
+    return Registration(matrix=matrix, residual_mm=float(residual), marks_found=len(used),
+                        rotated_180=turn == 180, skew_deg=float(skew), image=image, dpi=float(dpi), mark_px=dst,
+                        mark_index=tuple(used), scale=affine_scale(matrix), turn_deg=int(turn))

@@ -27,7 +27,7 @@ import math
 from dataclasses import dataclass, field
 
 import numpy as np
-from PIL import Image, ImageDraw, ImageFilter
+from PIL import Image, ImageDraw, ImageFilter, ImageFont
 
 from formread.form.layout import Layout, Region, parse_layout
 
@@ -135,6 +135,8 @@ class Transform:
     scale : size change about the page centre
     shift_mm : (dx, dy) move of the page content, mm (x right, y down)
     upside_down : the sheet went through the scanner the other way round (image turned 180 degrees)
+    turn_deg : the sheet went in turned by this quarter turn, degrees counter-clockwise (0, 90, 180, 270;
+        added to ``upside_down``): the image is ``numpy.rot90(upright scan, turn_deg // 90)``
     noise : standard deviation of added Gaussian grey noise (grey levels)
     blur_px : Gaussian blur radius in pixels
     jpeg_quality : JPEG-compress at this quality (None: no compression)
@@ -147,6 +149,7 @@ class Transform:
     scale: float = 1.0
     shift_mm: tuple[float, float] = (0.0, 0.0)
     upside_down: bool = False
+    turn_deg: int = 0
     noise: float = 0.0
     blur_px: float = 0.0
     jpeg_quality: int | None = None
@@ -161,11 +164,12 @@ class Truth:
 
     matrix : (2, 3) float64, layout mm -> continuous pixels (x, y) of the page turned the right way up
     scan_matrix : (2, 3) float64, layout mm -> continuous pixels (x, y) of the image as returned
-    rotated_180 : the returned image is upside down
+    rotated_180 : the returned image is upside down (``turn_deg == 180``)
     skew_deg : rotation of the content in the upright page (counter-clockwise positive)
     dpi : resolution
     digits : what was written in each field
     digit_boxes : per field, list of (x0, y0, x1, y1) mm boxes of the drawn digits
+    turn_deg : the quarter turn of the returned image, degrees counter-clockwise (0, 90, 180, 270)
     """
     matrix: np.ndarray
     scan_matrix: np.ndarray
@@ -174,6 +178,7 @@ class Truth:
     dpi: float
     digits: dict = field(default_factory=dict)
     digit_boxes: dict = field(default_factory=dict)
+    turn_deg: int = 0
 
 
 def to_pixels(matrix: np.ndarray, points_mm) -> np.ndarray:
@@ -211,10 +216,13 @@ def _paint(img: np.ndarray, k: float, x0: float, y0: float, x1: float, y1: float
 
 
 def render_form(layout: Layout, dpi: float, digits: dict | None = None, rng: np.random.Generator | None = None,
-                cover_marks=(), line_mm: float = 0.3, pen_mm: float = 0.5) -> tuple[np.ndarray, dict]:
+                cover_marks=(), line_mm: float = 0.3, pen_mm: float = 0.5,
+                header_text: str | None = None) -> tuple[np.ndarray, dict]:
     """The printed and filled-in form, upright and exactly placed: (H, W) uint8 and the digits' mm boxes.
 
     digits : field name -> string of digits to write in that field (boxed: one per cell from the left)
+    header_text : print this title (one or two lines, split at "\n") in the header region with
+        Pillow's built-in font, instead of the default row of block "letters"
     """
     rng = rng if rng is not None else np.random.default_rng(0)
     k = dpi / 25.4
@@ -231,7 +239,9 @@ def render_form(layout: Layout, dpi: float, digits: dict | None = None, rng: np.
         _paint(img, k, f.x + f.w - t / 2, f.y + t / 2, f.x + f.w + t / 2, f.y + f.h - t / 2)
         for c in f.cell_regions()[1:]:
             _paint(img, k, c.x - t / 2, f.y + t / 2, c.x + t / 2, f.y + f.h - t / 2)
-    if layout.header is not None:  # a title line of block "letters" and a rule under it
+    if layout.header is not None and header_text is not None:
+        _print_title(img, layout.header, k, header_text)
+    elif layout.header is not None:  # a title line of block "letters" and a rule under it
         hd = layout.header
         x = hd.x + 1.0
         pattern = [3, 2, 4, 0, 3, 3, 1, 4, 0, 2, 5, 3, 0, 4, 2, 3, 1]
@@ -250,6 +260,19 @@ def render_form(layout: Layout, dpi: float, digits: dict | None = None, rng: np.
     gray = np.clip(np.rint(img * 255.0), 0, 255).astype(np.uint8)
     boxes = _write_digits(gray, layout, k, digits or {}, rng, pen_mm)
     return gray, boxes
+
+
+def _print_title(img: np.ndarray, hd: Region, k: float, text: str) -> None:
+    """Print ``text`` (lines split at "\n") centred in the header region, black on the paper (in place)."""
+    lines = text.split("\n")
+    im = Image.new("L", (img.shape[1], img.shape[0]), 255)
+    draw = ImageDraw.Draw(im)
+    size = hd.h / (1.6 * len(lines))
+    for i, line in enumerate(lines):
+        font = ImageFont.load_default(size=max(6, round(size * k * (1.0 if i == 0 else 0.7))))
+        cy = hd.y + hd.h * (i + 0.5) / len(lines)
+        draw.text(((hd.x + hd.w / 2) * k, cy * k), line, fill=0, font=font, anchor="mm")
+    img *= 1.0 - 0.92 * (1.0 - np.asarray(im, dtype=np.float32) / 255.0)
 
 
 def _write_digits(gray: np.ndarray, layout: Layout, k: float, digits: dict, rng: np.random.Generator,
@@ -331,7 +354,7 @@ def truth_matrix(layout: Layout, dpi: float, transform: Transform | None = None)
 
 
 def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.random.Generator | None = None,
-                transform: Transform | None = None) -> tuple[np.ndarray, Truth]:
+                transform: Transform | None = None, header_text: str | None = None) -> tuple[np.ndarray, Truth]:
     """A simulated scan of the filled-in form: (H, W) uint8 (0 = ink) and its ``Truth``.
 
     The image has the size of the layout's page at ``dpi`` (plus ``transform.margin_mm`` on every side);
@@ -339,7 +362,7 @@ def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.
     """
     rng = rng if rng is not None else np.random.default_rng(0)
     tr = transform or Transform()
-    form, boxes = render_form(layout, dpi, digits, rng, cover_marks=tr.cover_marks)
+    form, boxes = render_form(layout, dpi, digits, rng, cover_marks=tr.cover_marks, header_text=header_text)
     fwd = _scan_map(layout, dpi, tr)
     pad = int(round(tr.margin_mm * dpi / 25.4))
     size = (form.shape[0] + 2 * pad, form.shape[1] + 2 * pad)
@@ -348,11 +371,17 @@ def render_page(layout: Layout, dpi: float, digits: dict | None = None, rng: np.
     # mm -> continuous (x dpi / 25.4) -> moved continuous (fwd)
     matrix = truth_matrix(layout, dpi, tr)
     H, W = gray.shape
-    scan = matrix.copy()
-    if tr.upside_down:  # continuous coordinates turn as (x, y) -> (W - x, H - y)
-        gray = np.ascontiguousarray(gray[::-1, ::-1])
-        scan = np.vstack([-matrix[0], -matrix[1]])
-        scan[:, 2] += [W, H]
-    truth = Truth(matrix=matrix, scan_matrix=scan, rotated_180=tr.upside_down, skew_deg=tr.rotation_deg,
-                  dpi=float(dpi), digits=dict(digits or {}), digit_boxes=boxes)
+    turn = (int(tr.turn_deg) + (180 if tr.upside_down else 0)) % 360
+    if turn not in (0, 90, 180, 270):
+        raise ValueError(f"turn_deg must be a quarter turn; got {tr.turn_deg!r}")
+    # continuous coordinates of the upright image -> of numpy.rot90(image, q): (x, y) -> (y, W - x) per
+    # counter-clockwise quarter turn (q = 2: (W - x, H - y); q = 3: (H - y, x))
+    q = turn // 90
+    rot = [np.array([[1, 0, 0], [0, 1, 0]]), np.array([[0, 1, 0], [-1, 0, W]]),
+           np.array([[-1, 0, W], [0, -1, H]]), np.array([[0, -1, H], [1, 0, 0]])][q].astype(np.float64)
+    scan = rot[:, :2] @ matrix + np.array([[0, 0, rot[0, 2]], [0, 0, rot[1, 2]]])
+    if q:
+        gray = np.ascontiguousarray(np.rot90(gray, q))
+    truth = Truth(matrix=matrix, scan_matrix=scan, rotated_180=turn == 180, skew_deg=tr.rotation_deg,
+                  dpi=float(dpi), digits=dict(digits or {}), digit_boxes=boxes, turn_deg=turn)
     return gray, truth

@@ -208,3 +208,99 @@ def test_estimate_skew_from_printed_lines(angle):
 
 def test_estimate_skew_of_too_little_ink_is_zero():
     assert estimate_skew(np.zeros((100, 100), bool)) == 0.0
+
+
+# ------------------------------------------------------------------------------------- quarter turns
+
+def _turn_cases():
+    """(dpi, Transform) pairs in every quarter turn: random skew, scale, shift and damage, a fixed seed."""
+    rng = np.random.default_rng(20261203)
+    cases = []
+    for i, dpi in enumerate([150, 200, 300] * 4):
+        turn = (0, 90, 180, 270)[i % 4]
+        while True:
+            ang = rng.uniform(0, 2 * math.pi)
+            r = rng.uniform(0, 10.0)
+            tr = Transform(rotation_deg=float(rng.uniform(-4, 4)), scale=float(rng.uniform(0.96, 1.04)),
+                           shift_mm=(float(r * math.cos(ang)), float(r * math.sin(ang))), turn_deg=turn,
+                           noise=float(rng.uniform(0, 10)), blur_px=float(rng.uniform(0, 1.2) * dpi / 200),
+                           margin_mm=MARGIN, jpeg_quality=int(rng.choice([60, 90])) if i % 3 == 0 else None)
+            if _marks_inside(LAYOUT, dpi, tr, MARGIN):
+                break
+        cases.append((dpi, tr))
+    return cases
+
+
+TURN_CASES = _turn_cases()
+
+
+@pytest.mark.parametrize("dpi,tr", TURN_CASES, ids=[f"{d}dpi-turn{t.turn_deg}-{i}" for i, (d, t) in enumerate(TURN_CASES)])
+def test_a_page_in_any_quarter_turn_registers_upright(dpi, tr):
+    rng = np.random.default_rng(dpi + tr.turn_deg)
+    gray, truth = render_page(LAYOUT, dpi, DIGITS, rng, tr)
+    if tr.turn_deg in (90, 270):
+        assert gray.shape[1] > gray.shape[0]  # a portrait form turned a quarter is a landscape image
+    reg = register_page(Page(gray, float(dpi), "turned.png", 1), LAYOUT)
+    assert reg.turn_deg == tr.turn_deg and reg.rotated_180 == (tr.turn_deg == 180)
+    assert reg.marks_found == 4 and reg.residual_mm < 0.2
+    assert _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+    assert abs(reg.skew_deg - truth.skew_deg) <= SKEW_TOL_DEG
+    # The image is the scan turned back, as numpy.rot90 turns it (k quarter turns counter-clockwise).
+    np.testing.assert_array_equal(reg.image, np.rot90(gray, -tr.turn_deg // 90))
+
+
+def test_turn_points_follow_numpy_rot90():
+    # Reference: numpy.rot90(a, -k) moves the element at (row, col) to where turn_points puts (x, y) = (col, row).
+    from formread.imaging.register import turn_points
+
+    a = np.arange(5 * 7).reshape(5, 7)
+    pts = np.array([[0, 0], [6, 0], [3, 2], [6, 4], [1, 3]], dtype=float)   # (x = col, y = row)
+    for turn in (0, 90, 180, 270):
+        b = np.rot90(a, -turn // 90)
+        q = turn_points(pts, turn, a.shape).astype(int)
+        for (x, y), (u, v) in zip(pts.astype(int), q):
+            assert b[v, u] == a[y, x]
+
+
+@pytest.mark.parametrize("turn", [90, 270])
+def test_three_marks_quarter_turned(turn):
+    # Three marks: the geometry alone gives the turn; the matrix maps into the upright image.
+    text = LAYOUT.to_toml().replace("[[marks]]\nx = 139.0\ny = 201.0\nsize = 6.0\n", "")
+    three = parse_layout(text, "three.toml")
+    tr = Transform(rotation_deg=1.5, turn_deg=turn, margin_mm=5, noise=4)
+    gray, truth = render_page(three, 200, DIGITS, np.random.default_rng(turn), tr)
+    reg = register_page(Page(gray, 200.0, "three.png", 1), three)
+    assert reg.turn_deg == turn and reg.marks_found == 3
+    assert _corner_error_mm(reg, truth, three) <= CORNER_TOL_MM
+
+
+def test_a_quarter_turned_file_with_a_wrong_resolution_registers_at_the_one_its_size_implies():
+    # A landscape image of a portrait form: the page-size guess swaps the sides.
+    gray, truth = render_page(LAYOUT, 200, DIGITS, np.random.default_rng(12), Transform(turn_deg=90))
+    reg = register_page(Page(gray, 300.0, "nodpi.png", 1), LAYOUT)
+    assert reg.dpi == 200.0 and reg.turn_deg == 90 and _corner_error_mm(reg, truth) <= CORNER_TOL_MM
+
+
+def test_a_square_form_in_each_quarter_turn_is_told_by_its_content():
+    # Four marks on a square: every quarter turn fits the marks; field borders and the header decide.
+    square = example_layout(160.0, 160.0)
+    for turn in (0, 90, 180, 270):
+        tr = Transform(rotation_deg=-1.0, turn_deg=turn, margin_mm=5, noise=5)
+        gray, truth = render_page(square, 150, DIGITS, np.random.default_rng(turn + 1), tr)
+        reg = register_page(Page(gray, 150.0, "square.png", 1), square)
+        assert reg.turn_deg == turn
+        assert _corner_error_mm(reg, truth, square) <= CORNER_TOL_MM
+
+
+def test_a_shared_cache_gives_the_same_registration():
+    # identify_form shares the reduced copy between layouts; the answer must not change.
+    gray, _ = render_page(LAYOUT, 200, DIGITS, np.random.default_rng(13), Transform(turn_deg=270, rotation_deg=2))
+    page = Page(gray, 200.0, "cache.png", 1)
+    cache: dict = {}
+    other = parse_layout(LAYOUT.to_toml().replace("x = 139.0", "x = 128.0"), "other.toml")
+    with pytest.raises(RegistrationError):
+        register_page(page, other, cache=cache)
+    a, b = register_page(page, LAYOUT, cache=cache), register_page(page, LAYOUT)
+    np.testing.assert_array_equal(a.matrix, b.matrix)
+    np.testing.assert_array_equal(a.image, b.image)
+    assert a.turn_deg == b.turn_deg == 270
