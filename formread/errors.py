@@ -7,7 +7,7 @@ Every message is one line and names the file (and page, field) it concerns.
 __all__ = [
     "FormreadError", "DataError", "ModelFileError", "ImageError", "LayoutError",
     "RegistrationError", "SegmentationError", "RuleError", "LedgerError",
-    "ReviewError", "ParameterError", "ComputeError", "one_line", "check_param",
+    "ReviewError", "ParameterError", "ComputeError", "ClusterError", "one_line", "check_param",
 ]
 
 
@@ -57,6 +57,10 @@ class ReviewError(FormreadError):
 
 class ComputeError(FormreadError):
     """The network's worker processes failed (a worker died or stopped answering)."""
+
+
+class ClusterError(FormreadError):
+    """A Dask cluster cannot be reached or used (``formread read --scheduler``)."""
 
 
 def one_line(error: BaseException) -> str:

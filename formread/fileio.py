@@ -12,7 +12,7 @@ import os
 import tempfile
 from pathlib import Path
 
-__all__ = ["atomic_open", "atomic_write", "spreadsheet_cell"]
+__all__ = ["atomic_open", "atomic_write", "spreadsheet_cell", "form_slug"]
 
 _UMASK = os.umask(0)
 os.umask(_UMASK)
@@ -55,3 +55,11 @@ def spreadsheet_cell(text) -> str:
     """A CSV cell that a spreadsheet will not run as a formula (common practice: prefix ')."""
     s = "" if text is None else str(text)
     return "'" + s if s[:1] in ("=", "+", "-", "@", "\t", "\r") else s
+
+
+def form_slug(name: str) -> str:
+    """A form's name as part of a file name: ``readings-<slug>.csv`` (lower case letters, digits, dashes)."""
+    import re
+
+    slug = re.sub(r"[^a-z0-9]+", "-", str(name).lower()).strip("-")
+    return (slug or "form")[:60]

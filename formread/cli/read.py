@@ -40,7 +40,9 @@ def render_batch(report, *, out=None) -> None:
 @edge
 def read_cmd(
     scans: List[Path] = typer.Argument(..., help="Scan files (PNG, JPEG, TIFF, PDF) or folders of them."),
-    layout: Path = typer.Option(..., "--layout", "-l", help="The form's layout TOML."),
+    layout: List[Path] = typer.Option(
+        ..., "--layout", "-l", help="The form's layout TOML; give it several times (or a folder of layouts) for a "
+                                    "tray of several forms: each page is read as the one form it fits."),
     out: Path = typer.Option(..., "--out", "-o", help="Output folder (ledger, images, readings.csv)."),
     model: Optional[Path] = typer.Option(None, "--model", "-m", help="Model file; the shipped one by default."),
     threshold: Optional[float] = typer.Option(
@@ -51,7 +53,11 @@ def read_cmd(
         help="Share of the fields that would be accepted sent to review as spot checks "
              "(default: the layout's 'audit', else 0.02)."),
     audit_seed: int = typer.Option(0, "--audit-seed", min=0, help="Seed of the spot-check draw."),
-    workers: int = typer.Option(2, "--workers", "-w", help="Processes for the imaging step."),
+    workers: int = typer.Option(2, "--workers", "-w", min=1, max=64, help="Processes for the page work."),
+    scheduler: Optional[str] = typer.Option(
+        None, "--scheduler", help="Run the page work on a Dask cluster (tcp://HOST:8786); needs formread[dask]."),
+    send_bytes: bool = typer.Option(False, "--send-bytes", help="With --scheduler: send the scans' bytes to the "
+                                                                  "workers (they do not share the scans' folder)."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ):
     """Read scanned forms into OUT/ledger.sqlite; re-running the same command resumes.
@@ -63,8 +69,8 @@ def read_cmd(
 
     bar = ProgressBar("reading", unit="pages", enabled=not quiet)
     report = read_batch(scans, layout, out, bundle=model, threshold=threshold, audit=audit, audit_seed=audit_seed,
-                        workers=workers,
-                        progress=bar, command=_command_line())
+                        workers=workers, progress=bar, command=_command_line(), scheduler=scheduler,
+                        send_bytes=send_bytes)
     render_batch(report)
     if not report.all_read:
         raise typer.Exit(EXIT_PAGES_FAILED)

@@ -87,7 +87,8 @@ def export(
     from ..review.export import export_final
 
     res = export_final(outdir, out)
-    typer.echo(f"Wrote {res.csv_path} ({res.pages} pages) and {res.jsonl_path} ({res.fields} fields).")
+    tables = ", ".join(str(p) for p in res.csv_paths) if len(res.csv_paths) > 1 else str(res.csv_path)
+    typer.echo(f"Wrote {tables} ({res.pages} pages) and {res.jsonl_path} ({res.fields} fields).")
     typer.echo("  " + ", ".join(f"{k} {v}" for k, v in res.counts.items()))
     if res.counts.get("pending"):
         typer.echo(f"  {res.counts['pending']} field(s) still wait for review: `formread review {outdir}`.")

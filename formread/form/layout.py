@@ -363,7 +363,7 @@ class _Checker:
                         header_fingerprint=fingerprint)
         return dataclasses.replace(layout, rules=compile_rules(layout))
     def fingerprint(self, header: dict) -> str | None:
-        fp = self.string(header, "fingerprint", "[form.header]", required=False)
+        fp = self.string(header, "fingerprint", "[form.header]", required=False, max_len=20_000)
         if fp is None:
             return None
         m = FINGERPRINT_PATTERN.match(fp)

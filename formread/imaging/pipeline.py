@@ -69,7 +69,7 @@ def _failed(field, reg, reason: str, crop=None) -> FieldDigits:
 
 
 def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float = 10.0,
-                 margin_mm: float = 1.5) -> PageDigits:
+                 margin_mm: float = 1.5, registration=None) -> PageDigits:
     """Register a page to its layout and cut every field into digit images.
 
     Parameters
@@ -82,6 +82,8 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
         ``segment``) are added to it, for the page-speed benchmark.
     px_per_mm, margin_mm : float
         Crop resolution and the paper kept around each field (see ``cut_field``).
+    registration : Registration or None
+        The page already registered to ``layout`` (by form identification); None registers it here.
 
     Returns
     -------
@@ -103,7 +105,7 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
         return t1
 
     t = tick()
-    reg = register_page(page, layout)
+    reg = register_page(page, layout) if registration is None else registration
     t = add("register", t)
     dpi = float(getattr(reg, "dpi", 0.0) or page.dpi)
     method = choose_method(layout.binarize, reg.image, dpi)

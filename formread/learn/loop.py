@@ -50,7 +50,7 @@ from ..ledger.store import open_ledger
 from ..read.bundle import Bundle, Decisions, load_bundle, save_bundle
 from ..read.decode import ConfidenceModel, decode_page
 from ..read.recognise import recognise_pages
-from ..read.runs import run_layouts
+from ..read.runs import page_layout, run_layouts
 from ..read.score import load_truth
 from ..read.tune import choose_threshold, clopper_pearson_upper
 from ..review.queries import resolve_inside
@@ -188,7 +188,7 @@ def _gather(runs: list[Path], truths=None) -> tuple[list[_Field], dict]:
             given = known.get((PurePath(r["source"]).name, r["page_number"]), {}).get(r["name"])
             if given is not None:
                 truth, clerk = given, True
-            layout = by_run.get(r["run_id"])
+            layout = page_layout(by_run, r["run_id"], r["form"])
             if truth is None or layout is None or r["name"] not in layout.field_names:
                 continue
             layouts.setdefault(layout.name, layout)

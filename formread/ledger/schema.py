@@ -100,6 +100,19 @@ WHERE threshold IS NULL;
 ALTER TABLE fields ADD COLUMN audit INTEGER NOT NULL DEFAULT 0;  -- 1: would have been accepted, sent as a spot check
 ALTER TABLE runs ADD COLUMN audit_rate REAL NOT NULL DEFAULT 0;  -- the share of would-be-accepted fields spot-checked
 """),
+    (4, "several forms in one batch: each page's form, and every layout a run read with", """
+ALTER TABLE pages ADD COLUMN form TEXT;                    -- the form (layout name) the page was read as; NULL: none
+CREATE TABLE IF NOT EXISTS run_forms (
+    run_id        INTEGER NOT NULL REFERENCES runs(id),
+    form          TEXT NOT NULL,                           -- the layout's [form] name
+    layout_path   TEXT NOT NULL,
+    layout_sha256 TEXT NOT NULL,
+    layout_text   TEXT NOT NULL,                           -- the layout file's text as read
+    threshold     REAL NOT NULL,                           -- the threshold of its fields without their own
+    audit_rate    REAL NOT NULL,
+    PRIMARY KEY (run_id, form)
+);
+"""),
 )
 """Ordered migrations: (version reached, what it adds, SQL)."""
 

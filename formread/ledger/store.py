@@ -124,6 +124,7 @@ class PageRow:
     skew_deg: float | None = None
     image_png: bytes | None = None
     fields: list[FieldRow] = field(default_factory=list)
+    form: str | None = None
 
 
 def check_output_folder(outdir: Path) -> Path:
@@ -172,6 +173,15 @@ class Ledger:
                  command, layout_text, None if bundle is None else json.dumps(bundle, sort_keys=True),
                  float(audit_rate)))
             return int(cur.lastrowid)
+
+    def add_run_form(self, run_id: int, *, form: str, layout_path: str, layout_sha256: str, layout_text: str,
+                     threshold: float, audit_rate: float) -> None:
+        """Record one of the layouts a run reads with (several for a mixed batch)."""
+        with self.transaction():
+            self.conn.execute("INSERT INTO run_forms (run_id, form, layout_path, layout_sha256, layout_text, "
+                              "threshold, audit_rate) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                              (run_id, form, str(layout_path), layout_sha256, layout_text, float(threshold),
+                               float(audit_rate)))
 
     def finish_run(self, run_id: int) -> None:
         """Stamp the run's finishing time."""
@@ -224,10 +234,10 @@ class Ledger:
                 atomic_write(self.outdir / image_path, page.image_png)
             c.execute(
                 "INSERT INTO pages (id, run_id, content_hash, source, page_number, status, error, residual_mm,"
-                " rotated_180, skew_deg, image_path, created) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                " rotated_180, skew_deg, image_path, created, form) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (page_id, run_id, page.content_hash, page.source, int(page.page_number), page.status, page.error,
                  _opt_float(page.residual_mm), None if page.rotated_180 is None else int(bool(page.rotated_180)),
-                 _opt_float(page.skew_deg), image_path, utc_now()))
+                 _opt_float(page.skew_deg), image_path, utc_now(), page.form))
             for f in page.fields:
                 self._insert_field(page_id, f)
             return page_id
@@ -263,7 +273,8 @@ class Ledger:
         JSON columns (alternatives, digit_probs, rules, box_px) are decoded.
         """
         rows = self._dicts(
-            "SELECT f.*, p.source AS source, p.page_number AS page_number, p.status AS page_status, p.run_id AS run_id"
+            "SELECT f.*, p.source AS source, p.page_number AS page_number, p.status AS page_status,"
+            " p.run_id AS run_id, p.form AS form"
             " FROM fields f JOIN pages p ON p.id = f.page_id ORDER BY f.page_id, f.id")
         for r in rows:
             for k in ("alternatives", "digit_probs", "rules", "box_px"):

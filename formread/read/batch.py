@@ -2,22 +2,24 @@
 
 How it runs: the main process decodes the scan files page by page (a stream,
 so a long multi-page file is spread over the workers too) and hashes each page;
-a page not yet in the ledger goes to the imaging step (register, cut, segment,
-page and crop images) in a worker process when ``workers > 1`` (each pinned to
-one BLAS thread).  The main process takes the pages back in input order, runs
-the network on all the digits of a page in one call, decodes each field with
-its rules, and writes the page (row, fields, image files) to the ledger in ONE
-transaction.  A page already in the ledger (same hash of the
-decoded pixels) is skipped, so re-running the same command resumes a stopped
-batch; a page that cannot be read is recorded with its reason and the batch
-goes on.  ``readings.csv`` and ``fields.jsonl`` are rebuilt from the ledger at
-the end (also after Ctrl-C).
+a page not yet in the ledger goes to the page work (formread.read.pagework:
+which form, register, cut, segment, recognise, decode, spot checks) in a worker
+process when ``workers > 1`` (each pinned to one BLAS thread, with the run's
+layouts and model bundle sent once).  The main process takes the pages back in
+input order and writes each (row, fields, image files) to the ledger in ONE
+transaction.  With ``scheduler`` the page work runs on a Dask cluster instead
+(formread.read.cluster), and the ledger is still written here, by this process
+alone.  A page already in the ledger (same hash of the decoded pixels) is
+skipped, so re-running the same command resumes a stopped batch; a page that
+cannot be read is recorded with its reason and the batch goes on.
+``readings.csv`` and ``fields.jsonl`` are rebuilt from the ledger at the end
+(also after Ctrl-C).
 """
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
-import io
 import multiprocessing
 import os
 import stat
@@ -28,30 +30,21 @@ from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-from PIL import Image
-
-from ..errors import FormreadError, ImageError, LedgerError, RegistrationError, check_param, one_line
-from ..form.layout import Layout, load_layout, read_layout_text
+from ..errors import ImageError, LayoutError, LedgerError, check_param, one_line
+from ..form.layout import Layout, parse_layout, read_layout_text
 from ..form.thresholds import audit_rate, form_threshold, resolve_thresholds
 from ..imaging.load import iter_pages
-from ..imaging.pipeline import process_page
-from ..ledger.fieldfile import FieldFile
-from ..ledger.store import FieldRow, Ledger, PageRow, open_ledger, page_hash
+from ..ledger.store import Ledger, PageRow, open_ledger, page_hash
 from ..store import in_use_path
-from .audit import apply_audit
 from .bundle import Bundle, load_bundle
-from .decode import decode_page, unregistered_page
 from .outputs import write_outputs
-from .recognise import recognise_page
+from .pagework import PageWork, RunContext, failed_page, read_page
 from .runs import run_layouts
 
-__all__ = ["SCAN_SUFFIXES", "PAGE_DPI", "BatchReport", "list_scans", "read_batch"]
+__all__ = ["SCAN_SUFFIXES", "BatchReport", "list_scans", "read_batch", "decoded_pages", "display_name"]
 
 SCAN_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".pdf")
 """File suffixes taken as scans when a folder is given (case-insensitive)."""
-PAGE_DPI = 100.0
-"""Resolution of the stored page images (review view)."""
 
 
 @dataclass
@@ -166,33 +159,12 @@ def _file_failure_hash(source: str) -> str:
     return "failed:" + hashlib.sha256(source.encode("utf-8", "surrogateescape")).hexdigest()
 
 
-# ------------------------------------------------------------------------------------------ imaging step
-@dataclass
-class _Imaged:
-    """One page after the imaging step, small enough to send between processes."""
-
-    source: str
-    page_number: int
-    content_hash: str
-    status: str                         # 'ok' | 'known' | 'unregistered' | 'failed'
-    error: str | None = None
-    fields: dict | None = None          # name -> FieldDigits
-    crops: dict = field(default_factory=dict)   # name -> FieldCrop
-    page_png: bytes | None = None
-    field_png: dict = field(default_factory=dict)
-    box_px: dict = field(default_factory=dict)
-    residual_mm: float | None = None
-    rotated_180: bool | None = None
-    skew_deg: float | None = None
-    seconds: float = 0.0
-    stages: dict = field(default_factory=dict)
-
-
+# ------------------------------------------------------------------------------------------ the page work
 _STATE: dict = {}
 
 
-def _init_imaging(layout: Layout, pin_threads: bool, parent: int | None = None) -> None:
-    """Worker start: keep the run's layout; one BLAS thread; Ctrl-C left to the main process."""
+def _init_worker(ctx: RunContext, pin_threads: bool, parent: int | None = None) -> None:
+    """Worker start: keep the run's context; one BLAS thread; Ctrl-C left to the main process."""
     import signal
 
     if pin_threads:
@@ -202,7 +174,7 @@ def _init_imaging(layout: Layout, pin_threads: bool, parent: int | None = None) 
         from threadpoolctl import threadpool_limits
 
         _STATE["limits"] = threadpool_limits(limits=1)
-    _STATE["layout"] = layout
+    _STATE["ctx"] = ctx
 
 
 def _watch_parent(parent: int) -> None:
@@ -224,63 +196,18 @@ def _watch_parent(parent: int) -> None:
     threading.Thread(target=watch, name="formread-parent-watch", daemon=True).start()
 
 
-def _png(gray: np.ndarray, level: int = 1) -> bytes:
-    buf = io.BytesIO()
-    Image.fromarray(np.ascontiguousarray(gray, dtype=np.uint8)).save(buf, format="PNG", compress_level=level)
-    return buf.getvalue()
+def _work(page, content_hash: str) -> PageWork:
+    """One page in a worker process (or inline), with the context it was started with."""
+    return read_page(page, content_hash, _STATE["ctx"])
 
 
-def _page_png(gray: np.ndarray, dpi: float) -> tuple[bytes, float]:
-    """The page downscaled to about ``PAGE_DPI`` as PNG bytes, and the scale used (stored px per page px)."""
-    img = Image.fromarray(np.ascontiguousarray(gray, dtype=np.uint8))
-    factor = int(float(dpi) // PAGE_DPI) if dpi else 1
-    if factor >= 2:
-        img = img.reduce(factor)                    # box average over factor x factor pixels: fast and clean
-    buf = io.BytesIO()
-    img.save(buf, format="PNG", compress_level=1)
-    return buf.getvalue(), 1.0 / max(1, factor)
-
-
-def _box_px(reg, spec, scale: float) -> list[float]:
-    """Bounding box [x0, y0, x1, y1] on the stored page image of a field's rectangle (mm)."""
-    px = reg.to_pixels(spec.region.corners()) * scale
-    return [float(px[:, 0].min()), float(px[:, 1].min()), float(px[:, 0].max()), float(px[:, 1].max())]
-
-
-def _image_page(page, content_hash: str) -> _Imaged:
-    """Imaging step for one decoded page: register, cut, segment; page and crop PNGs (worker or inline)."""
-    layout = _STATE["layout"]
-    t0 = time.perf_counter()
-    base = dict(source=page.source, page_number=page.page_number, content_hash=content_hash)
-    stages: dict = {}
-    try:
-        pd = process_page(page, layout, timings=stages)
-    except RegistrationError as e:
-        png, _ = _page_png(page.gray, page.dpi)
-        return _Imaged(status="unregistered", error=one_line(e), page_png=png,
-                       seconds=time.perf_counter() - t0, stages=stages, **base)
-    except FormreadError as e:
-        png, _ = _page_png(page.gray, page.dpi)
-        return _Imaged(status="failed", error=one_line(e), page_png=png,
-                       seconds=time.perf_counter() - t0, stages=stages, **base)
-    reg = pd.registration
-    image = getattr(reg, "image", None)
-    png, scale = _page_png(image if image is not None else page.gray, page.dpi)
-    specs = {f.name: f for f in layout.fields}
-    box = {name: _box_px(reg, specs[name], scale) for name in pd.fields if name in specs}
-    field_png = {name: _png(fd.image) for name, fd in pd.fields.items() if fd.image is not None}
-    return _Imaged(status="ok", fields=dict(pd.fields), crops=dict(pd.crops), page_png=png, field_png=field_png, box_px=box,
-                   residual_mm=_opt(reg, "residual_mm"), rotated_180=_opt(reg, "rotated_180"),
-                   skew_deg=_opt(reg, "skew_deg"), seconds=time.perf_counter() - t0, stages=stages, **base)
-
-
-def _decoded_pages(scans):
-    """Stream the inputs page by page: ``(page, content_hash, load_seconds)``, or an ``_Imaged``
-    failure record for a file that is not a scan or cannot be (fully) decoded."""
+def decoded_pages(scans):
+    """Stream the inputs page by page: ``(page, content_hash, load_seconds)``, or a failed PageWork for
+    a file that is not a scan or cannot be (fully) decoded."""
     for source, refusal in scans:
+        name = display_name(source)
         if refusal is not None:
-            yield _Imaged(source=source, page_number=1, content_hash=_file_failure_hash(source), status="failed",
-                          error=f"{display_name(source)}: {refusal}")
+            yield failed_page(name, 1, _file_failure_hash(source), f"{name}: {refusal}")
             continue
         n = 0
         t0 = time.perf_counter()
@@ -288,130 +215,70 @@ def _decoded_pages(scans):
             for page in iter_pages(source):
                 n += 1
                 h = page_hash(page.gray)
+                if page.source != name:
+                    page = dataclasses.replace(page, source=name)
                 yield page, h, time.perf_counter() - t0
                 t0 = time.perf_counter()
         except ImageError as e:
             # pages decoded before the failure are kept; the rest of the file is one failed record
-            yield _Imaged(source=source, page_number=n + 1, content_hash=_file_failure_hash(source),
-                          status="failed", error=one_line(e), seconds=time.perf_counter() - t0)
-
-
-def _opt(obj, name):
-    v = getattr(obj, name, None)
-    if v is None:
-        return None
-    return bool(v) if isinstance(v, (bool, np.bool_)) else float(v)
-
-
-# ------------------------------------------------------------------------------------------ reading step
-def _digits_file(fd, crop, reading) -> bytes | None:
-    """The field's digit file (formread.ledger.fieldfile): the reading's digits, every candidate, the crop."""
-    if not fd.candidates:
-        return None
-    i = reading.candidate
-    chosen = i if i is not None and 0 <= i < len(fd.candidates) else -1
-    d = (np.asarray(fd.candidates[chosen].digits, dtype=np.float32).reshape(-1, 1, 28, 28) if chosen >= 0
-         else np.zeros((0, 1, 28, 28), np.float32))
-    keep = np.asarray([p for p in reading.positions if 0 <= p < len(d)], dtype=np.int64)
-    parts = [np.asarray(c.digits, np.float32).reshape(-1, 28, 28) for c in fd.candidates]
-    sizes = np.array([len(p) for p in parts], np.int64)
-    spans = np.column_stack([np.cumsum(sizes) - sizes, np.cumsum(sizes)])
-    every = np.concatenate(parts) if sizes.sum() else np.zeros((0, 28, 28), np.float32)
-    ff = FieldFile(digits=d[keep], positions=keep, chosen=chosen,
-                   cand_digits=np.clip(np.rint(every * 255.0), 0, 255).astype(np.uint8), cand_spans=spans,
-                   cand_costs=np.array([float(c.cost) for c in fd.candidates]),
-                   blank=fd.blank if fd.blank is not None else np.zeros(0, bool),
-                   doubtful=bool(fd.doubtful), reason=fd.reason or "")
-    if crop is not None and fd.kind == "open":   # only open fields are ever cut again (to a decided length)
-        ff.crop_gray, ff.crop_ink, ff.crop_rect = crop.gray, crop.ink, np.asarray(crop.rect, np.float64)
-        ff.crop_geometry = np.array([crop.x0_mm, crop.y0_mm, crop.px_per_mm], np.float64)
-        ff.crop_matrix = np.asarray(crop.matrix, np.float64)
-    return ff.to_bytes()
-
-
-def _field_row(layout: Layout, spec, r, threshold, *, image_png=None, digits=None, box_px=None,
-               audit: bool = False) -> FieldRow:
-    return FieldRow(
-        name=spec.name, kind=spec.kind, reading=r.reading,
-        confidence=None if r.confidence is None else float(r.confidence),
-        decision=r.decision, reason=r.reason,
-        alternatives=[[str(s), round(float(p), 6)] for s, p in (r.alternatives or [])],
-        digit_probs=_jsonable(r.digit_probs or []),
-        rules={str(k): bool(v) for k, v in (r.rules or {}).items()},
-        box_px=box_px, image_png=image_png, digits_npz=digits,
-        threshold=float(r.threshold), threshold_source=threshold.source, max_digits=layout.capacity(spec.name),
-        audit=audit)
-
-
-def _jsonable(v):
-    if isinstance(v, np.ndarray):
-        return _jsonable(v.tolist())
-    if isinstance(v, (list, tuple)):
-        return [_jsonable(x) for x in v]
-    if isinstance(v, dict):
-        return {str(k): _jsonable(x) for k, x in v.items()}
-    if isinstance(v, (np.integer,)):
-        return int(v)
-    if isinstance(v, (np.floating, float)):
-        return round(float(v), 6)
-    return v
-
-
-class _Reader:
-    """The main process's half: network, decoding, ledger rows."""
-
-    def __init__(self, layout: Layout, bundle: Bundle, thresholds: dict, audit: float, audit_seed: int):
-        self.layout, self.bundle, self.thresholds = layout, bundle, thresholds
-        self.audit, self.audit_seed = audit, audit_seed
-        self.specs = {f.name: f for f in layout.fields}
-
-    def page_row(self, im: _Imaged, report: BatchReport) -> PageRow:
-        row = PageRow(content_hash=im.content_hash, source=display_name(im.source), page_number=im.page_number,
-                      status="read", error=im.error, residual_mm=im.residual_mm, rotated_180=im.rotated_180,
-                      skew_deg=im.skew_deg, image_png=im.page_png)
-        if im.status == "failed":
-            row.status = "failed"
-            return row
-        if im.status == "unregistered":
-            row.status = "unregistered"
-            readings = unregistered_page(self.layout, thresholds=self.thresholds)
-            row.fields = [_field_row(self.layout, self.specs[n], r, self.thresholds[n]) for n, r in readings.items()]
-            return row
-        t0 = time.perf_counter()
-        evidence = recognise_page(im.fields, self.bundle)
-        readings = decode_page(evidence, self.layout, confidence=self.bundle.decoder, thresholds=self.thresholds)
-        audited = apply_audit(readings, self.audit, im.content_hash, self.audit_seed)
-        report.recognition_seconds += time.perf_counter() - t0
-        for name, r in readings.items():
-            fd = im.fields.get(name)
-            row.fields.append(_field_row(
-                self.layout, self.specs[name], r, self.thresholds[name], image_png=im.field_png.get(name),
-                digits=None if fd is None else _digits_file(fd, im.crops.get(name), r),
-                box_px=im.box_px.get(name), audit=name in audited))
-        report.audited += len(audited)
-        return row
+            yield failed_page(name, n + 1, _file_failure_hash(source), one_line(e), time.perf_counter() - t0)
 
 
 # ------------------------------------------------------------------------------------------ the job
+def _load_layouts(layouts) -> list[tuple[Layout, str, Path]]:
+    """(Layout, its text, its path) for each layout given (paths, Layouts, or a folder of *.toml)."""
+    items = [layouts] if isinstance(layouts, (str, os.PathLike, Layout)) else list(layouts)
+    out = []
+    for item in items:
+        if isinstance(item, Layout):
+            path = Path(item.source)
+            out.append((item, read_layout_text(path) if path.is_file() else item.to_toml(), path))
+            continue
+        path = Path(item)
+        if path.is_dir():
+            files = sorted(path.glob("*.toml"))
+            if not files:
+                raise LayoutError(f"{path}: no layout files (*.toml) in this folder")
+            out += _load_layouts(files)
+            continue
+        text = read_layout_text(path)
+        out.append((parse_layout(text, str(path)), text, path))
+    if not out:
+        raise LayoutError("no layout given")
+    names = [lay.name for lay, _, _ in out]
+    for name in names:
+        if names.count(name) > 1:
+            paths = ", ".join(str(p) for lay, _, p in out if lay.name == name)
+            raise LayoutError(f"{paths}: several layouts name the form {name!r}; every form of a batch needs its "
+                              "own [form] name")
+    return out
+
+
 def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: float | None = None,
                audit: float | None = None, audit_seed: int = 0, workers: int = 2,
-               progress: Callable | None = None, command: str = "formread read") -> BatchReport:
+               progress: Callable | None = None, command: str = "formread read", scheduler: str | None = None,
+               send_bytes: bool = False) -> BatchReport:
     """Read scanned forms into the ledger of ``outdir``.
 
     Parameters
     ----------
     inputs : paths of scan files or folders of scans
-    layout : the form's layout TOML (path), or a Layout already loaded from one
+    layout : the form's layout TOML (path), a Layout, a folder of layouts, or a list of those: with several
+        forms each page is identified first and read against the one layout it fits (formread.read.pagework)
     outdir : output folder (made when missing): ``ledger.sqlite``, ``pages/``, ``fields/``, ``digits/``,
-        ``readings.csv``, ``fields.jsonl``
+        ``readings.csv`` (``readings-<form>.csv`` per form when there are several), ``fields.jsonl``
     bundle : model bundle (Bundle or the path of a model file); the one in use by default
     threshold : acceptance threshold for every field (wins over the layout's; see formread.form.thresholds)
-    audit : share of the fields that would have been accepted sent to review as spot checks; else the
+    audit : share of the fields that would have been accepted sent to review as spot checks; else each
         layout's ``audit``, else ``DEFAULT_AUDIT`` (formread.read.audit)
     audit_seed : seed of the spot-check draw
-    workers : processes for the imaging step (1 = all in this process)
+    workers : processes for the page work (1 = all in this process)
     progress : ``progress(done, total, **figures)`` called after every page
     command : the command line, recorded in ``runs``
+    scheduler : address of a Dask scheduler (``tcp://host:8786``) to run the page work on its cluster
+        (formread.read.cluster; needs the ``distributed`` extra); the ledger stays written here
+    send_bytes : with ``scheduler``, send each scan's bytes to the workers instead of its path (for workers
+        that do not share the scans' folder)
 
     Returns
     -------
@@ -420,51 +287,66 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
     Raises
     ------
     LedgerError, LayoutError, RuleError, ModelFileError, ImageError, ParameterError
-        Before any page is read: unusable output folder, layout, rules or model, or a missing input.
+        Before any page is read: unusable output folder, layout, rules or model, an unreachable
+        scheduler, or a missing input.
     """
     check_param(isinstance(workers, int) and not isinstance(workers, bool) and 1 <= workers <= 64,
                 "workers", "an integer in 1..64", workers)
     t_start = time.perf_counter()
-    if isinstance(layout, Layout):
-        layout_path = Path(layout.source)
-        layout_text = read_layout_text(layout_path) if layout_path.is_file() else layout.to_toml()
-    else:
-        layout_path = Path(layout)
-        layout_text = read_layout_text(layout_path)
-        layout = load_layout(layout_path)
+    forms = _load_layouts(layout)
     if not isinstance(bundle, Bundle):
         bundle = load_bundle(bundle if bundle is not None else in_use_path())
-    fitted = bundle.fitted_threshold(layout.name)
-    thresholds = resolve_thresholds(layout, explicit=threshold, fitted=fitted)
-    run_threshold = form_threshold(layout, explicit=threshold, fitted=fitted).value
-    rate = audit_rate(layout, audit)
+    ctx = RunContext.for_bundle(bundle, layouts=tuple(lay for lay, _, _ in forms), thresholds={}, audit={},
+                                audit_seed=int(audit_seed))
+    run_thresholds = {}
+    for lay, _, _ in forms:
+        fitted = bundle.fitted_threshold(lay.name)
+        ctx.thresholds[lay.name] = resolve_thresholds(lay, explicit=threshold, fitted=fitted)
+        ctx.audit[lay.name] = audit_rate(lay, audit)
+        run_thresholds[lay.name] = form_threshold(lay, explicit=threshold, fitted=fitted).value
     scans = list_scans(inputs)
+    cluster = None
+    if scheduler is not None:
+        from .cluster import connect
+        cluster = connect(scheduler)              # an unreachable scheduler: one line before any page
     ledger = open_ledger(outdir)
     try:
-        _check_same_form(ledger, layout)
+        for lay, _, _ in forms:
+            _check_same_form(ledger, lay)
+        first, first_text, first_path = forms[0]
         # absolute paths: the review page finds the layout from wherever it is started
-        run_id = ledger.start_run(layout_path=str(layout_path.resolve()),
-                                  layout_sha256=hashlib.sha256(layout_text.encode("utf-8")).hexdigest(),
+        run_id = ledger.start_run(layout_path=str(first_path.resolve()),
+                                  layout_sha256=hashlib.sha256(first_text.encode("utf-8")).hexdigest(),
                                   model_path=str(bundle.path.resolve()), model_sha256=bundle.sha256,
-                                  threshold=run_threshold, command=command, layout_text=layout_text,
-                                  bundle=bundle.summary(), audit_rate=rate)
+                                  threshold=run_thresholds[first.name], command=command, layout_text=first_text,
+                                  bundle=bundle.summary(), audit_rate=ctx.audit[first.name])
+        for lay, text, path in forms:
+            ledger.add_run_form(run_id, form=lay.name, layout_path=str(path.resolve()),
+                                layout_sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(), layout_text=text,
+                                threshold=run_thresholds[lay.name], audit_rate=ctx.audit[lay.name])
         report = BatchReport(run_id=run_id, outdir=Path(outdir))
-        reader = _Reader(layout, bundle, thresholds, rate, audit_seed)
         try:
-            _run(scans, layout, ledger, reader, report, workers, progress, t_start)
+            if cluster is not None:
+                from .cluster import run_on_cluster
+                run_on_cluster(cluster, scans, ctx, ledger, report, progress, send_bytes=send_bytes,
+                               write=_write)
+            else:
+                _run(scans, ctx, ledger, report, workers, progress)
             ledger.finish_run(run_id)
         finally:
             write_outputs(ledger)
             report.seconds = time.perf_counter() - t_start
     finally:
         ledger.close()
+        if cluster is not None:
+            cluster.close()
     return report
 
 
 def _check_same_form(ledger: Ledger, layout: Layout) -> None:
     """Refuse to add pages read with another version of a form to a ledger (its tables would mix
     two sets of fields); a layout moved, re-commented or with other thresholds is the same form."""
-    for run_id, earlier in run_layouts(ledger).items():
+    for (run_id, _form), earlier in run_layouts(ledger).items():
         if earlier is not None and earlier.name == layout.name and earlier.structure() != layout.structure():
             raise LedgerError(f"{ledger.outdir}: read with another version of the layout {layout.name!r} (run "
                               f"{run_id}); read into a new output folder, or use the layout of that run")
@@ -480,17 +362,16 @@ class _Done:
         return self.value
 
 
-def _run(scans, layout: Layout, ledger: Ledger, reader: _Reader, report: BatchReport, workers: int,
-         progress, t_start: float) -> None:
+def _run(scans, ctx: RunContext, ledger: Ledger, report: BatchReport, workers: int, progress) -> None:
     known = ledger.known_pages()
     pin = workers > 1
     pool = None
     if pin:
-        ctx = multiprocessing.get_context("spawn")
-        pool = ProcessPoolExecutor(max_workers=workers, mp_context=ctx, initializer=_init_imaging,
-                                   initargs=(layout, True, os.getpid()))
+        mp = multiprocessing.get_context("spawn")
+        pool = ProcessPoolExecutor(max_workers=workers, mp_context=mp, initializer=_init_worker,
+                                   initargs=(ctx, True, os.getpid()))
     else:
-        _init_imaging(layout, False)
+        _init_worker(ctx, False)
     from threadpoolctl import threadpool_limits
 
     # with workers busy on the other cores, the main process's BLAS keeps to one thread
@@ -499,7 +380,7 @@ def _run(scans, layout: Layout, ledger: Ledger, reader: _Reader, report: BatchRe
     queued: set = set()
 
     def submit(item):
-        if isinstance(item, _Imaged):
+        if isinstance(item, PageWork):
             return _Done(item)
         page, h, load_s = item
         counts["pages"] += 1
@@ -508,15 +389,15 @@ def _run(scans, layout: Layout, ledger: Ledger, reader: _Reader, report: BatchRe
         report.stages["load"] = report.stages.get("load", 0.0) + load_s
         prior = known.get(h)
         if (prior is not None and prior != "failed") or h in queued:
-            return _Done(_Imaged(source=page.source, page_number=page.page_number, content_hash=h, status="known"))
+            return _Done(_known(page.source, page.page_number, h))
         queued.add(h)
         if pool is None:
-            return _Done(_image_page(page, h))
-        return pool.submit(_image_page, page, h)
+            return _Done(_work(page, h))
+        return pool.submit(_work, page, h)
 
     try:
-        for im in _ordered(_decoded_pages(scans), submit, window=3 * workers if pool else 1):
-            _one_page(im, known, ledger, reader, report)
+        for work in _ordered(decoded_pages(scans), submit, window=3 * workers if pool else 1):
+            _write(work, known, ledger, report)
             if progress is not None:
                 # total: pages met so far plus one per file not opened yet
                 total = counts["pages"] + max(0, counts["files"] - len(counts["sources"]))
@@ -526,6 +407,11 @@ def _run(scans, layout: Layout, ledger: Ledger, reader: _Reader, report: BatchRe
             limits.restore_original_limits()
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _known(source: str, page_number: int, content_hash: str) -> PageWork:
+    """A page already in the ledger (or met twice in this run): nothing to read."""
+    return PageWork(PageRow(content_hash=content_hash, source=source, page_number=page_number, status="known"))
 
 
 def _ordered(items, submit, window: int):
@@ -544,22 +430,24 @@ def _ordered(items, submit, window: int):
         yield res
 
 
-def _one_page(im: _Imaged, known: dict, ledger: Ledger, reader: _Reader, report: BatchReport) -> None:
+def _write(work: PageWork, known: dict, ledger: Ledger, report: BatchReport) -> None:
+    """Write one page's work to the ledger (once: a page already there is counted as skipped)."""
+    row = work.row
     report.pages += 1
-    report.imaging_seconds += im.seconds
-    for k, v in im.stages.items():
+    report.imaging_seconds += work.seconds - work.recognition_seconds
+    report.recognition_seconds += work.recognition_seconds
+    for k, v in work.stages.items():
         report.stages[k] = report.stages.get(k, 0.0) + float(v)
-    prior = known.get(im.content_hash)
-    if im.status == "known" or (prior is not None and prior != "failed"):
+    prior = known.get(row.content_hash)
+    if row.status == "known" or (prior is not None and prior != "failed"):
         report.skipped += 1
         if prior == "unregistered":
-            report.problems.append((im.source, im.page_number, prior, ledger.page_error(im.content_hash)))
+            report.problems.append((row.source, row.page_number, prior, ledger.page_error(row.content_hash)))
         return
-    row = reader.page_row(im, report)
     t0 = time.perf_counter()
     ledger.write_page(report.run_id, row)
     report.writing_seconds += time.perf_counter() - t0
-    known[im.content_hash] = row.status
+    known[row.content_hash] = row.status
     if row.status == "read":
         report.read += 1
     elif row.status == "unregistered":
@@ -567,7 +455,8 @@ def _one_page(im: _Imaged, known: dict, ledger: Ledger, reader: _Reader, report:
     else:
         report.failed += 1
     if row.status != "read":
-        report.problems.append((im.source, im.page_number, row.status, row.error))
+        report.problems.append((row.source, row.page_number, row.status, row.error))
     report.fields += len(row.fields)
     report.accepted += sum(f.decision == "accepted" for f in row.fields)
     report.review += sum(f.decision != "accepted" for f in row.fields)
+    report.audited += work.audited

@@ -12,7 +12,7 @@ from pathlib import Path
 from ..errors import DataError
 from ..form.rules import check_field, check_relations
 from ..ledger.store import ledger_path, open_ledger
-from .runs import run_layouts
+from .runs import page_layout, run_layouts
 from .score import score_readings, write_curve_png
 from .tune import choose_threshold
 
@@ -52,7 +52,7 @@ def _ledger_records(outdir):
     recs = [{"source": r["source"], "page_number": r["page_number"], "field": r["name"], "reading": r["reading"],
              "confidence": float(r["confidence"] or 0.0), "decision": r["decision"], "reason": r["reason"],
              "final_value": r["final_value"], "final_status": r["final_status"], "audit": bool(r["audit"]),
-             "run_id": r["run_id"]} for r in rows]
+             "run_id": r["run_id"], "form": r["form"]} for r in rows]
     return recs, run, layouts
 
 
@@ -65,8 +65,8 @@ def writer_mistakes(scored, run_of: dict, layouts: dict) -> dict:
     Parameters
     ----------
     scored : list of FieldScore (formread.read.score)
-    run_of : dict (source, page_number) -> run id
-    layouts : dict run id -> Layout or None
+    run_of : dict (source base name, page_number) -> (run id, form)
+    layouts : from formread.read.runs.run_layouts
 
     Returns
     -------
@@ -78,7 +78,8 @@ def writer_mistakes(scored, run_of: dict, layouts: dict) -> dict:
         pages.setdefault((f.source, f.page_number), []).append(f)
     out = {"fields": 0, "fields_accepted": 0, "relations": 0, "relations_accepted": 0, "list": []}
     for key, fields in pages.items():
-        layout = layouts.get(run_of.get((Path(key[0]).name, key[1])))
+        where = run_of.get((Path(key[0]).name, key[1]))
+        layout = None if where is None else page_layout(layouts, *where)
         if layout is None:
             continue
         compiled = layout.rules
@@ -118,7 +119,7 @@ def score_ledger(outdir, truth_path, *, curve_png=None, target: float = 0.005) -
         raise DataError(f"{outdir}: the ledger holds no field to score")
     report = score_readings(recs, truth_path)
     summary = report.summary()
-    run_of = {(Path(r["source"]).name, r["page_number"]): r["run_id"] for r in recs}
+    run_of = {(Path(r["source"]).name, r["page_number"]): (r["run_id"], r["form"]) for r in recs}
     wm = writer_mistakes(report.fields, run_of, layouts)
     summary["writer_mistakes"] = wm["fields"] + wm["relations"]
     summary["writer_mistakes_accepted"] = wm["accepted"]

@@ -1,5 +1,9 @@
 """The output files regenerated from the ledger: ``readings.csv`` and ``fields.jsonl``.
 
+A ledger of a mixed batch (pages of several forms) gets one table per form,
+``readings-<form>.csv``, and ``readings.csv`` lists every page with its form and status
+(its fields are in its form's table and in ``fields.jsonl``).
+
 Both are rebuilt from the ledger as a whole at the end of every run (and may be
 rebuilt at any time), each written atomically, so they always agree with the
 ledger, whatever happened to earlier runs.
@@ -12,7 +16,7 @@ import io
 import json
 from pathlib import Path
 
-from ..fileio import spreadsheet_cell
+from ..fileio import form_slug, spreadsheet_cell
 from ..ledger.store import Ledger, atomic_write
 
 __all__ = ["READINGS_CSV", "FIELDS_JSONL", "field_value", "field_status", "write_outputs"]
@@ -43,21 +47,28 @@ def _field_names(rows: list[dict]) -> list[str]:
     return list(seen)
 
 
-def readings_csv(ledger: Ledger) -> str:
+def readings_csv(ledger: Ledger, form: str | None = ..., pages=None, fields=None) -> str:
     """``readings.csv`` text: one row per page, a value and a status column per field (cells a
-    spreadsheet would run as a formula are quoted, see formread.fileio.spreadsheet_cell)."""
-    pages = ledger.page_rows()
-    fields = ledger.field_rows()
+    spreadsheet would run as a formula are quoted, see formread.fileio.spreadsheet_cell).
+
+    ``form``: only the pages read as that form (one table per form of a mixed batch); the default
+    ``...`` takes every page."""
+    pages = ledger.page_rows() if pages is None else pages
+    fields = ledger.field_rows() if fields is None else fields
+    if form is not ...:
+        pages = [p for p in pages if p["form"] == form]
+        fields = [f for f in fields if f["form"] == form]
     names = _field_names(fields)
     by_page: dict[int, dict[str, dict]] = {}
     for f in fields:
         by_page.setdefault(f["page_id"], {})[f["name"]] = f
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
-    w.writerow(["page_id", "source", "page_number", "page_status", "page_error"]
+    w.writerow(["page_id", "source", "page_number", "page_status", "page_error", "form"]
                + [c for n in names for c in (n, f"{n}_status")])
     for p in pages:
-        row = [p["id"], spreadsheet_cell(p["source"]), p["page_number"], p["status"], spreadsheet_cell(p["error"])]
+        row = [p["id"], spreadsheet_cell(p["source"]), p["page_number"], p["status"], spreadsheet_cell(p["error"]),
+               spreadsheet_cell(p["form"])]
         mine = by_page.get(p["id"], {})
         for n in names:
             f = mine.get(n)
@@ -76,8 +87,8 @@ def fields_jsonl(ledger: Ledger) -> str:
     for f in ledger.field_rows():
         rec = {
             "page_id": f["page_id"], "source": f["source"], "page_number": f["page_number"],
-            "field": f["name"], "kind": f["kind"], "reading": f["reading"], "confidence": f["confidence"],
-            "decision": f["decision"], "reason": f["reason"], "rules": f["rules"],
+            "form": f["form"], "field": f["name"], "kind": f["kind"], "reading": f["reading"],
+            "confidence": f["confidence"], "decision": f["decision"], "reason": f["reason"], "rules": f["rules"],
             "alternatives": f["alternatives"], "value": field_value(f), "status": field_status(f),
             "image": f["image_path"],
         }
@@ -95,6 +106,15 @@ def write_outputs(ledger: Ledger) -> dict[str, Path]:
     """
     out = {"readings": ledger.outdir / READINGS_CSV, "fields": ledger.outdir / FIELDS_JSONL}
     with ledger.write_lock():          # one consistent snapshot; writers of this folder take turns
-        atomic_write(out["readings"], readings_csv(ledger).encode("utf-8"))
+        pages, fields = ledger.page_rows(), ledger.field_rows()
+        forms = sorted({p["form"] for p in pages if p["form"] is not None})
+        if len(forms) > 1:             # a mixed batch: a table per form, and every page in readings.csv
+            for form in forms:
+                path = ledger.outdir / f"readings-{form_slug(form)}.csv"
+                atomic_write(path, readings_csv(ledger, form, pages, fields).encode("utf-8"))
+                out[f"readings:{form}"] = path
+            atomic_write(out["readings"], readings_csv(ledger, ..., pages, []).encode("utf-8"))
+        else:
+            atomic_write(out["readings"], readings_csv(ledger, ..., pages, fields).encode("utf-8"))
         atomic_write(out["fields"], fields_jsonl(ledger).encode("utf-8"))
     return out

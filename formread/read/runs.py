@@ -15,14 +15,23 @@ from pathlib import Path
 from ..errors import LayoutError
 from ..form.layout import Layout, parse_layout, read_layout_text
 
-__all__ = ["run_layout", "run_layouts"]
+__all__ = ["run_layout", "run_layouts", "page_layout"]
 
 log = logging.getLogger(__name__)
 
 
-def run_layout(ledger, run_id: int) -> Layout | None:
-    """The layout run ``run_id`` of ``ledger`` (an open formread.ledger.store.Ledger) read with; None
-    when it cannot be known."""
+def run_layout(ledger, run_id: int, form: str | None = None) -> Layout | None:
+    """The layout run ``run_id`` of ``ledger`` (an open formread.ledger.store.Ledger) read form ``form``
+    with (None: the run's first, or only, layout); None when it cannot be known."""
+    if form is not None:
+        row = ledger.conn.execute("SELECT layout_path, layout_text FROM run_forms WHERE run_id = ? AND form = ?",
+                                  (int(run_id), form)).fetchone()
+        if row is not None:
+            try:
+                return parse_layout(row["layout_text"], str(row["layout_path"]))
+            except LayoutError as e:
+                log.warning("%s; field sizes and rules unknown", e)
+                return None
     row = ledger.conn.execute("SELECT layout_path, layout_sha256, layout_text FROM runs WHERE id = ?",
                               (int(run_id),)).fetchone()
     if row is None:
@@ -47,6 +56,17 @@ def run_layout(ledger, run_id: int) -> Layout | None:
     return None
 
 
-def run_layouts(ledger) -> dict[int, Layout | None]:
-    """``{run id: layout}`` of every run of ``ledger``."""
-    return {int(r[0]): run_layout(ledger, int(r[0])) for r in ledger.conn.execute("SELECT id FROM runs")}
+def run_layouts(ledger) -> dict[tuple, Layout | None]:
+    """``{(run id, form): layout}`` of every run of ``ledger`` and every form it read (form None:
+    the run's first layout, as a ledger of an earlier release names it)."""
+    out: dict = {}
+    for (run_id,) in ledger.conn.execute("SELECT id FROM runs").fetchall():
+        out[(int(run_id), None)] = run_layout(ledger, int(run_id))
+    for run_id, form in ledger.conn.execute("SELECT run_id, form FROM run_forms").fetchall():
+        out[(int(run_id), form)] = run_layout(ledger, int(run_id), form)
+    return out
+
+
+def page_layout(layouts: dict, run_id: int, form: str | None) -> Layout | None:
+    """From :func:`run_layouts`: the layout a page of run ``run_id`` read as ``form`` was read with."""
+    return layouts.get((int(run_id), form)) or (layouts.get((int(run_id), None)) if form is None else None)

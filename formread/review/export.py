@@ -18,11 +18,11 @@ from __future__ import annotations
 import csv
 import io
 import json
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..errors import LedgerError
-from ..fileio import atomic_write, spreadsheet_cell
+from ..fileio import atomic_write, form_slug, spreadsheet_cell
 from ..ledger.store import open_ledger
 
 __all__ = ["HOW", "CSV_NAME", "JSONL_NAME", "ExportResult", "final_records", "export_final"]
@@ -41,6 +41,7 @@ class ExportResult:
     pages: int
     fields: int
     counts: dict
+    csv_paths: list = field(default_factory=list)   # one table per form of a mixed batch
 
 
 def _how(decision: str, final_status: str | None) -> str:
@@ -61,7 +62,7 @@ def _value(how: str, reading: str | None, final_value: str | None) -> str:
 
 _RECORDS_SQL = (
     "SELECT f.id, f.page_id, f.name, f.reading, f.confidence, f.reason, f.decision, f.final_value, "
-    "f.final_status, p.source, p.page_number, p.status AS page_status, r.model_sha256, "
+    "f.final_status, p.source, p.page_number, p.status AS page_status, p.form, r.model_sha256, "
     "coalesce(f.threshold, r.threshold) AS threshold, "
     "(SELECT v.reviewer FROM reviews v WHERE v.field_id = f.id ORDER BY v.id DESC LIMIT 1) AS reviewer, "
     "(SELECT v.at FROM reviews v WHERE v.field_id = f.id ORDER BY v.id DESC LIMIT 1) AS reviewed_at "
@@ -75,7 +76,7 @@ def _snapshot(outdir: str | Path) -> tuple[list[dict], list[dict]]:
         conn = led.conn
         conn.execute("BEGIN")
         pages = [dict(r) for r in conn.execute(
-            "SELECT id AS page_id, source, page_number, status AS page_status FROM pages ORDER BY id")]
+            "SELECT id AS page_id, source, page_number, status AS page_status, form FROM pages ORDER BY id")]
         rows = conn.execute(_RECORDS_SQL).fetchall()
         conn.execute("COMMIT")
     records = []
@@ -83,7 +84,7 @@ def _snapshot(outdir: str | Path) -> tuple[list[dict], list[dict]]:
         how = _how(r["decision"], r["final_status"])
         records.append({
             "page_id": r["page_id"], "source": r["source"], "page_number": r["page_number"],
-            "page_status": r["page_status"], "field": r["name"], "value": _value(how, r["reading"], r["final_value"]),
+            "page_status": r["page_status"], "form": r["form"], "field": r["name"], "value": _value(how, r["reading"], r["final_value"]),
             "how": how, "reading": r["reading"], "confidence": r["confidence"], "reason": r["reason"],
             "reviewer": r["reviewer"], "reviewed_at": r["reviewed_at"],
             "model_sha256": r["model_sha256"], "threshold": r["threshold"],
@@ -106,8 +107,10 @@ def final_records(outdir: str | Path) -> list[dict]:
 def export_final(outdir: str | Path, out_dir: str | Path | None = None) -> ExportResult:
     """Write ``final_values.csv`` and ``final_values.jsonl`` into ``out_dir`` (default: ``outdir``).
 
-    The CSV has one row per page (failed pages too, with no values): ``page_id, source, page_number, page_status``, then for each
-    field name (in the order first met) a value column ``<name>`` and a ``<name>_how`` column.
+    The CSV has one row per page (failed pages too, with no values): ``page_id, source, page_number,
+    page_status, form``, then for each field name (in the order first met) a value column ``<name>``
+    and a ``<name>_how`` column.  A mixed batch gets one table per form, ``final_values-<form>.csv``;
+    the JSON Lines file holds every field.
 
     Raises
     ------
@@ -121,31 +124,40 @@ def export_final(outdir: str | Path, out_dir: str | Path | None = None) -> Expor
     except OSError as e:
         raise LedgerError(f"{out}: cannot create the export folder ({e.strerror})") from None
 
+    counts = {h: 0 for h in HOW}
+    for rec in records:
+        counts[rec["how"]] += 1
+    forms = sorted({p["form"] for p in page_rows if p["form"] is not None})
+    tables = {CSV_NAME: _table(page_rows, records)} if len(forms) <= 1 else \
+        {f"final_values-{form_slug(form)}.csv": _table([p for p in page_rows if p["form"] == form],
+                                                        [r for r in records if r["form"] == form]) for form in forms}
+    lines = "".join(json.dumps(rec, ensure_ascii=False) + "\n" for rec in records)
+    try:
+        for name, text in tables.items():
+            atomic_write(out / name, text)
+        atomic_write(out / JSONL_NAME, lines)
+    except OSError as e:
+        raise LedgerError(f"{out}: cannot write the export ({e.strerror or e})") from None
+    return ExportResult(out / next(iter(tables)), out / JSONL_NAME, len(page_rows), len(records), counts,
+                        [out / n for n in tables])
+
+
+def _table(page_rows: list[dict], records: list[dict]) -> str:
+    """One CSV table: a row per page, a value and a ``_how`` column per field (in the order first met)."""
     names: list[str] = []
     pages = {p["page_id"]: dict(p, source=spreadsheet_cell(p["source"])) for p in page_rows}
-    counts = {h: 0 for h in HOW}
     for rec in records:
         if rec["field"] not in names:
             names.append(rec["field"])
         page = pages[rec["page_id"]]
-        page[rec["field"]] = rec["value"]
+        page[rec["field"]] = spreadsheet_cell(rec["value"])
         page[rec["field"] + "_how"] = rec["how"]
-        counts[rec["how"]] += 1
-
     buf = io.StringIO()
-    header = ["page_id", "source", "page_number", "page_status"]
+    header = ["page_id", "source", "page_number", "page_status", "form"]
     for n in names:
         header += [n, n + "_how"]
     w = csv.DictWriter(buf, fieldnames=header, restval="", lineterminator="\n")
     w.writeheader()
     for page in pages.values():
         w.writerow(page)
-    lines = "".join(json.dumps(rec, ensure_ascii=False) + "\n" for rec in records)
-
-    csv_path, jsonl_path = out / CSV_NAME, out / JSONL_NAME
-    try:
-        atomic_write(csv_path, buf.getvalue())
-        atomic_write(jsonl_path, lines)
-    except OSError as e:
-        raise LedgerError(f"{out}: cannot write the export ({e.strerror or e})") from None
-    return ExportResult(csv_path, jsonl_path, len(pages), len(records), counts)
+    return buf.getvalue()

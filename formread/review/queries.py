@@ -176,11 +176,11 @@ def value_warnings(ledger: Ledger, field_id: int) -> list[str]:
     Page values are the final values where decided, else the readings.
     """
     conn = ledger.conn
-    row = conn.execute("SELECT f.name, f.page_id, f.final_value, f.final_status, p.run_id FROM fields f "
+    row = conn.execute("SELECT f.name, f.page_id, f.final_value, f.final_status, p.run_id, p.form FROM fields f "
                        "JOIN pages p ON p.id = f.page_id WHERE f.id = ?", (int(field_id),)).fetchone()
     if row is None or row["final_status"] not in ("confirmed", "corrected"):
         return []
-    layout = run_layout(ledger, row["run_id"])
+    layout = run_layout(ledger, row["run_id"], row["form"])
     if layout is None or row["name"] not in layout.rules.fields:
         return []
     compiled = layout.rules
@@ -199,7 +199,8 @@ def value_warnings(ledger: Ledger, field_id: int) -> list[str]:
 
 _FIELD_SQL = """
 SELECT f.*, p.source, p.page_number, p.status AS page_status, p.image_path AS page_image,
-       p.created AS page_created, r.id AS run, r.model_path, r.model_sha256, r.threshold AS run_threshold
+       p.created AS page_created, p.form AS form, r.id AS run, r.model_path, r.model_sha256,
+       r.threshold AS run_threshold
 FROM fields f JOIN pages p ON p.id = f.page_id JOIN runs r ON r.id = p.run_id
 WHERE f.id = ?
 """
@@ -239,7 +240,7 @@ def field_detail(ledger: Ledger, field_id: int) -> dict:
         When no field has this id.
     """
     row = _field_row(ledger, field_id)
-    layout = run_layout(ledger, row["run"])
+    layout = run_layout(ledger, row["run"], row["form"])
     threshold = _threshold(row)
     outdir = ledger.outdir
     return {
@@ -369,7 +370,7 @@ def save_decision(ledger: Ledger, field_id: int, *, action: str, version: int, r
     with ledger.transaction() as conn:
         row = _field_row(ledger, field_id)
         where = f"{ledger.path}: page {row['page_id']} field {row['name']!r}"
-        limit = field_limit(run_layout(ledger, row["run"]), row["name"], row["max_digits"])
+        limit = field_limit(run_layout(ledger, row["run"], row["form"]), row["name"], row["max_digits"])
         recorded, final_value, final_status = _final(action, value, row["reading"], row["name"], limit, where)
         old = row["final_value"] if row["final_status"] is not None else row["reading"]
         cur = conn.execute("UPDATE fields SET final_value = ?, final_status = ?, version = version + 1 "
