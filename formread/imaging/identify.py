@@ -44,7 +44,7 @@ __all__ = ["Identification", "Evidence", "identify_form", "line_share", "STATUSE
 log = logging.getLogger(__name__)
 
 STATUSES = ("identified", "unknown", "ambiguous")
-MAX_RESIDUAL_MM = 0.5     # RMS of the fitted marks; correct pages measured under 0.25 mm
+MAX_RESIDUAL_MM = 0.5     # RMS of the fitted marks (synthetic and demo scans: under 0.05 mm; margin for real ones)
 MIN_LINES = 0.85          # share of the printed lines' samples with ink nearby
 MIN_HEADER = 0.8          # match with the header fingerprint (fingerprint.fingerprint_match)
 MIN_HEADER_INK = 0.01     # ink share of a header region without a fingerprint
