@@ -102,6 +102,7 @@ ALTER TABLE runs ADD COLUMN audit_rate REAL NOT NULL DEFAULT 0;  -- the share of
 """),
     (4, "several forms in one batch: each page's form, and every layout a run read with", """
 ALTER TABLE pages ADD COLUMN form TEXT;                    -- the form (layout name) the page was read as; NULL: none
+ALTER TABLE pages ADD COLUMN turn_deg INTEGER;             -- quarter turn (counter-clockwise) undone to read it
 CREATE TABLE IF NOT EXISTS run_forms (
     run_id        INTEGER NOT NULL REFERENCES runs(id),
     form          TEXT NOT NULL,                           -- the layout's [form] name

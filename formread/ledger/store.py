@@ -125,6 +125,7 @@ class PageRow:
     image_png: bytes | None = None
     fields: list[FieldRow] = field(default_factory=list)
     form: str | None = None
+    turn_deg: int | None = None
 
 
 def check_output_folder(outdir: Path) -> Path:
@@ -234,10 +235,12 @@ class Ledger:
                 atomic_write(self.outdir / image_path, page.image_png)
             c.execute(
                 "INSERT INTO pages (id, run_id, content_hash, source, page_number, status, error, residual_mm,"
-                " rotated_180, skew_deg, image_path, created, form) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                " rotated_180, skew_deg, image_path, created, form, turn_deg)"
+                " VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
                 (page_id, run_id, page.content_hash, page.source, int(page.page_number), page.status, page.error,
                  _opt_float(page.residual_mm), None if page.rotated_180 is None else int(bool(page.rotated_180)),
-                 _opt_float(page.skew_deg), image_path, utc_now(), page.form))
+                 _opt_float(page.skew_deg), image_path, utc_now(), page.form,
+                 None if page.turn_deg is None else int(page.turn_deg)))
             for f in page.fields:
                 self._insert_field(page_id, f)
             return page_id

@@ -225,6 +225,7 @@ def read_page(page, content_hash: str, ctx: RunContext) -> PageWork:
     reg = pd.registration
     row.image_png, scale = _page_png(reg.image if reg.image is not None else page.gray, page.dpi)
     row.residual_mm, row.rotated_180, row.skew_deg = _opt(reg.residual_mm), _opt(reg.rotated_180), _opt(reg.skew_deg)
+    row.turn_deg = int(reg.turn_deg)
     imaged = time.perf_counter()
     evidence = recognise_page(pd.fields, ctx.bundle)
     readings = decode_page(evidence, layout, confidence=ctx.bundle.decoder, thresholds=thresholds)

@@ -30,7 +30,7 @@ from formread.form.layout import load_layout
 from formread.imaging.binarize import threshold_otsu
 from formread.imaging.load import load_pages
 from formread.learn.datasets import mnist_raw, mnist_split_indices
-from formread.paths import demo_dir
+from formread.store import demo_forms as demo_dir
 
 PAGES = 2     # pages per style set: the same seed, so the same values and base writers in each
 
