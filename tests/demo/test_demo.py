@@ -203,7 +203,8 @@ def test_outdir_rules(tmp_path):
 
 def test_layout_follows_the_contract():
     doc = tomllib.loads(demo_layout_path().read_text())
-    assert doc["form"]["binarize"] == "auto" and doc["form"]["threshold"] == 0.8962
+    assert doc["form"]["binarize"] == "auto" and doc["form"]["target_error"] == 0.005
+    assert "threshold" not in doc["form"]   # the bundle's fitted decisions give the threshold
     assert {"x", "y", "w", "h"} == set(doc["form"]["header"])
     assert len(doc["marks"]) == 4
     fields = {f["name"]: f for f in doc["fields"]}
@@ -218,7 +219,7 @@ def test_layout_follows_the_contract():
     assert [f.name for f in lay.fields] == list(fields)
     assert lay.header is not None and len(lay.marks) == 4
     assert dict(lay.fields[1].rules)["check"] == "luhn"
-    assert lay.binarize == "auto" and lay.threshold == pytest.approx(0.8962)
+    assert lay.binarize == "auto" and lay.threshold is None and lay.target_error == pytest.approx(0.005)
     # the card printer reads the same file with the same parser
     assert read_card_layout() == lay
 
