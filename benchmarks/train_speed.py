@@ -11,9 +11,15 @@ Each figure is the best of several short timing windows, and the windows of all 
 and PyTorch) are taken in turns, so that other work on a shared machine disturbs them alike.
 ``--json`` prints one JSON object:
 {"numpy": {...}, "pytorch": {...} or null, "ratio": {"train_b64", "train_b128", "infer_b256"},
- "peak_gflops": g} (ratios null without PyTorch).
+ "peak_gflops": g, "environment": {...}} (ratios null without PyTorch). The environment names the
+CPU model, the BLAS library, its version and the kernel it chose, and the two OpenBLAS settings
+that steer that choice (``OPENBLAS_CORETYPE``, ``OPENBLAS_L2_SIZE``) as this process saw them.
 
-Usage: python benchmarks/train_speed.py [--json] [--seconds S] [--threads T]
+``--settings both`` runs the whole benchmark twice, each in a child process: once with the
+environment as it is and once with those two variables removed (in the child only; nothing else
+is changed), and prints both (``--json``: {"runs": [as_is, unset]}).
+
+Usage: python benchmarks/train_speed.py [--json] [--seconds S] [--threads T] [--settings as-is|unset|both]
 """
 
 from __future__ import annotations
@@ -22,6 +28,8 @@ import argparse
 import contextlib
 import json
 import os
+import platform
+import subprocess
 import sys
 import time
 
@@ -35,6 +43,41 @@ from formread.nn.parallel import DataParallel
 ARCH = "lenet5"
 TRAIN_BATCHES = (32, 64, 128)
 INFER_BATCH = 256
+
+
+OPENBLAS_SETTINGS = ("OPENBLAS_CORETYPE", "OPENBLAS_L2_SIZE")
+
+
+def environment() -> dict:
+    """What the figures depend on beyond the code: CPU, BLAS library and kernel, OpenBLAS settings."""
+    from threadpoolctl import threadpool_info
+    cpu = platform.processor() or platform.machine()
+    try:
+        with open("/proc/cpuinfo", encoding="utf-8", errors="replace") as f:
+            cpu = next((ln.split(":", 1)[1].strip() for ln in f if ln.startswith("model name")), cpu)
+    except OSError:
+        pass
+    blas = [{k: i.get(k) for k in ("internal_api", "version", "architecture", "threading_layer",
+                                    "num_threads")} for i in threadpool_info() if i.get("user_api") == "blas"]
+    return {"cpu_model": cpu, "cores": os.cpu_count(), "python": platform.python_version(),
+            "numpy": np.__version__, "blas": blas,
+            "settings": {k: os.environ.get(k) for k in OPENBLAS_SETTINGS}}
+
+
+def run_settings(argv: list[str], which: list[str]) -> list[dict]:
+    """Run this benchmark with --json in a child process per setting ("as-is" / "unset")."""
+    runs = []
+    for setting in which:
+        env = dict(os.environ)
+        if setting == "unset":
+            for k in OPENBLAS_SETTINGS:
+                env.pop(k, None)
+        out = subprocess.run([sys.executable, __file__, *argv, "--json", "--settings", "as-is"],
+                             env=env, check=True, capture_output=True, text=True).stdout
+        res = json.loads(out)
+        res["setting"] = setting
+        runs.append(res)
+    return runs
 
 
 def best_rate(step, images_per_call: int, seconds: float, windows: int = 5,
@@ -247,7 +290,19 @@ def main(argv=None) -> int:
     ap.add_argument("--seconds", type=float, default=2.0, help="timing time per figure")
     ap.add_argument("--threads", type=int, default=min(os.cpu_count() or 1, 2),
                     help="cores to use (numpy: processes/BLAS threads; PyTorch: set_num_threads)")
+    ap.add_argument("--settings", choices=("as-is", "unset", "both"), default="as-is",
+                    help="the OpenBLAS settings to run with (unset/both: in child processes)")
     args = ap.parse_args(argv)
+    if args.settings != "as-is":
+        child = ["--seconds", str(args.seconds), "--threads", str(args.threads)]
+        runs = run_settings(child, ["as-is", "unset"] if args.settings == "both" else ["unset"])
+        if args.json:
+            print(json.dumps({"runs": runs}))
+            return 0
+        for r in runs:
+            print_report(r, f"OpenBLAS settings {r['setting']}")
+            print()
+        return 0
     peak, peak1 = peak_gflops(args.threads, args.seconds)
     res_np, res_t = bench(args.threads, args.seconds)
     fwd, train = flops_per_image(ARCHITECTURES[ARCH])
@@ -258,13 +313,26 @@ def main(argv=None) -> int:
     keys = ("train_b64", "train_b128", f"infer_b{INFER_BATCH}")
     ratio = {k: (res_np[k] / res_t[k] if res_t else None) for k in keys}
     res_np.update(architecture=ARCH, threads=args.threads, peak_gflops_1thread=peak1)
-    out = {"numpy": res_np, "pytorch": res_t, "ratio": ratio, "peak_gflops": peak}
+    out = {"numpy": res_np, "pytorch": res_t, "ratio": ratio, "peak_gflops": peak,
+           "environment": environment()}
     if args.json:
         print(json.dumps(out))
         return 0
-    print(f"architecture {ARCH}, 28x28 inputs, {args.threads} core(s); "
+    print_report(out, "OpenBLAS settings as-is")
+    return 0
+
+
+def print_report(out: dict, title: str) -> None:
+    """The human-readable table of one run (``out`` as printed by --json)."""
+    res_np, res_t, peak, env = out["numpy"], out["pytorch"], out["peak_gflops"], out["environment"]
+    peak1, threads = res_np["peak_gflops_1thread"], res_np["threads"]
+    fwd, train = res_np["flops_per_image_forward"], res_np["flops_per_image_train"]
+    kernels = ", ".join(f"{b['internal_api']} {b['version']} kernel {b['architecture']}" for b in env["blas"])
+    print(f"{title}: {env['cpu_model']}, {env['cores']} cores; {kernels or 'BLAS unknown'}; "
+          + ", ".join(f"{k}={v if v is not None else '(unset)'}" for k, v in env["settings"].items()))
+    print(f"architecture {ARCH}, 28x28 inputs, {threads} core(s); "
           "best of 5 timing windows, numpy and PyTorch in turns")
-    print(f"matmul peak (float32, 2048^3): {peak:.1f} GFLOP/s on {args.threads} core(s), "
+    print(f"matmul peak (float32, 2048^3): {peak:.1f} GFLOP/s on {threads} core(s), "
           f"{peak1:.1f} on one")
     print(f"FLOPs per image: forward {fwd / 1e6:.3f} M, training {train / 1e6:.3f} M")
     print(f"{'':24}{'numpy':>12}{'pytorch':>12}{'ratio':>8}")
@@ -292,7 +360,6 @@ def main(argv=None) -> int:
           f"inference b256 {res_np['peak_fraction_infer_b256']:.2f}")
     if res_t is None:
         print("PyTorch not importable: no comparison")
-    return 0
 
 
 if __name__ == "__main__":
