@@ -424,10 +424,10 @@ def _ordered(items, submit, window: int):
             break
     while pending:
         res = pending.popleft().result()
+        yield res     # written first: in this process, the next page's work would otherwise come before it
         nxt = next(it, None)
         if nxt is not None:
             pending.append(submit(nxt))
-        yield res
 
 
 def _write(work: PageWork, known: dict, ledger: Ledger, report: BatchReport) -> None:

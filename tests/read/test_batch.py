@@ -10,6 +10,7 @@ from PIL import Image
 from readkit import demo_layout, readings, tiny_model, write_copies
 
 import formread.read.batch as batch
+import formread.read.pagework as pagework
 from formread.ledger.fieldfile import load_digits, load_field_file
 from formread.read.batch import list_scans, read_batch
 
@@ -82,13 +83,12 @@ def test_threshold_from_option_else_layout_else_default(tmp_path, model):
     no_thr = tmp_path / "plain.toml"
     no_thr.write_text("\n".join(line for line in text.splitlines() if not line.startswith("threshold")) + "\n")
     read_batch(scans, no_thr, tmp_path / "b", bundle=model, workers=1)
-    from formread.form.layout import load_layout
-
-    layout_thr = load_layout(demo_layout()).threshold
-    read_batch(scans, demo_layout(), tmp_path / "c", bundle=model, workers=1)
+    with_thr = tmp_path / "with_threshold.toml"    # the demo layout names a target; this one a threshold
+    with_thr.write_text(text.replace("[form]\n", "[form]\nthreshold = 0.77\n", 1))
+    read_batch(scans, with_thr, tmp_path / "c", bundle=model, workers=1)
     assert _rows(tmp_path / "a", "SELECT threshold, model_path FROM runs") == [(0.42, str(model))]
     assert _rows(tmp_path / "b", "SELECT threshold FROM runs") == [(0.9,)]
-    assert _rows(tmp_path / "c", "SELECT threshold FROM runs") == [(layout_thr,)]
+    assert _rows(tmp_path / "c", "SELECT threshold FROM runs") == [(0.77,)]
 
 
 def test_digit_images_follow_the_reading(tmp_path, model):
@@ -110,7 +110,7 @@ def test_digit_images_follow_the_reading(tmp_path, model):
 def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, model, monkeypatch):
     scans = write_copies(tmp_path / "scans", 4)
     out = tmp_path / "out"
-    real = batch.decode_page
+    real = pagework.decode_page
     calls = []
 
     def flaky(*a, **k):
@@ -119,13 +119,13 @@ def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, mo
             raise RuntimeError("injected bug")
         return real(*a, **k)
 
-    monkeypatch.setattr(batch, "decode_page", flaky)
+    monkeypatch.setattr(pagework, "decode_page", flaky)
     with pytest.raises(RuntimeError, match="injected"):
         read_batch(scans, demo_layout(), out, bundle=model, workers=1)
     assert _rows(out, "SELECT count(*) FROM pages") == [(2,)]
     assert _rows(out, "SELECT count(*) FROM fields") == [(12,)]
     assert len(list(csv.DictReader((out / "readings.csv").read_text().splitlines()))) == 2
-    monkeypatch.setattr(batch, "decode_page", real)
+    monkeypatch.setattr(pagework, "decode_page", real)
     rep = read_batch(scans, demo_layout(), out, bundle=model, workers=1)
     assert (rep.read, rep.skipped) == (2, 2)
     assert _rows(out, "SELECT count(*) FROM pages") == [(4,)]

@@ -26,7 +26,7 @@ def test_csv_has_a_value_and_status_column_per_field(tmp_path):
         paths = write_outputs(led)
     rows = list(csv.DictReader(paths["readings"].read_text().splitlines()))
     assert list(rows[0])[:5] == ["page_id", "source", "page_number", "page_status", "page_error"]
-    assert list(rows[0])[5:] == ["plot", "plot_status", "member", "member_status"]
+    assert list(rows[0])[5:] == ["form", "plot", "plot_status", "member", "member_status"]
     assert [(r["source"], r["page_status"]) for r in rows] == [
         ("a.png", "read"), ("b.pdf", "unregistered"), ("notes.txt", "failed")]
     assert (rows[0]["plot"], rows[0]["plot_status"], rows[0]["member"], rows[0]["member_status"]) == \

@@ -5,7 +5,7 @@ import pytest
 from scipy.stats import binomtest
 
 from formread.errors import ParameterError
-from formread.read.tune import choose_threshold, clopper_pearson_upper, error_review_curve
+from formread.read.tune import choose_threshold, clopper_pearson_upper, error_review_curve, fit_error_model
 
 
 @pytest.mark.parametrize("k,n", [(0, 10), (1, 10), (3, 50), (5, 1000), (17, 200), (9, 10)])
@@ -82,3 +82,17 @@ def test_bad_inputs():
         choose_threshold([], [])
     with pytest.raises(ParameterError):
         choose_threshold([0.5], [1], criterion="median")
+
+
+def test_the_error_model_fits_confidences_far_from_calibrated():
+    # Invented confidences that overstate: P(right) = c**8 (c = 0.98 is right only 85% of the time).
+    # An undamped Newton fit diverged on these (a, b = -321, 401); the fitted model must follow the
+    # observed error where the fields are.
+    rng = np.random.default_rng(0)
+    conf = rng.uniform(0.3, 1.0, 4000)
+    wrong = rng.uniform(size=4000) >= conf ** 8
+    a, b = fit_error_model(conf, wrong)
+    assert np.isfinite([a, b]).all() and abs(a) < 20 and abs(b) < 20
+    band = (conf > 0.95) & (conf < 0.99)
+    predicted = 1 / (1 + np.exp(-(a + b * np.log10(1 - conf[band]))))
+    assert 0.5 < predicted.mean() / wrong[band].mean() < 2   # two numbers for a curve: near, not exact

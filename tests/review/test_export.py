@@ -37,7 +37,7 @@ def test_export_holds_final_values_and_how(ledger, tmp_path):
     with open(res.csv_path, newline="") as f:
         rows = list(csv.DictReader(f))
     assert [r["page_number"] for r in rows] == ["1", "2", "3"]
-    assert list(rows[0])[:6] == ["page_id", "source", "page_number", "page_status", "plot_number",
+    assert list(rows[0])[:7] == ["page_id", "source", "page_number", "page_status", "form", "plot_number",
                                  "plot_number_how"]
     r0, r1, r2 = rows
     assert (r0["current_reading"], r0["current_reading_how"]) == ("03247", "corrected")
