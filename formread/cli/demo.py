@@ -3,10 +3,15 @@
 from __future__ import annotations
 
 import json
+from enum import Enum
 from pathlib import Path
 from typing import Optional
 
 import typer
+
+from ..demo.fill import HALVES
+from ..demo.make import FORMS
+from ..demo.styles import STYLES
 
 from .common import EXIT_PAGES_FAILED, ProgressBar, edge, fail
 from .read import render_batch, render_summary
@@ -79,20 +84,24 @@ def demo_cmd(
         raise typer.Exit(EXIT_PAGES_FAILED)
 
 
+# the choices, listed by --help and checked by typer (exit 2 for anything else)
+Style = Enum("Style", {name: name for name in STYLES}, type=str)
+FormName = Enum("FormName", {name: name for name in FORMS}, type=str)
+Half = Enum("Half", {name: name for name in HALVES}, type=str)
+
+
 @demo_app.command("make")
 @edge
 def make_cmd(
     outdir: Path = typer.Argument(..., help="New or empty folder (or an earlier demo set, replaced)."),
     count: int = typer.Option(30, "--count", "-n", help="Number of pages."),
     seed: int = typer.Option(7, "--seed", help="Seed: the same count and seed give the same files."),
-    style: str = typer.Option("demo", "--style",
-                              help="Writers and scanners: demo, hairline, ballpoint, felt-tip, slanted, "
-                                   "small, large, grey-pen, blotchy, blurry, bilevel, jpeg-low or mixed."),
-    form: str = typer.Option("meter", "--form", help="Which form: meter (water-meter card) or slip "
-                                                     "(produce delivery slip)."),
-    half: Optional[str] = typer.Option(None, "--half",
-                                       help="Draw the handwriting from one fixed half (a or b) of the "
-                                            "MNIST test part only."),
+    style: Style = typer.Option("demo", "--style", help="Writers and scanners (formread/demo/styles.py)."),
+    form: FormName = typer.Option("meter", "--form", help="Which form: meter (water-meter card) or slip "
+                                                          "(produce delivery slip)."),
+    half: Optional[Half] = typer.Option(None, "--half",
+                                        help="Draw the handwriting from one fixed half of the MNIST test "
+                                             "part only."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ):
     """Make a fresh demo set: filled and scanned demo forms, their layout.toml and truth.jsonl.
@@ -102,7 +111,8 @@ def make_cmd(
     from ..demo import make_demo
 
     bar = ProgressBar("making forms", unit="pages", enabled=not quiet)
-    info = make_demo(outdir, count=count, seed=seed, style=style, form=form, half=half, progress=bar)
+    info = make_demo(outdir, count=count, seed=seed, style=style.value, form=form.value,
+                     half=None if half is None else half.value, progress=bar)
     typer.echo(f"{info['pages']} pages in {info['files']} files, {info['fields']} fields, "
                f"{info['mistakes']} forms with a writer's mistake, in {outdir}/ ({info['seconds']} s)")
     typer.echo(f"read them: formread read {outdir}/scan_* --layout {outdir}/layout.toml --out OUT")

@@ -11,6 +11,7 @@ from typing import Optional
 import typer
 
 from ..errors import FormreadError, one_line
+from ..learn.datasets import PARTS
 from ..learn.recipe import Recipe, train_recipe
 from ..nn.model import ARCHITECTURES
 from ..nn.train import OPTIMIZERS, SCHEDULES
@@ -45,6 +46,7 @@ _CFG, _AUG = _RECIPE.config, _RECIPE.config.augment
 Arch = Enum("Arch", {name: name for name in sorted(ARCHITECTURES)}, type=str)
 Optimizer = Enum("Optimizer", {name: name for name in OPTIMIZERS}, type=str)
 Schedule = Enum("Schedule", {name: name for name in SCHEDULES}, type=str)
+Part = Enum("Part", {name: name for name in PARTS}, type=str)
 
 
 @edge
@@ -149,7 +151,7 @@ def evaluate_cmd(
     model_path: Path = typer.Argument(..., metavar="MODEL", help="Model file (.npz)."),
     dataset: str = typer.Option("default", "--dataset", "-d",
                                 help="default, mnist, digits, samples:DIR or npz:FILE."),
-    part: str = typer.Option("test", "--part", help="train, test or all."),
+    part: Part = typer.Option("test", "--part", help="Which part of the dataset."),
     as_json: bool = typer.Option(False, "--json", help="Machine-readable output."),
 ):
     """Accuracy, per-class precision and recall, confusion matrix and calibration of MODEL."""
@@ -158,7 +160,7 @@ def evaluate_cmd(
     from ..read.bundle import load_bundle
 
     bundle = load_bundle(model_path)
-    data = load_named(dataset, part)
+    data = load_named(dataset, part.value)
     rep = evaluate_bundle(bundle, data.x, data.y)
     rep["dataset"] = data.name
     rep["model"] = str(model_path)

@@ -369,8 +369,11 @@ def test_cli_makes_a_styled_set_and_lists_every_style(tmp_path):
     assert res.exit_code == 0, res.output
     truth = _truth(tmp_path / "z")
     assert {(r["style"], r["form"], r["half"]) for r in truth} == {("felt-tip", "slip", "b")}
-    help_text = " ".join(CliRunner().invoke(app, ["demo", "make", "--help"]).stdout.split())
+    help_res = CliRunner().invoke(app, ["demo", "make", "--help"], terminal_width=400, env={"COLUMNS": "400"})
+    help_text = " ".join(help_res.stdout.split())
     assert all(s in help_text for s in STYLES)
+    bad = CliRunner().invoke(app, ["demo", "make", "--style", "crayon", str(tmp_path / "w")])
+    assert bad.exit_code == 2 and not (tmp_path / "w").exists()     # a usage error: choices are checked first
 
 
 def test_draw_writer_changes_only_its_own_ranges():
