@@ -67,7 +67,7 @@ class ProgressBar:
         self._task = None
         if enabled and getattr(self.stream, "isatty", lambda: False)():
             from rich.console import Console
-            from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn)
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
             self._rich = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                                   TextColumn("{task.fields[rate]}"), TimeRemainingColumn(),

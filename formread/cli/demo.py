@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import Optional
 
 import typer
 
@@ -49,9 +48,9 @@ def demo_cmd(
     """
     if ctx.invoked_subcommand is not None:
         return
-    from ..store import demo_forms
     from ..read.batch import read_batch
     from ..read.evaluate import score_ledger
+    from ..store import demo_forms
 
     folder = demo_forms()
     layout, truth = folder / "layout.toml", folder / "truth.jsonl"
@@ -90,7 +89,7 @@ def make_cmd(
                                    "small, large, grey-pen, blotchy, blurry, bilevel, jpeg-low or mixed."),
     form: str = typer.Option("meter", "--form", help="Which form: meter (water-meter card) or slip "
                                                      "(produce delivery slip)."),
-    half: Optional[str] = typer.Option(None, "--half",
+    half: str | None = typer.Option(None, "--half",
                                        help="Draw the handwriting from one fixed half (a or b) of the "
                                             "MNIST test part only."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),

@@ -4,7 +4,6 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Optional
 
 import typer
 
@@ -39,7 +38,7 @@ def _page(scan: Path, number: int):
 def proof_cmd(
     scan: Path = typer.Argument(..., help="Scanned form (PNG, TIFF, JPEG or PDF)."),
     layout_file: Path = typer.Option(..., "--layout", "-l", help="Layout file (TOML) to check."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o",
+    out: Path | None = typer.Option(None, "--out", "-o",
                                        help="PNG to write (default: SCAN's name with .proof-pN.png)."),
     page: int = typer.Option(1, "--page", "-p", help="Page of SCAN to use (1 = first)."),
     scale: float = typer.Option(0.5, "--scale", help="Size of the picture relative to the scan."),
@@ -81,10 +80,10 @@ def proof_cmd(
 @edge
 def draft_cmd(
     blank_form: Path = typer.Argument(..., help="Straight scan of the blank form (PNG, TIFF, JPEG or PDF)."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o",
+    out: Path | None = typer.Option(None, "--out", "-o",
                                        help="Layout file to write (default: BLANK_FORM's name with .draft.toml)."),
     page: int = typer.Option(1, "--page", "-p", help="Page of BLANK_FORM to use (1 = first)."),
-    name: Optional[str] = typer.Option(None, "--name", help="The form's name in the layout."),
+    name: str | None = typer.Option(None, "--name", help="The form's name in the layout."),
     force: bool = typer.Option(False, "--force", help="Overwrite OUT if it exists."),
 ):
     """Draft a layout from a blank form: its corner squares and printed rectangles.
@@ -92,8 +91,8 @@ def draft_cmd(
     Fields are named field_1, field_2, ... in reading order; rename them, add rules,
     and check the result with `formread layout proof`.
     """
-    from ..imaging.draft import draft_layout
     from ..form.layout import parse_layout
+    from ..imaging.draft import draft_layout
 
     target = out if out is not None else blank_form.with_name(f"{blank_form.stem}.draft.toml")
     if target.exists() and not force:
@@ -120,7 +119,7 @@ def draft_cmd(
 def fingerprint_cmd(
     blank_form: Path = typer.Argument(..., help="Scan of the blank form (PNG, TIFF, JPEG or PDF), any way round."),
     layout_file: Path = typer.Option(..., "--layout", "-l", help="The form's layout (TOML), with a [form.header] region."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o",
+    out: Path | None = typer.Option(None, "--out", "-o",
                                        help="Layout file to write (default: update LAYOUT in place)."),
     page: int = typer.Option(1, "--page", "-p", help="Page of BLANK_FORM to use (1 = first)."),
 ):

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import List, Optional
 
 import typer
 
@@ -32,8 +31,8 @@ def samples_cmd(
 @edge
 def retrain_cmd(
     samples: Path = typer.Option(..., "--samples", help="Local samples folder (DIR/<digit>/*.png)."),
-    model: Optional[Path] = typer.Option(None, "--model", help="Model to fine-tune (default: the one in use)."),
-    out: Optional[Path] = typer.Option(None, "--out", help="New version's path (default: <model>-r<N>.npz)."),
+    model: Path | None = typer.Option(None, "--model", help="Model to fine-tune (default: the one in use)."),
+    out: Path | None = typer.Option(None, "--out", help="New version's path (default: <model>-r<N>.npz)."),
     held_out: float = typer.Option(0.3, "--held-out", min=0.05, max=0.8,
                                    help="Share of each digit's samples kept for measuring."),
     epochs: int = typer.Option(6, "--epochs", min=1, max=1000, help="Fine-tuning epochs."),
@@ -53,8 +52,8 @@ def retrain_cmd(
     The new version keeps the parent's fitted decisions (inherited), so it is put in use only with
     --promote-inherited; `formread learn` fine-tunes, refits the decisions and promotes in one step.
     """
-    from ..store import in_use_path
     from ..learn.retrain import retrain
+    from ..store import in_use_path
 
     model_path = model or in_use_path()
     bar = ProgressBar("fine-tuning", unit="batches", enabled=not quiet and not as_json)
@@ -101,10 +100,10 @@ def _render_learn(rep) -> list[str]:
 
 @edge
 def learn_cmd(
-    runs: List[Path] = typer.Argument(..., metavar="RUN...", help="Output folders of reviewed `formread read` runs."),
-    model: Optional[Path] = typer.Option(None, "--model", help="Bundle to learn from (default: the one in use)."),
-    out: Optional[Path] = typer.Option(None, "--out", help="New version's path (default: the store's next -r<N>)."),
-    target: Optional[float] = typer.Option(
+    runs: list[Path] = typer.Argument(..., metavar="RUN...", help="Output folders of reviewed `formread read` runs."),
+    model: Path | None = typer.Option(None, "--model", help="Bundle to learn from (default: the one in use)."),
+    out: Path | None = typer.Option(None, "--out", help="New version's path (default: the store's next -r<N>)."),
+    target: float | None = typer.Option(
         None, "--target", min=1e-6, max=0.499, help="Error among accepted fields aimed at (default: each layout's "
                                                     "target_error, else 0.005)."),
     held_out: float = typer.Option(0.3, "--held-out", min=0.05, max=0.8,
@@ -114,7 +113,7 @@ def learn_cmd(
                                  help="Most accuracy an original held-out part may lose for promotion."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seeds the page split, the original-data sample and training."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted fine-tuning from its checkpoint."),
-    truth: Optional[List[Path]] = typer.Option(None, "--truth", help="Known values of a run's pages (truth.jsonl), "
+    truth: list[Path] | None = typer.Option(None, "--truth", help="Known values of a run's pages (truth.jsonl), "
                                                                      "for development sets; one per run, in order."),
     refit_only: bool = typer.Option(False, "--refit-only", help="No training: fit the decisions of the bundle's "
                                                                 "own network on every page (e.g. a new form)."),

@@ -8,8 +8,6 @@ from pathlib import Path
 
 import typer
 
-from typing import Optional
-
 from .common import EXIT_PAGES_FAILED, edge
 
 
@@ -41,7 +39,7 @@ def review(
     outdir: Path = typer.Argument(..., help="Output folder of `formread read` (holds ledger.sqlite)."),
     port: int = typer.Option(0, "--port", min=0, max=65535, help="Port on 127.0.0.1; 0 picks a free one."),
     reviewer: str = typer.Option(None, "--reviewer", help="Name recorded with each decision (default: login name)."),
-    apply: Optional[Path] = typer.Option(
+    apply: Path | None = typer.Option(
         None, "--apply", help="Apply decisions from a JSON Lines or CSV file (source, page_number, field, value; "
                               "\"\" = blank, action \"unreadable\") instead of opening the page. Exit 3 when "
                               "some lines were refused."),

@@ -6,7 +6,6 @@ import dataclasses
 import json
 from enum import Enum
 from pathlib import Path
-from typing import Optional
 
 import typer
 
@@ -79,7 +78,7 @@ def train_cmd(
     workers: int = typer.Option(_CFG.workers, "--workers", "-w", min=1, max=2,
                                 help="1, or 2 to split each batch over two processes "
                                      "(pays on an idle 2-core machine)."),
-    checkpoint: Optional[Path] = typer.Option(None, "--checkpoint",
+    checkpoint: Path | None = typer.Option(None, "--checkpoint",
                                               help="Checkpoint file (default: OUT with .ckpt appended)."),
     resume: bool = typer.Option(False, "--resume", help="Continue the run saved in the checkpoint."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars."),
@@ -258,7 +257,7 @@ def list_models() -> list[tuple[Path, dict | None, str | None]]:
 
 @edge
 def info_cmd(
-    model_path: Optional[Path] = typer.Argument(None, metavar="[MODEL]",
+    model_path: Path | None = typer.Argument(None, metavar="[MODEL]",
                                                 help="Model file; without it, list the model files."),
     as_json: bool = typer.Option(False, "--json", help="Print the raw header as JSON."),
 ):

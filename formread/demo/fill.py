@@ -30,8 +30,8 @@ from functools import lru_cache
 import numpy as np
 from scipy import ndimage
 
-from ..learn.datasets import mnist_raw, mnist_split_indices
 from ..form.layout import FieldSpec
+from ..learn.datasets import mnist_raw, mnist_split_indices
 from .card import mm_to_px
 
 __all__ = ["DigitBank", "load_test_digits", "mnist_test_halves", "HALF_SEED", "HALVES", "Writer",

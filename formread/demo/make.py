@@ -23,16 +23,24 @@ import json
 import os
 import shutil
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 from PIL import Image
 
 from ..errors import ParameterError, check_param
-from .card import LAYOUT_PATH, METER_TEXT, SLIP_LAYOUT_PATH, SLIP_TEXT, CardText, marks_mm, read_card_layout, \
-    render_card
+from .card import (
+    LAYOUT_PATH,
+    METER_TEXT,
+    SLIP_LAYOUT_PATH,
+    SLIP_TEXT,
+    CardText,
+    marks_mm,
+    read_card_layout,
+    render_card,
+)
 from .fill import HALVES, load_test_digits, random_writer, write_field
 from .scan import random_scan_settings, simulate_scan, to_bilevel
 from .styles import SCANNERS, STYLES, WRITERS, ScannerPopulation, draw_writer, style_populations

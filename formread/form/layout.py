@@ -12,7 +12,8 @@ import itertools
 import json
 import math
 import re
-from dataclasses import dataclass, field as dc_field
+from dataclasses import dataclass
+from dataclasses import field as dc_field
 from pathlib import Path
 
 try:  # Python 3.11+

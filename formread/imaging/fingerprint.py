@@ -58,7 +58,7 @@ class InkMap:
     block: int
 
     @classmethod
-    def of(cls, image: np.ndarray, px_per_mm: float) -> "InkMap":
+    def of(cls, image: np.ndarray, px_per_mm: float) -> InkMap:
         """The ink map of a page (H, W) uint8 at ``px_per_mm`` pixels per millimetre."""
         image = np.asarray(image)
         block = max(2, int(round(PAPER_BLOCK_MM * px_per_mm)))

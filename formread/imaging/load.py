@@ -20,9 +20,9 @@ import re
 import struct
 import warnings
 import zlib
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterator
 
 import numpy as np
 from PIL import Image, ImageOps

@@ -22,7 +22,8 @@ from __future__ import annotations
 
 import heapq
 import logging
-from dataclasses import dataclass, field as dc_field
+from dataclasses import dataclass
+from dataclasses import field as dc_field
 
 import numpy as np
 from scipy import ndimage

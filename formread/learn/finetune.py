@@ -8,8 +8,8 @@ on the run's validation split, and the original held-out parts measured before a
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 

@@ -35,9 +35,9 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path, PurePath
-from typing import Callable
 
 import numpy as np
 
@@ -54,8 +54,8 @@ from ..read.runs import page_layout, run_layouts
 from ..read.score import load_truth
 from ..read.tune import choose_threshold, clopper_pearson_upper
 from ..review.queries import resolve_inside
-from .finetune import accuracy, fine_tune, original_data
 from ..store import in_use_path, next_version_path, promote, store_dir
+from .finetune import accuracy, fine_tune, original_data
 
 __all__ = ["LearnConfig", "LearnReport", "learn", "MIN_DECIDED_FIELDS", "MIN_DIGIT_CLASSES"]
 

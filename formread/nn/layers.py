@@ -71,7 +71,7 @@ class Layer:
         """JSON-serialisable description that ``build_model`` turns back into this layer."""
         return {"type": self.kind}
 
-    def astype(self, dtype) -> "Layer":
+    def astype(self, dtype) -> Layer:
         """Convert parameters to ``dtype`` in place (e.g. float64 for gradient checks)."""
         for p in self.params():
             p.value = p.value.astype(dtype)
@@ -128,7 +128,7 @@ class Conv2D(Layer):
 
     def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         self.check_input(x)
-        k, p = self.kernel, self.padding
+        p = self.padding
         y, cols = _conv.conv_forward(x, self.weight.value, self.bias.value, self.stride, p,
                                      self._scratch)
         self._cache = (cols, x.shape)

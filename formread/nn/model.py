@@ -293,7 +293,7 @@ class Sequential:
             p.value = v.astype(p.value.dtype, copy=True)
             p.grad = np.zeros_like(p.value)
 
-    def astype(self, dtype) -> "Sequential":
+    def astype(self, dtype) -> Sequential:
         """Convert every parameter to ``dtype`` in place; returns self."""
         for layer in self.layers:
             layer.astype(dtype)

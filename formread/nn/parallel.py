@@ -190,7 +190,7 @@ class DataParallel:
         self._limits = None
         self._finalizer = None
 
-    def __enter__(self) -> "DataParallel":
+    def __enter__(self) -> DataParallel:
         return self
 
     def __exit__(self, *exc) -> None:

@@ -28,9 +28,9 @@ import math
 import os
 import time
 import zipfile
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
@@ -131,7 +131,7 @@ class TrainConfig:
         return asdict(self)
 
     @classmethod
-    def from_dict(cls, d: dict) -> "TrainConfig":
+    def from_dict(cls, d: dict) -> TrainConfig:
         d = dict(d)
         aug = AugmentConfig(**d.pop("augment", {}))
         known = {f.name for f in fields(cls)}

@@ -258,7 +258,8 @@ def test_layouts_are_frozen():
 
 
 # Property: any layout the parser accepts is written back by to_toml to the same layout.
-from hypothesis import given, settings, strategies as st  # noqa: E402
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st
 
 # Rules and relations are compiled when a layout loads, so the generated ones are valid ones.
 _rules = st.sampled_from([{}, {"check": "luhn"}, {"range": [0, 999]}, {"optional": True},

@@ -6,9 +6,9 @@ import math
 
 import numpy as np
 import pytest
+from digit_pages import FakeField, FakeRegistration
 from scipy import ndimage
 
-from digit_pages import FakeField, FakeRegistration
 from formread.imaging.binarize import ink_map
 from formread.imaging.fields import crop_to_page, cut_field
 from formread.imaging.lines import _runs_open

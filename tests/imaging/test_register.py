@@ -11,12 +11,12 @@ import math
 
 import numpy as np
 import pytest
-
 from synth import Transform, corners_px, degrade, example_layout, render_page, to_pixels, truth_matrix
+
 from formread.errors import RegistrationError
+from formread.form.layout import parse_layout
 from formread.imaging.binarize import binarize
 from formread.imaging.deskew import estimate_skew, rotate
-from formread.form.layout import parse_layout
 from formread.imaging.load import Page
 from formread.imaging.register import Registration, apply_affine, fit_affine, register_page
 

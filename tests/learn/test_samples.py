@@ -5,10 +5,10 @@ import json
 import numpy as np
 
 from formread.learn.datasets import load_samples_folder
+from formread.learn.samples import MANIFEST, collect_samples
 from formread.ledger.fieldfile import load_digits
 from formread.ledger.store import open_ledger
 from formread.review import queries
-from formread.learn.samples import MANIFEST, collect_samples
 
 
 def _decide(out, field_id, action, value=None, reviewer="ines"):

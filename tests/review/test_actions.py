@@ -7,13 +7,13 @@ import sqlite3
 
 import numpy as np
 import pytest
+from review_fixture import snapshot
 
 from formread.errors import LedgerError, ReviewError
 from formread.ledger.fieldfile import load_digits
 from formread.ledger.store import open_ledger
 from formread.review import queries, wording
 from formread.review.queries import InvalidValue, StaleSave, UnknownItem
-from review_fixture import snapshot
 
 
 def _conn(out):

@@ -18,7 +18,7 @@ import pytest
 from PIL import Image
 
 from formread.ledger.store import open_ledger
-from formread.review import queries, wording
+from formread.review import queries
 from formread.review.export import export_final
 from formread.review.server import running
 
@@ -209,7 +209,8 @@ def test_review_of_a_real_demo_run(tmp_path):
 
     from formread.cli.main import app
     from formread.nn.modelfile import read_header
-    from formread.store import demo_forms as demo_dir, in_use_path as default_model_path
+    from formread.store import demo_forms as demo_dir
+    from formread.store import in_use_path as default_model_path
 
     sync_playwright, expect = _playwright()
     scans = tmp_path / "scans"
