@@ -35,9 +35,9 @@ def edge(fn):
             return fn(*args, **kwargs)
         except FormreadError as e:
             fail(one_line(e))
-        except KeyboardInterrupt:
+        except KeyboardInterrupt as err:
             typer.echo("formread: interrupted; work saved so far is kept", err=True)
-            raise typer.Exit(EXIT_INTERRUPTED)
+            raise typer.Exit(EXIT_INTERRUPTED) from err
 
     return wrapper
 

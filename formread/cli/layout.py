@@ -118,7 +118,8 @@ def draft_cmd(
 @edge
 def fingerprint_cmd(
     blank_form: Path = typer.Argument(..., help="Scan of the blank form (PNG, TIFF, JPEG or PDF), any way round."),
-    layout_file: Path = typer.Option(..., "--layout", "-l", help="The form's layout (TOML), with a [form.header] region."),
+    layout_file: Path = typer.Option(..., "--layout", "-l",
+                                     help="The form's layout (TOML), with a [form.header] region."),
     out: Path | None = typer.Option(None, "--out", "-o",
                                        help="Layout file to write (default: update LAYOUT in place)."),
     page: int = typer.Option(1, "--page", "-p", help="Page of BLANK_FORM to use (1 = first)."),

@@ -1,4 +1,5 @@
-"""Commands that close the loop: ``learn`` (the whole step after a review), and its parts ``samples`` and ``retrain``."""
+"""Commands that close the loop: ``learn`` (the whole step after a review), and its parts ``samples`` and
+``retrain``."""
 
 from __future__ import annotations
 
@@ -86,7 +87,8 @@ def _render_learn(rep) -> list[str]:
              "held-out pages                before    after",
              f"  field accuracy              {_pct(b['field_accuracy']):>6}   {_pct(a['field_accuracy']):>6}",
              f"  review rate at the target   {_pct(b['review_rate']):>6}   {_pct(a['review_rate']):>6}",
-             f"  error among accepted        {_pct(b['error_among_accepted']):>6}   {_pct(a['error_among_accepted']):>6}"
+             f"  error among accepted        {_pct(b['error_among_accepted']):>6}"
+             f"   {_pct(a['error_among_accepted']):>6}"
              f"   (95% upper bound after: {_pct(a['upper_95'])}, {a['wrong_accepted']} of {a['accepted']})"]
     for form, f in a["forms"].items():
         t = "no threshold meets it" if f["threshold"] is None else f"threshold {f['threshold']:.4f}"

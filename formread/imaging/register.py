@@ -5,9 +5,9 @@ as connected ink components that are filled, square and of the expected size. Pa
 distance and angle of a pair of layout marks (rotation up to ``max_rotation_deg``, scale within
 ``max_scale_change``, any shift) propose where the others must be; every consistent set of three
 or more marks is fitted with an affine transform, and the one with most marks and a plausible,
-tight fit wins (ties: the one nearest the nominal placement, image top-left = page top-left). Mark centres are then refined
-at full resolution (ink-weighted centroids) and the final affine transform from layout millimetres
-to page pixels is fitted by least squares; its RMS residual is reported in mm.
+tight fit wins (ties: the one nearest the nominal placement, image top-left = page top-left). Mark
+centres are then refined at full resolution (ink-weighted centroids) and the final affine transform
+from layout millimetres to page pixels is fitted by least squares; its RMS residual is reported in mm.
 
 A sheet may go through the scanner in any quarter turn (0, 90, 180 or 270 degrees), so the marks
 are matched in all four: a turned page's image is landscape when the form is portrait, and the

@@ -487,7 +487,8 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
             continue
         merged.append(b)
     edges = [(np.full(h, left, np.int64), 0.0, 0)] + merged + [(np.full(h, right, np.int64), 0.0, 0)]
-    log.debug("dh %.1f sw %.1f cuts %s", dh, sw, [(int(e[0].min()), int(e[0].max()), round(e[1], 1), e[2]) for e in edges])
+    log.debug("dh %.1f sw %.1f cuts %s", dh, sw,
+              [(int(e[0].min()), int(e[0].max()), round(e[1], 1), e[2]) for e in edges])
     for i in range(1, len(edges)):
         edges[i] = (np.maximum(edges[i][0], edges[i - 1][0]), edges[i][1], edges[i][2])
     nb = len(edges)

@@ -375,7 +375,8 @@ def _digit_evidence(pairs: list[tuple], layouts: dict, bundle: Bundle) -> tuple[
     """Calibrated probabilities and correctness of every held-out digit whose reading has the truth's length."""
     xs, ys = [], []
     for f, r in pairs:
-        if f.file is None or not f.truth or not f.truth.isdigit() or r.reading is None or len(r.reading) != len(f.truth):
+        if (f.file is None or not f.truth or not f.truth.isdigit() or r.reading is None
+                or len(r.reading) != len(f.truth)):
             continue
         fd = _field_digits(f, layouts[f.form].field(f.name))
         if fd is None or r.candidate is None:
@@ -511,8 +512,8 @@ def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out,
     if out.resolve() in (bundle.path.resolve(), in_use_path().resolve()):
         raise DataError(f"{out}: the new version must not overwrite the bundle in use")
     header = {k: v for k, v in bundle.header.items()
-              if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created", "architecture",
-                           "decoder", "decisions")}
+              if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created",
+                           "architecture", "decoder", "decisions")}
     decisions = Decisions(evidence, fitted_on=f"{rep.pages_held_out} pages of {len(runs)} run(s), "
                                                f"{rep.after['fields']} fields")
     new = save_bundle(out, list(bundle.networks), header, decoder=bundle.decoder,

@@ -118,5 +118,6 @@ def test_crop_samples_the_page_bilinearly():
         i, j = int(np.floor(py)), int(np.floor(px))
         fy, fx = py - i, px - j
         p = page.astype(float)
-        want = ((1 - fy) * ((1 - fx) * p[i, j] + fx * p[i, j + 1]) + fy * ((1 - fx) * p[i + 1, j] + fx * p[i + 1, j + 1]))
+        want = ((1 - fy) * ((1 - fx) * p[i, j] + fx * p[i, j + 1])
+                + fy * ((1 - fx) * p[i + 1, j] + fx * p[i + 1, j + 1]))
         assert abs(int(crop.gray[r, c]) - want) <= 1.0

@@ -145,9 +145,10 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             expect(page.locator("#earlier")).to_contain_text("Already decided: 0051 (corrected) by bob")
 
             # a request from the page without the token header is refused
-            status = page.evaluate("fetch('/api/field/%d', {method: 'POST', headers: {'Content-Type': "
+            status = page.evaluate(f"fetch('/api/field/{ids[(2, 'plot_number')]}', "
+                                   "{method: 'POST', headers: {'Content-Type': "
                                    "'application/json'}, body: JSON.stringify({action: 'confirm', version: 1})})"
-                                   ".then(r => r.status)" % ids[(2, "plot_number")])
+                                   ".then(r => r.status)")
             assert status == 403
 
             # reload: the queue holds what is left
