@@ -190,7 +190,7 @@ def stratified_split(y: np.ndarray, fraction: float, rng: np.random.Generator) -
     train, val : sorted ndarrays of int64 indices (disjoint, covering 0..N-1)
     """
     y = np.asarray(y)
-    val = []
+    parts: list[np.ndarray] = []
     if fraction > 0:
         for c in np.unique(y):
             idx = np.flatnonzero(y == c)
@@ -198,8 +198,8 @@ def stratified_split(y: np.ndarray, fraction: float, rng: np.random.Generator) -
             if k >= idx.size:
                 k = idx.size - 1
             if k > 0:
-                val.append(rng.choice(idx, size=k, replace=False))
-    val = np.sort(np.concatenate(val)) if val else np.zeros(0, np.int64)
+                parts.append(rng.choice(idx, size=k, replace=False))
+    val = np.sort(np.concatenate(parts)) if parts else np.zeros(0, np.int64)
     mask = np.ones(y.size, bool)
     mask[val] = False
     return np.flatnonzero(mask).astype(np.int64), val.astype(np.int64)
@@ -263,8 +263,9 @@ def _restore_optimizer(opt, arrays: dict[str, np.ndarray], meta: dict, where: Pa
         opt.t = int(meta.get("t", 0))
 
 
-def _layer_rngs(model: Sequential) -> list:
-    return [layer.rng for layer in model.layers if isinstance(getattr(layer, "rng", None), np.random.Generator)]
+def _layer_rngs(model: Sequential) -> list[np.random.Generator]:
+    rngs = [getattr(layer, "rng", None) for layer in model.layers]
+    return [r for r in rngs if isinstance(r, np.random.Generator)]
 
 
 def _fingerprint(x: np.ndarray, y: np.ndarray) -> str:
@@ -276,7 +277,7 @@ def _fingerprint(x: np.ndarray, y: np.ndarray) -> str:
 
 def _atomic_savez(path: Path, arrays: dict[str, np.ndarray]) -> None:
     with atomic_open(path) as f:
-        np.savez(f, **arrays)
+        np.savez(f, **arrays)  # type: ignore[arg-type]  # numpy's stub lets **kwds fill allow_pickle: bool
 
 
 def _save_checkpoint(path: Path, model, best_state, opt, rng, state: dict) -> None:
