@@ -175,9 +175,9 @@ def _rows_of_boxes(boxes: list[Box]) -> list[Box]:
             joined.append(a)
             continue
         # cells one box pitch wide, centred on the printed boxes
-        first, last = run[0].x + run[0].w / 2, run[-1].x + run[-1].w / 2
-        pitch = (last - first) / (len(run) - 1)
-        joined.append(Box(first - pitch / 2, a.y, len(run) * pitch, a.h, len(run), a.line))
+        x_first, x_last = run[0].x + run[0].w / 2, run[-1].x + run[-1].w / 2
+        pitch = (x_last - x_first) / (len(run) - 1)
+        joined.append(Box(x_first - pitch / 2, a.y, len(run) * pitch, a.h, len(run), a.line))
     return others + joined
 
 

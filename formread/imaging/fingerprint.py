@@ -192,7 +192,9 @@ def fingerprint_match(ink: InkMap, matrix: np.ndarray, header: Region, fingerpri
 
     ink : the page's ``InkMap``; matrix : (2, 3) float64, layout mm -> its pixels.
     """
-    return compare_header(ink, matrix, header, fingerprint)[1]
+    match = compare_header(ink, matrix, header, fingerprint)[1]
+    assert match is not None  # a fingerprint was given
+    return match
 
 
 def compare_header(ink: InkMap, matrix: np.ndarray, header: Region,

@@ -17,6 +17,7 @@ import numpy as np
 from ..errors import SegmentationError
 from .binarize import choose_method, page_ink_level
 from .fields import cut_field, field_corners_px
+from .register import Registration, register_page
 from .segment import FieldDigits, segment_field
 
 __all__ = ["PageDigits", "process_page", "STEPS"]
@@ -45,7 +46,7 @@ class PageDigits:
         The crop each field was segmented from (missing for a field that could not be cut).
     """
 
-    registration: object
+    registration: Registration
     fields: dict
     method: str = "otsu"
     level: float = 127.0
@@ -94,8 +95,6 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
     RegistrationError
         When the page cannot be matched to the layout (from ``register_page``).
     """
-    from .register import register_page
-
     tick = time.perf_counter
 
     def add(step: str, t0: float) -> float:

@@ -128,6 +128,7 @@ class FieldDigits:
     def to_page(self, pts) -> np.ndarray:
         """Map crop pixel points (N, 2) (x, y) to page pixels (N, 2) using ``box_px``."""
         p = np.asarray(pts, np.float64).reshape(-1, 2)
+        assert self.box_px is not None, "to_page needs box_px"
         tl, tr, br, bl = self.box_px
         h, w = self.image.shape
         return tl + np.outer(p[:, 0] / w, tr - tl) + np.outer(p[:, 1] / h, bl - tl)
@@ -330,7 +331,7 @@ def _stroke_width(ink: np.ndarray) -> float:
     return float(max(1.0, np.median(np.concatenate(lens))))
 
 
-def _cut_paths(ink: np.ndarray, starts: np.ndarray, reach: int) -> tuple[np.ndarray, np.ndarray]:
+def _cut_paths(ink: np.ndarray, starts: np.ndarray, reach: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Least-ink top-to-bottom paths, one per start column, each within ``reach`` px of its start.
 
     A path moves at most one column per row; its cost is the ink it crosses plus a
@@ -463,8 +464,8 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     free = [int((a + b) // 2) for a, b in zip(run_hi[:-1], run_lo[1:])]
     gap_w = {int((a + b) // 2): int(b - a) for a, b in zip(run_hi[:-1], run_lo[1:])}
     starts: list[int] = []
-    for a, b in zip(run_lo, run_hi):
-        starts += _projection_cuts(prof, int(a), int(b), dh)
+    for r0, r1 in zip(run_lo, run_hi):
+        starts += _projection_cuts(prof, int(r0), int(r1), dh)
     # pieces that overlap in x without touching are parted by a free (zero-ink) path too
     reach = max(2, int(0.3 * dh))
     bounds: list[tuple[np.ndarray, float, int]] = []   # (path (h,), ink crossed, gap width)
