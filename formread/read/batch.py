@@ -125,6 +125,7 @@ def list_scans(inputs: Iterable) -> list[tuple[str, str | None]]:
     # the same file named twice (or by two paths) is read once
     unique = []
     for source, refusal in out:
+        key: Path | str
         try:
             key = Path(source).resolve()
         except (OSError, RuntimeError):
@@ -376,7 +377,8 @@ def _run(scans, ctx: RunContext, ledger: Ledger, report: BatchReport, workers: i
 
     # with workers busy on the other cores, the main process's BLAS keeps to one thread
     limits = threadpool_limits(limits=1) if pin else None
-    counts = {"files": len(scans), "pages": 0, "sources": set()}
+    counts = {"files": len(scans), "pages": 0}
+    sources: set[str] = set()   # the files opened so far
     queued: set = set()
 
     def submit(item):
@@ -384,7 +386,7 @@ def _run(scans, ctx: RunContext, ledger: Ledger, report: BatchReport, workers: i
             return _Done(item)
         page, h, load_s = item
         counts["pages"] += 1
-        counts["sources"].add(page.source)
+        sources.add(page.source)
         report.imaging_seconds += load_s
         report.stages["load"] = report.stages.get("load", 0.0) + load_s
         prior = known.get(h)
@@ -400,7 +402,7 @@ def _run(scans, ctx: RunContext, ledger: Ledger, report: BatchReport, workers: i
             _write(work, known, ledger, report)
             if progress is not None:
                 # total: pages met so far plus one per file not opened yet
-                total = counts["pages"] + max(0, counts["files"] - len(counts["sources"]))
+                total = counts["pages"] + max(0, counts["files"] - len(sources))
                 progress(report.pages, max(total, report.pages), review=report.review, failed=len(report.problems))
     finally:
         if limits is not None:

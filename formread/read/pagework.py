@@ -207,6 +207,7 @@ def read_page(page, content_hash: str, ctx: RunContext) -> PageWork:
             row.status, row.error = "unregistered", f"{page.source} page {page.page_number}: {ident.reason}"
             row.image_png = _page_png(page.gray, page.dpi)[0]
             return PageWork(row, stages, time.perf_counter() - t0)
+        assert ident.index is not None  # identified: index and registration are set
         layout, registration = ctx.layouts[ident.index], ident.registration
     row.form = layout.name
     thresholds = ctx.thresholds[layout.name]
