@@ -38,6 +38,7 @@ import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path, PurePath
+from typing import Any
 
 import numpy as np
 
@@ -227,6 +228,9 @@ def _field_digits(f: _Field, spec) -> FieldDigits | None:
 
 
 def _crop(ff: FieldFile, name: str, kind: str) -> FieldCrop:
+    assert (ff.crop_geometry is not None and ff.crop_gray is not None and ff.crop_ink is not None
+            and ff.crop_rect is not None and ff.crop_matrix is not None), \
+        "a crop of a file written before schema version 2"
     x0, y0, ppm = (float(v) for v in ff.crop_geometry)
     return FieldCrop(name, kind, ff.crop_gray, ff.crop_ink, ppm, x0, y0, tuple(float(v) for v in ff.crop_rect),
                      ff.crop_matrix)
@@ -242,7 +246,7 @@ def _digits_for(f: _Field, spec) -> tuple[np.ndarray | None, str, bool]:
         return ff.digits, "", False
     if ff.cand_digits is None:
         return None, f"{len(ff.digits)} digit images for a {k}-digit value (file of the first release)", False
-    blank = ff.blank if spec.kind == "boxed" and len(ff.blank) else None
+    blank = ff.blank if spec.kind == "boxed" and ff.blank is not None and len(ff.blank) else None
     options = []
     for d, cost in ff.candidates():
         rows = np.arange(len(d)) if blank is None else np.flatnonzero(~blank)
@@ -315,8 +319,8 @@ def _figures(evidence: dict, targets: dict) -> dict:
     target gives on this evidence (one-sided 95% Clopper-Pearson bound beside)."""
     allrows = [a for fields in evidence.values() for a in fields.values()]
     every = np.concatenate(allrows) if allrows else np.zeros((0, 3))
-    out = {"fields": int(len(every)), "field_accuracy": float(every[:, 1].mean()) if len(every) else None,
-           "forms": {}}
+    out: dict[str, Any] = {"fields": int(len(every)),
+                           "field_accuracy": float(every[:, 1].mean()) if len(every) else None, "forms": {}}
     reviewed = accepted = wrong = 0
     for form, fields in evidence.items():
         ev = np.concatenate(list(fields.values()))

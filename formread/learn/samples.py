@@ -170,7 +170,9 @@ def collect_samples(outdir: str | Path, samples_dir: str | Path, *,
                 report.duplicates += 1
                 continue
             if old is not None:
-                _inside(root, old["file"]).unlink(missing_ok=True)
+                old_path = _inside(root, old["file"])
+                assert old_path is not None  # _read_manifest checked every record
+                old_path.unlink(missing_ok=True)
                 records.remove(old)
                 report.relabelled += 1
             rel = f"{digit}/{name}"
