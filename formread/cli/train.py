@@ -27,7 +27,8 @@ class _EpochBars:
     """One ProgressBar line per epoch, fed by the training loop's progress callback."""
 
     def __init__(self, enabled: bool):
-        self.enabled, self.bar, self.epoch = enabled, None, None
+        self.enabled, self.epoch = enabled, None
+        self.bar: ProgressBar | None = None
 
     def __call__(self, done: int, total: int, **figures) -> None:
         epoch = figures.pop("epoch", None)
@@ -41,9 +42,10 @@ class _EpochBars:
 
 _RECIPE = Recipe()
 _CFG, _AUG = _RECIPE.config, _RECIPE.config.augment
-Arch = Enum("Arch", {name: name for name in sorted(ARCHITECTURES)}, type=str)
-Optimizer = Enum("Optimizer", {name: name for name in OPTIMIZERS}, type=str)
-Schedule = Enum("Schedule", {name: name for name in SCHEDULES}, type=str)
+# the choices come from the registries; mypy reads Enum members from literal lists only
+Arch = Enum("Arch", {name: name for name in sorted(ARCHITECTURES)}, type=str)  # type: ignore[misc]
+Optimizer = Enum("Optimizer", {name: name for name in OPTIMIZERS}, type=str)  # type: ignore[misc]
+Schedule = Enum("Schedule", {name: name for name in SCHEDULES}, type=str)  # type: ignore[misc]
 
 
 @edge
@@ -246,7 +248,7 @@ def list_models() -> list[tuple[Path, dict | None, str | None]]:
     from ..nn.modelfile import read_header
     from ..store import shipped_model, store_models
 
-    out = []
+    out: list[tuple[Path, dict | None, str | None]] = []
     for p in [shipped_model()] + store_models():
         try:
             out.append((p, read_header(p), None))
