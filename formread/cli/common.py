@@ -70,6 +70,7 @@ class ProgressBar:
         self._rich: Progress | None = None
         self._task: TaskID | None = None
         if enabled and getattr(self.stream, "isatty", lambda: False)():
+            # here: rich only for a bar on a terminal, not at every command's start
             from rich.console import Console
             from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 

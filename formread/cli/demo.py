@@ -7,6 +7,10 @@ from pathlib import Path
 
 import typer
 
+from .. import store
+from ..demo import make_demo
+from ..read.batch import SCAN_SUFFIXES, read_batch
+from ..read.evaluate import score_ledger
 from .common import EXIT_PAGES_FAILED, ProgressBar, edge, fail
 from .read import render_batch, render_summary
 
@@ -25,8 +29,6 @@ def register(app: typer.Typer) -> None:
 
 def demo_scans(folder: Path) -> list[Path]:
     """The scan files of a demo folder (its layout, truth and notes left out), sorted by name."""
-    from ..read.batch import SCAN_SUFFIXES
-
     return sorted((p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in SCAN_SUFFIXES),
                   key=lambda p: p.name)
 
@@ -48,11 +50,7 @@ def demo_cmd(
     """
     if ctx.invoked_subcommand is not None:
         return
-    from ..read.batch import read_batch
-    from ..read.evaluate import score_ledger
-    from ..store import demo_forms
-
-    folder = demo_forms()
+    folder = store.demo_forms()   # looked up when called (tests put a folder of their own in its place)
     layout, truth = folder / "layout.toml", folder / "truth.jsonl"
     if not layout.is_file() or not truth.is_file():
         fail(f"{folder}: the demo forms are missing (no layout.toml or truth.jsonl)")
@@ -98,8 +96,6 @@ def make_cmd(
 
     The styles are described in formread/demo/styles.py; the defaults make the shipped demo set.
     """
-    from ..demo import make_demo
-
     bar = ProgressBar("making forms", unit="pages", enabled=not quiet)
     info = make_demo(outdir, count=count, seed=seed, style=style, form=form, half=half, progress=bar)
     typer.echo(f"{info['pages']} pages in {info['files']} files, {info['fields']} fields, "

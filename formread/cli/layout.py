@@ -3,12 +3,20 @@
 
 from __future__ import annotations
 
+import io
 from pathlib import Path
 
 import typer
 
 from ..errors import ImageError, LayoutError
 from ..fileio import atomic_write
+from ..form.edit import set_header_fingerprint
+from ..form.layout import load_layout, parse_layout
+from ..imaging.draft import draft_layout
+from ..imaging.fingerprint import blank_fingerprint
+from ..imaging.load import iter_pages
+from ..imaging.pipeline import process_page
+from ..imaging.proof import render_proof
 from .common import edge
 
 group = typer.Typer(name="layout", help="Make and check form layouts.", no_args_is_help=True)
@@ -21,8 +29,6 @@ def register(app: typer.Typer) -> None:
 
 def _page(scan: Path, number: int):
     """Page ``number`` (1-based) of a scan file; ImageError naming the file when it has no such page."""
-    from ..imaging.load import iter_pages
-
     if number < 1:
         raise ImageError(f"{scan}: no page {number} (pages count from 1)")
     count = 0
@@ -48,12 +54,6 @@ def proof_cmd(
     Blue: field rectangles and cells; amber: digit boxes; grey dot: blank cell;
     plum: a doubtful field with its reason; green rings: registration marks used.
     """
-    import io
-
-    from ..form.layout import load_layout
-    from ..imaging.pipeline import process_page
-    from ..imaging.proof import render_proof
-
     layout = load_layout(layout_file)
     pg = _page(scan, page)
     result = process_page(pg, layout)
@@ -91,9 +91,6 @@ def draft_cmd(
     Fields are named field_1, field_2, ... in reading order; rename them, add rules,
     and check the result with `formread layout proof`.
     """
-    from ..form.layout import parse_layout
-    from ..imaging.draft import draft_layout
-
     target = out if out is not None else blank_form.with_name(f"{blank_form.stem}.draft.toml")
     if target.exists() and not force:
         raise LayoutError(f"{target}: already exists (use --force to overwrite)")
@@ -129,10 +126,6 @@ def fingerprint_cmd(
     With fingerprints, pages of forms that share their marks and fields are told apart by their
     printed headers; the rest of the layout file, comments included, is kept as it is.
     """
-    from ..form.edit import set_header_fingerprint
-    from ..form.layout import load_layout
-    from ..imaging.fingerprint import blank_fingerprint
-
     layout = load_layout(layout_file)
     if layout.header is None:
         raise LayoutError(f"{layout_file}: no [form.header] region (add x, y, w, h around the printed title first)")

@@ -9,7 +9,11 @@ from pathlib import Path
 
 import typer
 
+from ..form.edit import set_form_value
 from ..ledger.store import ledger_path
+from ..read.batch import read_batch
+from ..read.evaluate import score_ledger, tune_ledger
+from ..read.report import run_report
 from .common import EXIT_PAGES_FAILED, ProgressBar, edge, fail
 
 
@@ -64,8 +68,6 @@ def read_cmd(
     Exit code 0 when every page was read, 3 when some pages failed or were not
     registered (each recorded with its reason), 1 on an error before reading.
     """
-    from ..read.batch import read_batch
-
     bar = ProgressBar("reading", unit="pages", enabled=not quiet)
     report = read_batch(scans, layout, out, bundle=model, threshold=threshold, audit=audit, audit_seed=audit_seed,
                         workers=workers, progress=bar, command=_command_line(), scheduler=scheduler,
@@ -134,9 +136,6 @@ def tune_cmd(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
 ):
     """Choose the acceptance threshold that keeps the error among accepted fields under TARGET."""
-    from ..form.edit import set_form_value
-    from ..read.evaluate import tune_ledger
-
     result = tune_ledger(outdir, truth, target=target)
     if write_layout is not None:
         if not result["target_met"]:
@@ -171,8 +170,6 @@ def score_cmd(
     curve: Path | None = typer.Option(None, "--curve", help="Write the review/error curve as a PNG."),
 ):
     """Score the ledger's readings (before review) against the ground truth."""
-    from ..read.evaluate import score_ledger
-
     summary = score_ledger(outdir, truth, curve_png=curve)
     if as_json:
         typer.echo(json.dumps(summary))
@@ -214,7 +211,5 @@ def report_cmd(
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
 ):
     """Review load and the error among accepted fields, estimated from the spot checks a clerk decided."""
-    from ..read.report import run_report
-
     summary = run_report(outdirs).summary()
     typer.echo(json.dumps(summary) if as_json else render_report(summary))

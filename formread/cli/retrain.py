@@ -8,6 +8,10 @@ from pathlib import Path
 
 import typer
 
+from ..learn.loop import LearnConfig, learn
+from ..learn.retrain import retrain
+from ..learn.samples import collect_samples
+from ..store import in_use_path
 from .common import ProgressBar, edge
 
 
@@ -18,8 +22,6 @@ def samples_cmd(
 ):
     """Add labelled digit images from confirmed and corrected fields to a samples folder
     (a part of `formread learn`, which also cuts fields again to their decided length)."""
-    from ..learn.samples import collect_samples
-
     rep = collect_samples(outdir, to)
     typer.echo(f"{rep.added} new digit images from {rep.fields_used} fields into {to} "
                f"({rep.duplicates} already there, {rep.relabelled} relabelled, "
@@ -53,9 +55,6 @@ def retrain_cmd(
     The new version keeps the parent's fitted decisions (inherited), so it is put in use only with
     --promote-inherited; `formread learn` fine-tunes, refits the decisions and promotes in one step.
     """
-    from ..learn.retrain import retrain
-    from ..store import in_use_path
-
     model_path = model or in_use_path()
     bar = ProgressBar("fine-tuning", unit="batches", enabled=not quiet and not as_json)
     rep = retrain(model_path, samples, out=out, held_out=held_out, epochs=epochs, margin=margin,
@@ -129,8 +128,6 @@ def learn_cmd(
     when its review rate at the target falls there and the original held-out parts hold.  The next
     `formread read` uses it. Ctrl-C stops (exit 130, nothing promoted); --resume continues.
     """
-    from ..learn.loop import LearnConfig, learn
-
     bar = ProgressBar("fine-tuning", unit="batches", enabled=not quiet and not as_json)
     cfg = LearnConfig(held_out=held_out, seed=seed, epochs=epochs, margin=margin, target=target,
                       refit_only=refit_only)

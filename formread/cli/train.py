@@ -10,9 +10,13 @@ from pathlib import Path
 import typer
 
 from ..errors import FormreadError, one_line
-from ..learn.recipe import Recipe, train_recipe
+from ..learn.datasets import load_named
+from ..learn.recipe import Recipe, evaluate_bundle, train_recipe
 from ..nn.model import ARCHITECTURES
+from ..nn.modelfile import read_header
 from ..nn.train import OPTIMIZERS, SCHEDULES
+from ..read.bundle import load_bundle
+from ..store import in_use_path, migrate_checkout_models, shipped_model, store_dir, store_models
 from .common import EXIT_INTERRUPTED, ProgressBar, edge
 
 
@@ -154,10 +158,6 @@ def evaluate_cmd(
     as_json: bool = typer.Option(False, "--json", help="Machine-readable output."),
 ):
     """Accuracy, per-class precision and recall, confusion matrix and calibration of MODEL."""
-    from ..learn.datasets import load_named
-    from ..learn.recipe import evaluate_bundle
-    from ..read.bundle import load_bundle
-
     bundle = load_bundle(model_path)
     data = load_named(dataset, part)
     rep = evaluate_bundle(bundle, data.x, data.y)
@@ -245,9 +245,6 @@ def render_card(bundle) -> str:
 
 def list_models() -> list[tuple[Path, dict | None, str | None]]:
     """The shipped model and the store's model files: (path, header or None, problem or None)."""
-    from ..nn.modelfile import read_header
-    from ..store import shipped_model, store_models
-
     out: list[tuple[Path, dict | None, str | None]] = []
     for p in [shipped_model()] + store_models():
         try:
@@ -265,9 +262,6 @@ def info_cmd(
 ):
     """Show a model file's card (architecture, data, split, metrics, temperature, what was fitted for
     it, checksum), or list the shipped model and the store's models, marking the one in use."""
-    from ..read.bundle import load_bundle
-    from ..store import in_use_path, migrate_checkout_models, shipped_model, store_dir
-
     if model_path is not None:
         bundle = load_bundle(model_path)  # verifies the checksums
         if as_json:

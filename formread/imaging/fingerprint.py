@@ -30,6 +30,7 @@ from scipy import ndimage
 
 from ..errors import LayoutError, RegistrationError
 from ..form.layout import FINGERPRINT_PATTERN, Layout, Region
+from .register import register_page
 
 __all__ = ["InkMap", "grid_shape", "header_densities", "make_fingerprint", "parse_fingerprint",
            "fingerprint_match", "compare_header", "blank_fingerprint", "CELL_MM", "SHIFT_MM", "WINDOW", "INK_SHARE"]
@@ -238,8 +239,6 @@ def blank_fingerprint(page, layout: Layout) -> str:
     Raises ``LayoutError`` when the layout has no header region, ``RegistrationError`` when the page
     cannot be registered or its header region is blank.
     """
-    from .register import register_page
-
     if layout.header is None:
         raise LayoutError(f"{layout.source}: no [form.header] region to take a fingerprint of (add x, y, w, h "
                           f"around the printed title)")

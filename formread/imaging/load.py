@@ -232,7 +232,7 @@ def _why(e: BaseException) -> str:
 # ---------------------------------------------------------------------------------------------- PDF
 
 def _pdf_pages(path: Path, src: str, dpi: float) -> Iterator[Page]:
-    import pypdfium2 as pdfium
+    import pypdfium2 as pdfium  # here: PDFium's native library is loaded only when a PDF is read
 
     try:
         doc = pdfium.PdfDocument(str(path))

@@ -16,7 +16,7 @@ import numpy as np
 
 from ..errors import SegmentationError
 from .binarize import choose_method, page_ink_level
-from .fields import cut_field, field_corners_px
+from .fields import crop_to_page, cut_field, field_corners_px
 from .register import Registration, register_page
 from .segment import FieldDigits, segment_field
 
@@ -56,8 +56,6 @@ class PageDigits:
 def _failed(field, reg, reason: str, crop=None) -> FieldDigits:
     """A field that could not be segmented: no candidates, doubtful, with the reason (and its crop if cut)."""
     if crop is not None:
-        from .fields import crop_to_page
-
         h, w = crop.gray.shape
         corners = crop_to_page(crop, [[0, 0], [w, 0], [w, h], [0, h]])
         image, rect = crop.gray, crop.rect

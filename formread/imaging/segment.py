@@ -30,7 +30,7 @@ from scipy import ndimage
 
 from ..digits import SIZE, normalize_digit
 from ..errors import SegmentationError
-from .fields import FieldCrop
+from .fields import FieldCrop, crop_to_page
 from .lines import remove_box_lines
 
 __all__ = ["Candidate", "FieldDigits", "segment_field", "segment_boxed", "segment_open",
@@ -188,8 +188,6 @@ def _outlined(crop: FieldCrop, xs: list) -> np.ndarray:
 
 
 def _crop_corners_px(crop: FieldCrop) -> np.ndarray:
-    from .fields import crop_to_page
-
     h, w = crop.gray.shape
     return crop_to_page(crop, [[0, 0], [w, 0], [w, h], [0, h]])
 

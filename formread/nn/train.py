@@ -38,7 +38,7 @@ from ..errors import DataError, ParameterError, check_param
 from ..fileio import atomic_open
 from .augment import AugmentConfig, augment_batch
 from .calibrate import fit_temperature, scaled_nll, softmax
-from .metrics import expected_calibration_error
+from .metrics import classification_report, expected_calibration_error
 from .model import Sequential
 from .optim import SGD, Adam, cosine_schedule, step_schedule
 from .parallel import DataParallel
@@ -499,8 +499,6 @@ def evaluate(model: Sequential, x: np.ndarray, y: np.ndarray, temperature: float
     :func:`formread.nn.metrics.classification_report`), ``ece_raw`` and ``nll_raw`` at
     temperature 1, ``ece`` and ``nll`` at ``temperature``, and ``temperature``.
     """
-    from .metrics import classification_report
-
     logits = predict_logits(model, x)
     raw = classification_report(softmax(logits), y)
     cal = classification_report(softmax(logits, temperature), y)

@@ -17,6 +17,7 @@ candidate's residual, or "ambiguous") - a page is never read against a layout it
 from __future__ import annotations
 
 import io
+import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -78,8 +79,6 @@ class RunContext:
         b = _BUNDLES.get(self.bundle_sha256)
         if b is None:
             if self.bundle_bytes is not None:
-                import tempfile
-
                 with tempfile.TemporaryDirectory() as tmp:
                     path = Path(tmp) / Path(self.bundle_path).name
                     path.write_bytes(self.bundle_bytes)
