@@ -173,9 +173,9 @@ def _extract(d: Path, cache: Path) -> None:
     from formread.form.layout import load_layout
     from formread.imaging.load import load_pages
     from formread.imaging.pipeline import process_page
-    from formread.store import in_use_path as default_model_path
     from formread.read.bundle import load_bundle
     from formread.read.recognise import recognise_page
+    from formread.store import in_use_path as default_model_path
 
     layout = load_layout(d / "layout.toml")
     bundle = load_bundle(default_model_path())
@@ -228,9 +228,9 @@ def decode_cached(pages, layout_path: Path, threshold=None, confidence=None, **k
     ``confidence``: the decoder constants (default: those of the model bundle in use)."""
     from formread.form.layout import load_layout
     from formread.form.thresholds import resolve_thresholds
-    from formread.store import in_use_path as default_model_path
     from formread.read.bundle import load_bundle
     from formread.read.decode import decode_page, unregistered_page
+    from formread.store import in_use_path as default_model_path
 
     layout = load_layout(layout_path)
     bundle = load_bundle(default_model_path())

@@ -158,7 +158,8 @@ def show(rep: dict) -> None:
     for p in le["original_before"]:
         print(f"  {p}: {le['original_before'][p]:.4f} -> {le['original_after'][p]:.4f}")
     g = rep["goal"]
-    met = (nl["review_rate"] <= g["review_rate_max"] and (nl["error_among_accepted"] or 0) <= g["error_among_accepted_max"]
+    met = (nl["review_rate"] <= g["review_rate_max"]
+           and (nl["error_among_accepted"] or 0) <= g["error_among_accepted_max"]
            and nl["field_accuracy_before_review"] >= g["field_accuracy_min"] and nl["writer_mistakes_accepted"] == 0)
     print(f"goal on the next batch (review <= 15%, <= 0.3% wrong among accepted, accuracy >= 95%, no writer "
           f"mistake accepted): {'met' if met else 'not met'}")

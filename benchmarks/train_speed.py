@@ -157,7 +157,7 @@ def interleaved_best(entries: dict, seconds: float, windows: int = 5) -> dict:
     turns: window 1 of every entry, then window 2 of every entry, ... so that changing load from
     other work on the machine falls on all of them alike."""
     best = dict.fromkeys(entries, 0.0)
-    for name, (step, _, prepare) in entries.items():  # warm-up
+    for _name, (step, _, prepare) in entries.items():  # warm-up
         if prepare:
             prepare()
         step()

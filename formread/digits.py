@@ -114,6 +114,7 @@ def upscale_small(images: np.ndarray, factor: int = 4) -> np.ndarray:
     n, h, w = images.shape
     out = np.empty((n, h * factor, w * factor), np.float32)
     for i in range(n):
-        img = Image.fromarray(np.ascontiguousarray(images[i])).resize((w * factor, h * factor), Image.Resampling.BICUBIC)
+        img = Image.fromarray(np.ascontiguousarray(images[i])).resize((w * factor, h * factor),
+                                                                      Image.Resampling.BICUBIC)
         out[i] = np.asarray(img, dtype=np.float32)
     return np.clip(out, 0.0, None)

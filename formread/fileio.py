@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+import re
 import tempfile
 from pathlib import Path
 
@@ -59,7 +60,5 @@ def spreadsheet_cell(text) -> str:
 
 def form_slug(name: str) -> str:
     """A form's name as part of a file name: ``readings-<slug>.csv`` (lower case letters, digits, dashes)."""
-    import re
-
     slug = re.sub(r"[^a-z0-9]+", "-", str(name).lower()).strip("-")
     return (slug or "form")[:60]

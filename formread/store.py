@@ -22,6 +22,8 @@ import shutil
 from importlib import resources
 from pathlib import Path
 
+from platformdirs import user_data_dir
+
 from .errors import ModelFileError
 from .fileio import atomic_write
 
@@ -57,8 +59,6 @@ def store_dir() -> Path:
     home = os.environ.get("FORMREAD_HOME")
     if home:
         return Path(home).expanduser() / "models"
-    from platformdirs import user_data_dir
-
     return Path(user_data_dir("formread", appauthor=False)) / "models"
 
 

@@ -5,10 +5,14 @@ from __future__ import annotations
 import functools
 import sys
 import time
+from typing import TYPE_CHECKING
 
 import typer
 
 from ..errors import FormreadError, one_line
+
+if TYPE_CHECKING:  # rich is imported only when a bar is drawn on a terminal
+    from rich.progress import Progress, TaskID
 
 __all__ = ["EXIT_OK", "EXIT_ERROR", "EXIT_USAGE", "EXIT_PAGES_FAILED", "EXIT_INTERRUPTED",
            "edge", "fail", "ProgressBar"]
@@ -35,9 +39,9 @@ def edge(fn):
             return fn(*args, **kwargs)
         except FormreadError as e:
             fail(one_line(e))
-        except KeyboardInterrupt:
+        except KeyboardInterrupt as err:
             typer.echo("formread: interrupted; work saved so far is kept", err=True)
-            raise typer.Exit(EXIT_INTERRUPTED)
+            raise typer.Exit(EXIT_INTERRUPTED) from err
 
     return wrapper
 
@@ -63,11 +67,12 @@ class ProgressBar:
         self.stream = stream or sys.stderr
         self.t0 = time.monotonic()
         self._last = -1e9
-        self._rich = None
-        self._task = None
+        self._rich: Progress | None = None
+        self._task: TaskID | None = None
         if enabled and getattr(self.stream, "isatty", lambda: False)():
+            # here: rich only for a bar on a terminal, not at every command's start
             from rich.console import Console
-            from rich.progress import (BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn)
+            from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeRemainingColumn
 
             self._rich = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                                   TextColumn("{task.fields[rate]}"), TimeRemainingColumn(),

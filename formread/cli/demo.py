@@ -5,14 +5,16 @@ from __future__ import annotations
 import json
 from enum import Enum
 from pathlib import Path
-from typing import Optional
 
 import typer
 
+from .. import store
+from ..demo import make_demo
 from ..demo.fill import HALVES
 from ..demo.make import FORMS
 from ..demo.styles import STYLES
-
+from ..read.batch import SCAN_SUFFIXES, read_batch
+from ..read.evaluate import score_ledger
 from .common import EXIT_PAGES_FAILED, ProgressBar, edge, fail
 from .read import render_batch, render_summary
 
@@ -31,8 +33,6 @@ def register(app: typer.Typer) -> None:
 
 def demo_scans(folder: Path) -> list[Path]:
     """The scan files of a demo folder (its layout, truth and notes left out), sorted by name."""
-    from ..read.batch import SCAN_SUFFIXES
-
     return sorted((p for p in folder.iterdir() if p.is_file() and p.suffix.lower() in SCAN_SUFFIXES),
                   key=lambda p: p.name)
 
@@ -54,11 +54,7 @@ def demo_cmd(
     """
     if ctx.invoked_subcommand is not None:
         return
-    from ..store import demo_forms
-    from ..read.batch import read_batch
-    from ..read.evaluate import score_ledger
-
-    folder = demo_forms()
+    folder = store.demo_forms()   # looked up when called (tests put a folder of their own in its place)
     layout, truth = folder / "layout.toml", folder / "truth.jsonl"
     if not layout.is_file() or not truth.is_file():
         fail(f"{folder}: the demo forms are missing (no layout.toml or truth.jsonl)")
@@ -85,9 +81,9 @@ def demo_cmd(
 
 
 # the choices, listed by --help and checked by typer (exit 2 for anything else)
-Style = Enum("Style", {name: name for name in STYLES}, type=str)
-FormName = Enum("FormName", {name: name for name in FORMS}, type=str)
-Half = Enum("Half", {name: name for name in HALVES}, type=str)
+Style = Enum("Style", {name: name for name in STYLES}, type=str)  # type: ignore[misc]
+FormName = Enum("FormName", {name: name for name in FORMS}, type=str)  # type: ignore[misc]
+Half = Enum("Half", {name: name for name in HALVES}, type=str)  # type: ignore[misc]
 
 
 @demo_app.command("make")
@@ -99,7 +95,7 @@ def make_cmd(
     style: Style = typer.Option("demo", "--style", help="Writers and scanners (formread/demo/styles.py)."),
     form: FormName = typer.Option("meter", "--form", help="Which form: meter (water-meter card) or slip "
                                                           "(produce delivery slip)."),
-    half: Optional[Half] = typer.Option(None, "--half",
+    half: Half | None = typer.Option(None, "--half",
                                         help="Draw the handwriting from one fixed half of the MNIST test "
                                              "part only."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
@@ -108,8 +104,6 @@ def make_cmd(
 
     The styles are described in formread/demo/styles.py; the defaults make the shipped demo set.
     """
-    from ..demo import make_demo
-
     bar = ProgressBar("making forms", unit="pages", enabled=not quiet)
     info = make_demo(outdir, count=count, seed=seed, style=style.value, form=form.value,
                      half=None if half is None else half.value, progress=bar)

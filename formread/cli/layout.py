@@ -3,13 +3,20 @@
 
 from __future__ import annotations
 
+import io
 from pathlib import Path
-from typing import Optional
 
 import typer
 
 from ..errors import ImageError, LayoutError
 from ..fileio import atomic_write
+from ..form.edit import set_header_fingerprint
+from ..form.layout import load_layout, parse_layout
+from ..imaging.draft import draft_layout
+from ..imaging.fingerprint import blank_fingerprint
+from ..imaging.load import iter_pages
+from ..imaging.pipeline import process_page
+from ..imaging.proof import render_proof
 from .common import edge
 
 group = typer.Typer(name="layout", help="Make and check form layouts.", no_args_is_help=True)
@@ -22,8 +29,6 @@ def register(app: typer.Typer) -> None:
 
 def _page(scan: Path, number: int):
     """Page ``number`` (1-based) of a scan file; ImageError naming the file when it has no such page."""
-    from ..imaging.load import iter_pages
-
     if number < 1:
         raise ImageError(f"{scan}: no page {number} (pages count from 1)")
     count = 0
@@ -39,7 +44,7 @@ def _page(scan: Path, number: int):
 def proof_cmd(
     scan: Path = typer.Argument(..., help="Scanned form (PNG, TIFF, JPEG or PDF)."),
     layout_file: Path = typer.Option(..., "--layout", "-l", help="Layout file (TOML) to check."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o",
+    out: Path | None = typer.Option(None, "--out", "-o",
                                        help="PNG to write (default: SCAN's name with .proof-pN.png)."),
     page: int = typer.Option(1, "--page", "-p", help="Page of SCAN to use (1 = first)."),
     scale: float = typer.Option(0.5, "--scale", help="Size of the picture relative to the scan."),
@@ -49,12 +54,6 @@ def proof_cmd(
     Blue: field rectangles and cells; amber: digit boxes; grey dot: blank cell;
     plum: a doubtful field with its reason; green rings: registration marks used.
     """
-    import io
-
-    from ..form.layout import load_layout
-    from ..imaging.pipeline import process_page
-    from ..imaging.proof import render_proof
-
     layout = load_layout(layout_file)
     pg = _page(scan, page)
     result = process_page(pg, layout)
@@ -81,10 +80,10 @@ def proof_cmd(
 @edge
 def draft_cmd(
     blank_form: Path = typer.Argument(..., help="Straight scan of the blank form (PNG, TIFF, JPEG or PDF)."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o",
+    out: Path | None = typer.Option(None, "--out", "-o",
                                        help="Layout file to write (default: BLANK_FORM's name with .draft.toml)."),
     page: int = typer.Option(1, "--page", "-p", help="Page of BLANK_FORM to use (1 = first)."),
-    name: Optional[str] = typer.Option(None, "--name", help="The form's name in the layout."),
+    name: str | None = typer.Option(None, "--name", help="The form's name in the layout."),
     force: bool = typer.Option(False, "--force", help="Overwrite OUT if it exists."),
 ):
     """Draft a layout from a blank form: its corner squares and printed rectangles.
@@ -92,9 +91,6 @@ def draft_cmd(
     Fields are named field_1, field_2, ... in reading order; rename them, add rules,
     and check the result with `formread layout proof`.
     """
-    from ..imaging.draft import draft_layout
-    from ..form.layout import parse_layout
-
     target = out if out is not None else blank_form.with_name(f"{blank_form.stem}.draft.toml")
     if target.exists() and not force:
         raise LayoutError(f"{target}: already exists (use --force to overwrite)")
@@ -119,8 +115,9 @@ def draft_cmd(
 @edge
 def fingerprint_cmd(
     blank_form: Path = typer.Argument(..., help="Scan of the blank form (PNG, TIFF, JPEG or PDF), any way round."),
-    layout_file: Path = typer.Option(..., "--layout", "-l", help="The form's layout (TOML), with a [form.header] region."),
-    out: Optional[Path] = typer.Option(None, "--out", "-o",
+    layout_file: Path = typer.Option(..., "--layout", "-l",
+                                     help="The form's layout (TOML), with a [form.header] region."),
+    out: Path | None = typer.Option(None, "--out", "-o",
                                        help="Layout file to write (default: update LAYOUT in place)."),
     page: int = typer.Option(1, "--page", "-p", help="Page of BLANK_FORM to use (1 = first)."),
 ):
@@ -129,10 +126,6 @@ def fingerprint_cmd(
     With fingerprints, pages of forms that share their marks and fields are told apart by their
     printed headers; the rest of the layout file, comments included, is kept as it is.
     """
-    from ..form.edit import set_header_fingerprint
-    from ..form.layout import load_layout
-    from ..imaging.fingerprint import blank_fingerprint
-
     layout = load_layout(layout_file)
     if layout.header is None:
         raise LayoutError(f"{layout_file}: no [form.header] region (add x, y, w, h around the printed title first)")

@@ -6,11 +6,14 @@ import json
 import shlex
 import sys
 from pathlib import Path
-from typing import List, Optional
 
 import typer
 
+from ..form.edit import set_form_value
 from ..ledger.store import ledger_path
+from ..read.batch import read_batch
+from ..read.evaluate import score_ledger, tune_ledger
+from ..read.report import run_report
 from .common import EXIT_PAGES_FAILED, ProgressBar, edge, fail
 
 
@@ -39,22 +42,22 @@ def render_batch(report, *, out=None) -> None:
 
 @edge
 def read_cmd(
-    scans: List[Path] = typer.Argument(..., help="Scan files (PNG, JPEG, TIFF, PDF) or folders of them."),
-    layout: List[Path] = typer.Option(
+    scans: list[Path] = typer.Argument(..., help="Scan files (PNG, JPEG, TIFF, PDF) or folders of them."),
+    layout: list[Path] = typer.Option(
         ..., "--layout", "-l", help="The form's layout TOML; give it several times (or a folder of layouts) for a "
                                     "tray of several forms: each page is read as the one form it fits."),
     out: Path = typer.Option(..., "--out", "-o", help="Output folder (ledger, images, readings.csv)."),
-    model: Optional[Path] = typer.Option(None, "--model", "-m", help="Model file; the shipped one by default."),
-    threshold: Optional[float] = typer.Option(
+    model: Path | None = typer.Option(None, "--model", "-m", help="Model file; the shipped one by default."),
+    threshold: float | None = typer.Option(
         None, "--threshold", "-t", min=1e-9, max=1.0,
         help="Acceptance threshold for every field; default: the layout's, else the model's fitted one."),
-    audit: Optional[float] = typer.Option(
+    audit: float | None = typer.Option(
         None, "--audit", min=0.0, max=0.999999,
         help="Share of the fields that would be accepted sent to review as spot checks "
              "(default: the layout's 'audit', else 0.02)."),
     audit_seed: int = typer.Option(0, "--audit-seed", min=0, help="Seed of the spot-check draw."),
     workers: int = typer.Option(2, "--workers", "-w", min=1, max=64, help="Processes for the page work."),
-    scheduler: Optional[str] = typer.Option(
+    scheduler: str | None = typer.Option(
         None, "--scheduler", help="Run the page work on a Dask cluster (tcp://HOST:8786); needs formread[dask]."),
     send_bytes: bool = typer.Option(False, "--send-bytes", help="With --scheduler: send the scans' bytes to the "
                                                                   "workers (they do not share the scans' folder)."),
@@ -65,8 +68,6 @@ def read_cmd(
     Exit code 0 when every page was read, 3 when some pages failed or were not
     registered (each recorded with its reason), 1 on an error before reading.
     """
-    from ..read.batch import read_batch
-
     bar = ProgressBar("reading", unit="pages", enabled=not quiet)
     report = read_batch(scans, layout, out, bundle=model, threshold=threshold, audit=audit, audit_seed=audit_seed,
                         workers=workers, progress=bar, command=_command_line(), scheduler=scheduler,
@@ -127,17 +128,14 @@ def render_summary(s: dict) -> str:
 @edge
 def tune_cmd(
     outdir: Path = typer.Argument(..., help="Output folder of a read run (holds ledger.sqlite)."),
-    truth: Optional[Path] = typer.Option(
+    truth: Path | None = typer.Option(
         None, "--truth", help="Ground truth JSONL; default: the fields a clerk has confirmed or corrected."),
     target: float = typer.Option(0.005, "--target", help="Largest error rate allowed among accepted fields."),
-    write_layout: Optional[Path] = typer.Option(
+    write_layout: Path | None = typer.Option(
         None, "--write-layout", help="Store the chosen threshold as [form] threshold in this layout file."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
 ):
     """Choose the acceptance threshold that keeps the error among accepted fields under TARGET."""
-    from ..form.edit import set_form_value
-    from ..read.evaluate import tune_ledger
-
     result = tune_ledger(outdir, truth, target=target)
     if write_layout is not None:
         if not result["target_met"]:
@@ -169,11 +167,9 @@ def score_cmd(
     outdir: Path = typer.Argument(..., help="Output folder of a read run (holds ledger.sqlite)."),
     truth: Path = typer.Option(..., "--truth", help="Ground truth JSONL."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
-    curve: Optional[Path] = typer.Option(None, "--curve", help="Write the review/error curve as a PNG."),
+    curve: Path | None = typer.Option(None, "--curve", help="Write the review/error curve as a PNG."),
 ):
     """Score the ledger's readings (before review) against the ground truth."""
-    from ..read.evaluate import score_ledger
-
     summary = score_ledger(outdir, truth, curve_png=curve)
     if as_json:
         typer.echo(json.dumps(summary))
@@ -211,11 +207,9 @@ def render_report(s: dict) -> str:
 
 @edge
 def report_cmd(
-    outdirs: List[Path] = typer.Argument(..., metavar="OUTDIR...", help="Output folders of read runs."),
+    outdirs: list[Path] = typer.Argument(..., metavar="OUTDIR...", help="Output folders of read runs."),
     as_json: bool = typer.Option(False, "--json", help="Print one JSON object."),
 ):
     """Review load and the error among accepted fields, estimated from the spot checks a clerk decided."""
-    from ..read.report import run_report
-
     summary = run_report(outdirs).summary()
     typer.echo(json.dumps(summary) if as_json else render_report(summary))

@@ -1,13 +1,17 @@
-"""Commands that close the loop: ``learn`` (the whole step after a review), and its parts ``samples`` and ``retrain``."""
+"""Commands that close the loop: ``learn`` (the whole step after a review), and its parts ``samples`` and
+``retrain``."""
 
 from __future__ import annotations
 
 import json
 from pathlib import Path
-from typing import List, Optional
 
 import typer
 
+from ..learn.loop import LearnConfig, learn
+from ..learn.retrain import retrain
+from ..learn.samples import collect_samples
+from ..store import in_use_path
 from .common import ProgressBar, edge
 
 
@@ -18,8 +22,6 @@ def samples_cmd(
 ):
     """Add labelled digit images from confirmed and corrected fields to a samples folder
     (a part of `formread learn`, which also cuts fields again to their decided length)."""
-    from ..learn.samples import collect_samples
-
     rep = collect_samples(outdir, to)
     typer.echo(f"{rep.added} new digit images from {rep.fields_used} fields into {to} "
                f"({rep.duplicates} already there, {rep.relabelled} relabelled, "
@@ -32,8 +34,8 @@ def samples_cmd(
 @edge
 def retrain_cmd(
     samples: Path = typer.Option(..., "--samples", help="Local samples folder (DIR/<digit>/*.png)."),
-    model: Optional[Path] = typer.Option(None, "--model", help="Model to fine-tune (default: the one in use)."),
-    out: Optional[Path] = typer.Option(None, "--out", help="New version's path (default: <model>-r<N>.npz)."),
+    model: Path | None = typer.Option(None, "--model", help="Model to fine-tune (default: the one in use)."),
+    out: Path | None = typer.Option(None, "--out", help="New version's path (default: <model>-r<N>.npz)."),
     held_out: float = typer.Option(0.3, "--held-out", min=0.05, max=0.8,
                                    help="Share of each digit's samples kept for measuring."),
     epochs: int = typer.Option(6, "--epochs", min=1, max=1000, help="Fine-tuning epochs."),
@@ -53,9 +55,6 @@ def retrain_cmd(
     The new version keeps the parent's fitted decisions (inherited), so it is put in use only with
     --promote-inherited; `formread learn` fine-tunes, refits the decisions and promotes in one step.
     """
-    from ..store import in_use_path
-    from ..learn.retrain import retrain
-
     model_path = model or in_use_path()
     bar = ProgressBar("fine-tuning", unit="batches", enabled=not quiet and not as_json)
     rep = retrain(model_path, samples, out=out, held_out=held_out, epochs=epochs, margin=margin,
@@ -87,7 +86,8 @@ def _render_learn(rep) -> list[str]:
              "held-out pages                before    after",
              f"  field accuracy              {_pct(b['field_accuracy']):>6}   {_pct(a['field_accuracy']):>6}",
              f"  review rate at the target   {_pct(b['review_rate']):>6}   {_pct(a['review_rate']):>6}",
-             f"  error among accepted        {_pct(b['error_among_accepted']):>6}   {_pct(a['error_among_accepted']):>6}"
+             f"  error among accepted        {_pct(b['error_among_accepted']):>6}"
+             f"   {_pct(a['error_among_accepted']):>6}"
              f"   (95% upper bound after: {_pct(a['upper_95'])}, {a['wrong_accepted']} of {a['accepted']})"]
     for form, f in a["forms"].items():
         t = "no threshold meets it" if f["threshold"] is None else f"threshold {f['threshold']:.4f}"
@@ -101,10 +101,10 @@ def _render_learn(rep) -> list[str]:
 
 @edge
 def learn_cmd(
-    runs: List[Path] = typer.Argument(..., metavar="RUN...", help="Output folders of reviewed `formread read` runs."),
-    model: Optional[Path] = typer.Option(None, "--model", help="Bundle to learn from (default: the one in use)."),
-    out: Optional[Path] = typer.Option(None, "--out", help="New version's path (default: the store's next -r<N>)."),
-    target: Optional[float] = typer.Option(
+    runs: list[Path] = typer.Argument(..., metavar="RUN...", help="Output folders of reviewed `formread read` runs."),
+    model: Path | None = typer.Option(None, "--model", help="Bundle to learn from (default: the one in use)."),
+    out: Path | None = typer.Option(None, "--out", help="New version's path (default: the store's next -r<N>)."),
+    target: float | None = typer.Option(
         None, "--target", min=1e-6, max=0.499, help="Error among accepted fields aimed at (default: each layout's "
                                                     "target_error, else 0.005)."),
     held_out: float = typer.Option(0.3, "--held-out", min=0.05, max=0.8,
@@ -114,7 +114,7 @@ def learn_cmd(
                                  help="Most accuracy an original held-out part may lose for promotion."),
     seed: int = typer.Option(0, "--seed", min=0, help="Seeds the page split, the original-data sample and training."),
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted fine-tuning from its checkpoint."),
-    truth: Optional[List[Path]] = typer.Option(None, "--truth", help="Known values of a run's pages (truth.jsonl), "
+    truth: list[Path] | None = typer.Option(None, "--truth", help="Known values of a run's pages (truth.jsonl), "
                                                                      "for development sets; one per run, in order."),
     refit_only: bool = typer.Option(False, "--refit-only", help="No training: fit the decisions of the bundle's "
                                                                 "own network on every page (e.g. a new form)."),
@@ -128,8 +128,6 @@ def learn_cmd(
     when its review rate at the target falls there and the original held-out parts hold.  The next
     `formread read` uses it. Ctrl-C stops (exit 130, nothing promoted); --resume continues.
     """
-    from ..learn.loop import LearnConfig, learn
-
     bar = ProgressBar("fine-tuning", unit="batches", enabled=not quiet and not as_json)
     cfg = LearnConfig(held_out=held_out, seed=seed, epochs=epochs, margin=margin, target=target,
                       refit_only=refit_only)

@@ -8,8 +8,11 @@ from pathlib import Path
 
 import typer
 
-from typing import Optional
-
+from ..errors import LedgerError
+from ..ledger.store import open_ledger
+from ..review.bulk import apply_decisions, read_decisions
+from ..review.export import export_final
+from ..review.server import ReviewServer
 from .common import EXIT_PAGES_FAILED, edge
 
 
@@ -21,9 +24,6 @@ def _login_name() -> str:
 
 
 def _apply(outdir: Path, path: Path, reviewer: str) -> None:
-    from ..ledger.store import open_ledger
-    from ..review.bulk import apply_decisions, read_decisions
-
     records = read_decisions(path)
     with open_ledger(outdir, create=False) as led:
         rep = apply_decisions(led, records, reviewer=reviewer)
@@ -41,16 +41,13 @@ def review(
     outdir: Path = typer.Argument(..., help="Output folder of `formread read` (holds ledger.sqlite)."),
     port: int = typer.Option(0, "--port", min=0, max=65535, help="Port on 127.0.0.1; 0 picks a free one."),
     reviewer: str = typer.Option(None, "--reviewer", help="Name recorded with each decision (default: login name)."),
-    apply: Optional[Path] = typer.Option(
+    apply: Path | None = typer.Option(
         None, "--apply", help="Apply decisions from a JSON Lines or CSV file (source, page_number, field, value; "
                               "\"\" = blank, action \"unreadable\") instead of opening the page. Exit 3 when "
                               "some lines were refused."),
 ) -> None:
     """Check the flagged fields in a local web page (127.0.0.1 only; Ctrl-C stops, exit code 0),
     or apply a file of decisions keyed elsewhere (--apply)."""
-    from ..errors import LedgerError
-    from ..review.server import ReviewServer
-
     name = (reviewer or _login_name()).strip() or "unknown"
     if apply is not None:
         return _apply(outdir, apply, name)
@@ -84,8 +81,6 @@ def export(
     out: Path = typer.Option(None, "--out", help="Folder for the export files (default: OUTDIR)."),
 ) -> None:
     """Write the final values: final_values.csv (a row per page) and final_values.jsonl (a record per field)."""
-    from ..review.export import export_final
-
     res = export_final(outdir, out)
     tables = ", ".join(str(p) for p in res.csv_paths) if len(res.csv_paths) > 1 else str(res.csv_path)
     typer.echo(f"Wrote {tables} ({res.pages} pages) and {res.jsonl_path} ({res.fields} fields).")

@@ -6,15 +6,17 @@ import dataclasses
 import json
 from enum import Enum
 from pathlib import Path
-from typing import Optional
 
 import typer
 
 from ..errors import FormreadError, one_line
-from ..learn.datasets import PARTS
-from ..learn.recipe import Recipe, train_recipe
+from ..learn.datasets import PARTS, load_named
+from ..learn.recipe import Recipe, evaluate_bundle, train_recipe
 from ..nn.model import ARCHITECTURES
+from ..nn.modelfile import read_header
 from ..nn.train import OPTIMIZERS, SCHEDULES
+from ..read.bundle import load_bundle
+from ..store import in_use_path, migrate_checkout_models, shipped_model, store_dir, store_models
 from .common import EXIT_INTERRUPTED, ProgressBar, edge
 
 
@@ -29,7 +31,8 @@ class _EpochBars:
     """One ProgressBar line per epoch, fed by the training loop's progress callback."""
 
     def __init__(self, enabled: bool):
-        self.enabled, self.bar, self.epoch = enabled, None, None
+        self.enabled, self.epoch = enabled, None
+        self.bar: ProgressBar | None = None
 
     def __call__(self, done: int, total: int, **figures) -> None:
         epoch = figures.pop("epoch", None)
@@ -43,10 +46,11 @@ class _EpochBars:
 
 _RECIPE = Recipe()
 _CFG, _AUG = _RECIPE.config, _RECIPE.config.augment
-Arch = Enum("Arch", {name: name for name in sorted(ARCHITECTURES)}, type=str)
-Optimizer = Enum("Optimizer", {name: name for name in OPTIMIZERS}, type=str)
-Schedule = Enum("Schedule", {name: name for name in SCHEDULES}, type=str)
-Part = Enum("Part", {name: name for name in PARTS}, type=str)
+# the choices come from the registries; mypy reads Enum members from literal lists only
+Arch = Enum("Arch", {name: name for name in sorted(ARCHITECTURES)}, type=str)  # type: ignore[misc]
+Optimizer = Enum("Optimizer", {name: name for name in OPTIMIZERS}, type=str)  # type: ignore[misc]
+Schedule = Enum("Schedule", {name: name for name in SCHEDULES}, type=str)  # type: ignore[misc]
+Part = Enum("Part", {name: name for name in PARTS}, type=str)  # type: ignore[misc]
 
 
 @edge
@@ -81,7 +85,7 @@ def train_cmd(
     workers: int = typer.Option(_CFG.workers, "--workers", "-w", min=1, max=2,
                                 help="1, or 2 to split each batch over two processes "
                                      "(pays on an idle 2-core machine)."),
-    checkpoint: Optional[Path] = typer.Option(None, "--checkpoint",
+    checkpoint: Path | None = typer.Option(None, "--checkpoint",
                                               help="Checkpoint file (default: OUT with .ckpt appended)."),
     resume: bool = typer.Option(False, "--resume", help="Continue the run saved in the checkpoint."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bars."),
@@ -155,10 +159,6 @@ def evaluate_cmd(
     as_json: bool = typer.Option(False, "--json", help="Machine-readable output."),
 ):
     """Accuracy, per-class precision and recall, confusion matrix and calibration of MODEL."""
-    from ..learn.datasets import load_named
-    from ..learn.recipe import evaluate_bundle
-    from ..read.bundle import load_bundle
-
     bundle = load_bundle(model_path)
     data = load_named(dataset, part.value)
     rep = evaluate_bundle(bundle, data.x, data.y)
@@ -246,10 +246,7 @@ def render_card(bundle) -> str:
 
 def list_models() -> list[tuple[Path, dict | None, str | None]]:
     """The shipped model and the store's model files: (path, header or None, problem or None)."""
-    from ..nn.modelfile import read_header
-    from ..store import shipped_model, store_models
-
-    out = []
+    out: list[tuple[Path, dict | None, str | None]] = []
     for p in [shipped_model()] + store_models():
         try:
             out.append((p, read_header(p), None))
@@ -260,15 +257,12 @@ def list_models() -> list[tuple[Path, dict | None, str | None]]:
 
 @edge
 def info_cmd(
-    model_path: Optional[Path] = typer.Argument(None, metavar="[MODEL]",
+    model_path: Path | None = typer.Argument(None, metavar="[MODEL]",
                                                 help="Model file; without it, list the model files."),
     as_json: bool = typer.Option(False, "--json", help="Print the raw header as JSON."),
 ):
     """Show a model file's card (architecture, data, split, metrics, temperature, what was fitted for
     it, checksum), or list the shipped model and the store's models, marking the one in use."""
-    from ..read.bundle import load_bundle
-    from ..store import in_use_path, migrate_checkout_models, shipped_model, store_dir
-
     if model_path is not None:
         bundle = load_bundle(model_path)  # verifies the checksums
         if as_json:

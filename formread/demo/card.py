@@ -85,7 +85,7 @@ def mm_to_px(v: float, dpi: float) -> float:
     return v * dpi / 25.4
 
 
-def _font(size_mm: float, dpi: float) -> ImageFont.FreeTypeFont:
+def _font(size_mm: float, dpi: float) -> ImageFont.FreeTypeFont | ImageFont.ImageFont:
     # Pillow's built-in font (>= 10.1) scales without any system font installed.
     return ImageFont.load_default(size=max(6, round(mm_to_px(size_mm, dpi))))
 
@@ -141,6 +141,7 @@ def _render(layout: Layout, dpi: int, text: CardText = METER_TEXT) -> bytes:
     for x, y, s in marks_mm(layout):
         d.rectangle([p(x - s / 2), p(y - s / 2), p(x + s / 2) - 1, p(y + s / 2) - 1], fill=0)
 
+    assert layout.header is not None  # the demo layouts have a [form.header]
     hx, hy, hw, hh = layout.header.x, layout.header.y, layout.header.w, layout.header.h
     _text(d, hx + hw / 2, hy + hh * 0.32, text.title, 6.5, dpi, anchor="mm")
     _text(d, hx + hw / 2, hy + hh * 0.80, text.subtitle, 4.2, dpi, anchor="mm")

@@ -30,8 +30,8 @@ from functools import lru_cache
 import numpy as np
 from scipy import ndimage
 
-from ..learn.datasets import mnist_raw, mnist_split_indices
 from ..form.layout import FieldSpec
+from ..learn.datasets import mnist_raw, mnist_split_indices
 from .card import mm_to_px
 
 __all__ = ["DigitBank", "load_test_digits", "mnist_test_halves", "HALF_SEED", "HALVES", "Writer",
@@ -271,10 +271,10 @@ def _blotchy(cover: np.ndarray, strength: float, pen_px: float, rng: np.random.G
             yy, xx = np.ogrid[:cover.shape[0], :cover.shape[1]]
             disc = np.clip(radius + 0.5 - np.hypot(yy - rr[k], xx - cc[k]), 0.0, 1.0)
             cover = np.maximum(cover, disc)
-    r, k = np.nonzero(cover > 0.05)
+    r, c = np.nonzero(cover > 0.05)
     if r.size == 0:
         return cover.astype(np.float32)
-    return cover[r.min(): r.max() + 1, k.min(): k.max() + 1].astype(np.float32)
+    return cover[r.min(): r.max() + 1, c.min(): c.max() + 1].astype(np.float32)
 
 
 def _stamp(page: np.ndarray, cover: np.ndarray, top: int, left: int, ink: float) -> None:
@@ -305,6 +305,7 @@ def write_field(page: np.ndarray, fld: FieldSpec, text: str, writer: Writer, ban
     px = lambda v: mm_to_px(v, dpi)  # noqa: E731
     ink = lambda: float(np.clip(writer.ink + rng.normal(0, 8), 0, writer.ink_limit))  # noqa: E731
     if fld.kind == "boxed":
+        assert fld.cells is not None  # a boxed field has cells
         cw, ch = px(fld.w / fld.cells), px(fld.h)
         for k, ch_digit in enumerate(text):
             size = writer.size * (1 + rng.normal(0, 0.04))

@@ -23,16 +23,25 @@ import json
 import os
 import shutil
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
+from typing import Any
 
 import numpy as np
 from PIL import Image
 
 from ..errors import ParameterError, check_param
-from .card import LAYOUT_PATH, METER_TEXT, SLIP_LAYOUT_PATH, SLIP_TEXT, CardText, marks_mm, read_card_layout, \
-    render_card
+from .card import (
+    LAYOUT_PATH,
+    METER_TEXT,
+    SLIP_LAYOUT_PATH,
+    SLIP_TEXT,
+    CardText,
+    marks_mm,
+    read_card_layout,
+    render_card,
+)
 from .fill import HALVES, load_test_digits, random_writer, write_field
 from .scan import random_scan_settings, simulate_scan, to_bilevel
 from .styles import SCANNERS, STYLES, WRITERS, ScannerPopulation, draw_writer, style_populations
@@ -248,7 +257,7 @@ def make_demo(outdir: str | Path, *, count: int = 30, seed: int = 7, style: str 
     files = _plan(count, plan_rng)
     kinds = spec.mistake_kinds
     n_mistakes = max(1, round(spec.mistake_share * count)) if count >= 4 else 0
-    mistake_pages = plan_rng.choice(count, size=n_mistakes, replace=False) if n_mistakes else []
+    mistake_pages: np.ndarray | list[int] = plan_rng.choice(count, size=n_mistakes, replace=False) if n_mistakes else []
     first_kind = int(plan_rng.integers(0, len(kinds)))
     mistakes = {int(p): kinds[(first_kind + k) % len(kinds)] for k, p in enumerate(sorted(mistake_pages))}
     writer_pops, scanner_pops = style_populations(style)
@@ -289,7 +298,7 @@ def make_demo(outdir: str | Path, *, count: int = 30, seed: int = 7, style: str 
                 used += writer.used
                 digits += len(writer.used)
                 by_page.append(per_field)
-                rec = {"source": f.name, "page_number": k + 1, "fields": values,
+                rec: dict[str, Any] = {"source": f.name, "page_number": k + 1, "fields": values,
                        "scan": settings.as_record(), "writer_mistakes": [mistake] if mistake else []}
                 if not legacy:
                     rec["scan"].update(scanner=f.scanner, format=f.fmt, blur_px=round(settings.blur_px, 3))

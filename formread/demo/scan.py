@@ -7,7 +7,7 @@ bilevel mode (a fixed threshold).  A page may go in upside down.
 
 from __future__ import annotations
 
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 
 import numpy as np
 from PIL import Image
@@ -93,8 +93,11 @@ def random_scan_settings(rng: np.random.Generator, *, dpi: int, page_mm: tuple[f
     pts = np.array([[mm_to_px(x, dpi), mm_to_px(y, dpi), 1.0] for x, y in corners]).reshape(-1, 3)
     lo = mm_to_px(margin_mm, dpi)
     hi = np.array([shape[1], shape[0]]) - lo
-    base = dict(
+    base = ScanSettings(           # straight and exact until the loop below moves it
         dpi=dpi,
+        skew_deg=0.0,
+        shift_mm=(0.0, 0.0),
+        scale=1.0,
         blur_px=float(rng.uniform(*blur)) * dpi / 200,
         noise=float(rng.uniform(*noise)),
         paper=float(rng.uniform(236, 250)),
@@ -106,18 +109,18 @@ def random_scan_settings(rng: np.random.Generator, *, dpi: int, page_mm: tuple[f
     )
     reach = 1.0
     for attempt in range(200):
-        s = ScanSettings(
+        s = replace(
+            base,
             skew_deg=float(np.clip(rng.normal(0, 1.3), -3, 3)) * reach,
             shift_mm=(float(rng.uniform(-8, 8)) * reach, float(rng.uniform(-8, 8)) * reach),
             scale=float(1 + rng.uniform(-0.03, 0.03)),
-            **base,
         )
         out = pts @ scan_matrix(s, shape).T
         if (out >= lo).all() and (out <= hi).all():
             return s
         if attempt % 20 == 19:
             reach *= 0.8
-    return ScanSettings(skew_deg=0.0, shift_mm=(0.0, 0.0), scale=1.0, **base)
+    return base
 
 
 def _lighting(s: ScanSettings, shape: tuple[int, int]) -> np.ndarray:

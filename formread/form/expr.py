@@ -56,6 +56,7 @@ def _tokenize(text: str) -> list[_Tok]:
         if m is None or m.end() == pos:
             raise RuleError(f"unexpected character {text[pos]!r} at column {pos + 1}")
         kind = m.lastgroup
+        assert kind is not None  # every alternative of _TOKEN is a named group
         tok = _Tok(kind, m.group(kind), m.start(kind) + 1)
         if kind == "num" and len(tok.text) > _MAX_DIGITS:
             raise RuleError(f"number longer than {_MAX_DIGITS} digits at column {tok.col}")

@@ -12,8 +12,10 @@ import itertools
 import json
 import math
 import re
-from dataclasses import dataclass, field as dc_field
+from dataclasses import dataclass
+from dataclasses import field as dc_field
 from pathlib import Path
+from typing import NoReturn
 
 try:  # Python 3.11+
     import tomllib
@@ -246,7 +248,7 @@ class _Checker:
         self.source = source
         self.marks_seen: tuple[Mark, ...] = ()
 
-    def fail(self, where: str, problem: str):
+    def fail(self, where: str, problem: str) -> NoReturn:
         raise LayoutError(f"{self.source}: {where}: {problem}")
 
     def table(self, doc: dict, key: str, where: str, *, required: bool = True) -> dict | None:
@@ -332,6 +334,7 @@ class _Checker:
     def layout(self, doc: dict) -> Layout:
         self.unknown(doc, {"form", "marks", "fields", "relations"}, "layout")
         form = self.table(doc, "form", "layout")
+        assert form is not None  # a required table: table() raised otherwise
         self.unknown(form, {"name", "width_mm", "height_mm", "binarize", "threshold", "target_error", "audit",
                             "header"}, "[form]")
         name = self.string(form, "name", "[form]")
@@ -345,12 +348,14 @@ class _Checker:
         audit = self.number(form, "audit", "[form]", required=False)
         if audit is not None and not is_audit_rate(audit):
             self.fail("[form]", f"'audit' must be {AUDIT_RANGE}; got {audit:g}")
-        header = self.table(form, "header", "[form]", required=False)
+        header_table = self.table(form, "header", "[form]", required=False)
+        header: Region | None = None
         fingerprint = None
-        if header is not None:
-            self.unknown(header, {"x", "y", "w", "h", "fingerprint"}, "[form.header]")
-            fingerprint = self.fingerprint(header)
-            header = self.region({k: v for k, v in header.items() if k != "fingerprint"}, "[form.header]", W, H)
+        if header_table is not None:
+            self.unknown(header_table, {"x", "y", "w", "h", "fingerprint"}, "[form.header]")
+            fingerprint = self.fingerprint(header_table)
+            header = self.region({k: v for k, v in header_table.items() if k != "fingerprint"}, "[form.header]",
+                                 W, H)
         marks = self.marks(doc.get("marks"), W, H)
         self.marks_seen = marks
         fields = self.fields(doc.get("fields"), W, H)

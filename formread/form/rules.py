@@ -242,8 +242,9 @@ def check_relations(compiled: CompiledRules, values: dict[str, str | None]) -> d
     out: dict[str, bool | None] = {}
     for rel in compiled.relations:
         vals = [values.get(f) for f in rel.fields]
-        if all(isinstance(v, str) and v and v.isascii() and v.isdigit() for v in vals):
-            out[rel.text] = rel.holds({f: int(v) for f, v in zip(rel.fields, vals)})
+        ints = [int(v) for v in vals if isinstance(v, str) and v and v.isascii() and v.isdigit()]
+        if len(ints) == len(vals):
+            out[rel.text] = rel.holds(dict(zip(rel.fields, ints)))
         else:
             out[rel.text] = None
     return out

@@ -41,7 +41,7 @@ def threshold_otsu(gray: np.ndarray) -> float:
     if lo == hi:
         return float(lo)
     if np.issubdtype(a.dtype, np.integer):
-        counts = np.bincount((flat.astype(np.int64) - int(lo)))
+        counts = np.bincount(flat.astype(np.int64) - int(lo))
         centers = np.arange(int(lo), int(hi) + 1, dtype=np.float64)
     else:
         counts, edges = np.histogram(flat, bins=256, range=(float(lo), float(hi)))

@@ -138,9 +138,9 @@ def find_boxes(lab: np.ndarray, objs: list, dpi: float) -> list[Box]:
         fr = _frame(comp, k)
         if fr is None:
             continue
-        l, t, r, b, cells, line = fr
-        x0, y0 = sl[1].start + l, sl[0].start + t
-        out.append(Box(x0 / k, y0 / k, (r - l) / k, (b - t) / k, cells, line / k))
+        left, t, r, b, cells, line = fr
+        x0, y0 = sl[1].start + left, sl[0].start + t
+        out.append(Box(x0 / k, y0 / k, (r - left) / k, (b - t) / k, cells, line / k))
     # a frame around other frames is a panel, not a field
     inner = []
     for a in out:
@@ -175,9 +175,9 @@ def _rows_of_boxes(boxes: list[Box]) -> list[Box]:
             joined.append(a)
             continue
         # cells one box pitch wide, centred on the printed boxes
-        first, last = run[0].x + run[0].w / 2, run[-1].x + run[-1].w / 2
-        pitch = (last - first) / (len(run) - 1)
-        joined.append(Box(first - pitch / 2, a.y, len(run) * pitch, a.h, len(run), a.line))
+        x_first, x_last = run[0].x + run[0].w / 2, run[-1].x + run[-1].w / 2
+        pitch = (x_last - x_first) / (len(run) - 1)
+        joined.append(Box(x_first - pitch / 2, a.y, len(run) * pitch, a.h, len(run), a.line))
     return others + joined
 
 
@@ -201,7 +201,8 @@ def find_header(ink: np.ndarray, dpi: float, marks: list[Mark], boxes: list[Box]
     band = ink[:int(top * k)].copy()
     for x0, y0, x1, y1 in ([(m.x - m.size / 2, m.y - m.size / 2, m.x + m.size / 2, m.y + m.size / 2) for m in marks]
                            + [(b.x, b.y, b.x + b.w, b.y + b.h) for b in boxes]):
-        band[max(0, int((y0 - 1) * k)):max(0, int((y1 + 1) * k)), max(0, int((x0 - 1) * k)):max(0, int((x1 + 1) * k))] = False
+        band[max(0, int((y0 - 1) * k)):max(0, int((y1 + 1) * k)),
+             max(0, int((x0 - 1) * k)):max(0, int((x1 + 1) * k))] = False
     lab, n = ndimage.label(band, _8)
     keep = [sl for sl in ndimage.find_objects(lab) if sl is not None
             and max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start) >= 0.5 * k]

@@ -30,6 +30,7 @@ from scipy import ndimage
 
 from ..errors import LayoutError, RegistrationError
 from ..form.layout import FINGERPRINT_PATTERN, Layout, Region
+from .register import register_page
 
 __all__ = ["InkMap", "grid_shape", "header_densities", "make_fingerprint", "parse_fingerprint",
            "fingerprint_match", "compare_header", "blank_fingerprint", "CELL_MM", "SHIFT_MM", "WINDOW", "INK_SHARE"]
@@ -58,7 +59,7 @@ class InkMap:
     block: int
 
     @classmethod
-    def of(cls, image: np.ndarray, px_per_mm: float) -> "InkMap":
+    def of(cls, image: np.ndarray, px_per_mm: float) -> InkMap:
         """The ink map of a page (H, W) uint8 at ``px_per_mm`` pixels per millimetre."""
         image = np.asarray(image)
         block = max(2, int(round(PAPER_BLOCK_MM * px_per_mm)))
@@ -192,7 +193,9 @@ def fingerprint_match(ink: InkMap, matrix: np.ndarray, header: Region, fingerpri
 
     ink : the page's ``InkMap``; matrix : (2, 3) float64, layout mm -> its pixels.
     """
-    return compare_header(ink, matrix, header, fingerprint)[1]
+    match = compare_header(ink, matrix, header, fingerprint)[1]
+    assert match is not None  # a fingerprint was given
+    return match
 
 
 def compare_header(ink: InkMap, matrix: np.ndarray, header: Region,
@@ -236,8 +239,6 @@ def blank_fingerprint(page, layout: Layout) -> str:
     Raises ``LayoutError`` when the layout has no header region, ``RegistrationError`` when the page
     cannot be registered or its header region is blank.
     """
-    from .register import register_page
-
     if layout.header is None:
         raise LayoutError(f"{layout.source}: no [form.header] region to take a fingerprint of (add x, y, w, h "
                           f"around the printed title)")

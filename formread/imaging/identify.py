@@ -257,8 +257,7 @@ def identify_form(page: Page, layouts) -> Identification:
         key = (reg.turn_deg, reg.image.shape, reg.dpi)
         if key not in inks:
             inks[key] = InkMap.of(reg.image, reg.dpi / 25.4)
-        ev = _judge(i, layout, reg, inks[key])
-        evidence.append(ev)
+        evidence.append(_judge(i, layout, reg, inks[key]))
         regs[i] = reg
     log.debug("%s: %s", where, evidence)
     fits = [e for e in evidence if e.fits]
@@ -276,8 +275,8 @@ def identify_form(page: Page, layouts) -> Identification:
         why = f"fits {_fmt(a)}" + (f", told apart from {', '.join(_fmt(b) for b in rest)}" if rest else "")
         near = [e for e in evidence if not e.fits and e.residual_mm is not None]
         if near:
-            e = max(near, key=_closeness)
-            why += f"; next closest {e.name!r}: {e.reason}"
+            nearest = max(near, key=_closeness)
+            why += f"; next closest {nearest.name!r}: {nearest.reason}"
         return Identification("identified", a.index, regs[a.index], why, a.index, a.residual_mm, ev)
     return Identification("ambiguous", None, None,
                           f"fits {' and '.join(_fmt(e) for e in fits)} about equally; nothing tells them apart",

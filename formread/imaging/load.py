@@ -20,9 +20,9 @@ import re
 import struct
 import warnings
 import zlib
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Iterator
 
 import numpy as np
 from PIL import Image, ImageOps
@@ -158,6 +158,8 @@ def _image_pages(path: Path, src: str, dpi: float | None) -> Iterator[Page]:
 def _file_dpi(info: dict) -> float:
     """The horizontal resolution the file states, or FALLBACK_DPI when absent or implausible."""
     d = info.get("dpi")
+    if d is None:
+        return FALLBACK_DPI
     try:
         x = float(d[0])
     except (TypeError, ValueError, IndexError):
@@ -168,6 +170,8 @@ def _file_dpi(info: dict) -> float:
 def _aspect(info: dict) -> float | None:
     """ydpi / xdpi when the file states non-square pixels (beyond 1 %), else None."""
     d = info.get("dpi")
+    if d is None:
+        return None
     try:
         x, y = float(d[0]), float(d[1])
     except (TypeError, ValueError, IndexError):
@@ -228,7 +232,7 @@ def _why(e: BaseException) -> str:
 # ---------------------------------------------------------------------------------------------- PDF
 
 def _pdf_pages(path: Path, src: str, dpi: float) -> Iterator[Page]:
-    import pypdfium2 as pdfium
+    import pypdfium2 as pdfium  # here: PDFium's native library is loaded only when a PDF is read
 
     try:
         doc = pdfium.PdfDocument(str(path))

@@ -16,7 +16,8 @@ import numpy as np
 
 from ..errors import SegmentationError
 from .binarize import choose_method, page_ink_level
-from .fields import cut_field, field_corners_px
+from .fields import crop_to_page, cut_field, field_corners_px
+from .register import Registration, register_page
 from .segment import FieldDigits, segment_field
 
 __all__ = ["PageDigits", "process_page", "STEPS"]
@@ -45,7 +46,7 @@ class PageDigits:
         The crop each field was segmented from (missing for a field that could not be cut).
     """
 
-    registration: object
+    registration: Registration
     fields: dict
     method: str = "otsu"
     level: float = 127.0
@@ -55,8 +56,6 @@ class PageDigits:
 def _failed(field, reg, reason: str, crop=None) -> FieldDigits:
     """A field that could not be segmented: no candidates, doubtful, with the reason (and its crop if cut)."""
     if crop is not None:
-        from .fields import crop_to_page
-
         h, w = crop.gray.shape
         corners = crop_to_page(crop, [[0, 0], [w, 0], [w, h], [0, h]])
         image, rect = crop.gray, crop.rect
@@ -94,8 +93,6 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
     RegistrationError
         When the page cannot be matched to the layout (from ``register_page``).
     """
-    from .register import register_page
-
     tick = time.perf_counter
 
     def add(step: str, t0: float) -> float:

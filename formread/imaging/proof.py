@@ -61,8 +61,8 @@ def render_proof(page_digits, layout, *, scale: float = 0.5) -> Image.Image:
     lw = max(1, int(round(3 * scale)))
     s = scale
     px_per_mm = affine_scale(reg.matrix)
-    size = max(10, int(round(2.8 * px_per_mm * s)))       # labels about 2.8 mm tall on the page
-    font = ImageFont.load_default(size=size)
+    label_px = max(10, int(round(2.8 * px_per_mm * s)))   # labels about 2.8 mm tall on the page
+    font = ImageFont.load_default(size=label_px)
 
     def mm_to_img(points_mm) -> np.ndarray:
         return apply_affine(reg.matrix, points_mm) * s
@@ -84,7 +84,7 @@ def render_proof(page_digits, layout, *, scale: float = 0.5) -> Image.Image:
             _poly(draw, mm_to_img([(c.x, c.y), (c.x, c.y + c.h)])[[0, 1, 1, 0]], PALETTE["cell"], max(1, lw // 2))
         _poly(draw, rect, colour, lw)
         label = f.name if fd is None or not fd.doubtful else f"{f.name}: {fd.reason}"
-        tx, ty = rect[0, 0], rect[0, 1] - size - 3
+        tx, ty = rect[0, 0], rect[0, 1] - label_px - 3
         draw.text((tx, max(0.0, ty)), label, fill=colour, font=font)
         if fd is None or not fd.candidates:
             continue

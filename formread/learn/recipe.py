@@ -13,9 +13,9 @@ from __future__ import annotations
 
 import dataclasses
 import shlex
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 

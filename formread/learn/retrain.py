@@ -21,9 +21,10 @@ such a model is refused.
 
 from __future__ import annotations
 
+import time
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
@@ -105,8 +106,6 @@ def retrain(model_path: str | Path, samples_dir: str | Path, *, out: str | Path 
     ------
     ModelFileError for a bad model file; DataError for too few or unusable samples.
     """
-    import time
-
     t0 = time.monotonic()
     model_path = Path(model_path)
     out_path = Path(out) if out is not None else next_version_path(model_path)

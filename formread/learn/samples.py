@@ -16,6 +16,7 @@ hash of its pixels); a field decided again with another value has its old sample
 from __future__ import annotations
 
 import hashlib
+import io
 import json
 import re
 from dataclasses import dataclass, field
@@ -63,8 +64,6 @@ def _to_png_array(digit: np.ndarray) -> np.ndarray:
 
 
 def _png_bytes(img: np.ndarray) -> bytes:
-    import io
-
     buf = io.BytesIO()
     Image.fromarray(img).save(buf, format="PNG")
     return buf.getvalue()
@@ -170,7 +169,9 @@ def collect_samples(outdir: str | Path, samples_dir: str | Path, *,
                 report.duplicates += 1
                 continue
             if old is not None:
-                _inside(root, old["file"]).unlink(missing_ok=True)
+                old_path = _inside(root, old["file"])
+                assert old_path is not None  # _read_manifest checked every record
+                old_path.unlink(missing_ok=True)
                 records.remove(old)
                 report.relabelled += 1
             rel = f"{digit}/{name}"

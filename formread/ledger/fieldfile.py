@@ -75,6 +75,8 @@ class FieldFile:
 
     def candidates(self) -> list[tuple[np.ndarray, float]]:
         """Every candidate's digits as ((K_i, 1, 28, 28) float32 in [0, 1], cost), in stored order."""
+        assert self.cand_spans is not None and self.cand_costs is not None and self.cand_digits is not None, \
+            "candidates of a file written before schema version 2"
         out = []
         for (a, b), c in zip(self.cand_spans, self.cand_costs):
             d = self.cand_digits[a:b].astype(np.float32)[:, None] / np.float32(255.0)

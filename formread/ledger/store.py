@@ -173,6 +173,7 @@ class Ledger:
                 (utc_now(), str(layout_path), layout_sha256, str(model_path), model_sha256, float(threshold),
                  command, layout_text, None if bundle is None else json.dumps(bundle, sort_keys=True),
                  float(audit_rate)))
+            assert cur.lastrowid is not None  # set by the INSERT
             return int(cur.lastrowid)
 
     def add_run_form(self, run_id: int, *, form: str, layout_path: str, layout_sha256: str, layout_text: str,

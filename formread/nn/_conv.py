@@ -13,6 +13,7 @@ import threading
 
 import numpy as np
 from numpy.lib.stride_tricks import as_strided
+from threadpoolctl import ThreadpoolController
 
 
 class Scratch:
@@ -65,7 +66,6 @@ class _OneBlasThread:
         with self._lock:
             if self._depth == 0:
                 if self._controller is None:
-                    from threadpoolctl import ThreadpoolController
                     self._controller = ThreadpoolController()
                 self._limiter = self._controller.limit(limits=1, user_api="blas")
             self._depth += 1

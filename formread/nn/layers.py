@@ -55,7 +55,9 @@ class Layer:
 
     def backward(self, dy: np.ndarray) -> np.ndarray:
         """dy (N, ...) like the last output -> dx (N, ...) like the last input; fills ``.grad``."""
-        return to_public(self._bwd(to_internal(np.asarray(dy)), True))
+        dx = self._bwd(to_internal(np.asarray(dy)), True)
+        assert dx is not None  # need_dx=True: every layer returns dx
+        return to_public(dx)
 
     def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         raise NotImplementedError
@@ -71,7 +73,7 @@ class Layer:
         """JSON-serialisable description that ``build_model`` turns back into this layer."""
         return {"type": self.kind}
 
-    def astype(self, dtype) -> "Layer":
+    def astype(self, dtype) -> Layer:
         """Convert parameters to ``dtype`` in place (e.g. float64 for gradient checks)."""
         for p in self.params():
             p.value = p.value.astype(dtype)
@@ -80,7 +82,7 @@ class Layer:
 
 
 def _check_positive_int(name: str, value) -> int:
-    check_param(isinstance(value, (int, np.integer)) and not isinstance(value, bool) and value > 0,
+    check_param(bool(isinstance(value, (int, np.integer)) and not isinstance(value, bool) and value > 0),
                 name, "a positive integer", value)
     return int(value)
 
@@ -110,7 +112,7 @@ class Conv2D(Layer):
         self.weight = Param(w, "weight")
         self.bias = Param(np.zeros(out_ch, dtype=dtype), "bias")
         self._scratch = _conv.Scratch()
-        self._cache = None
+        self._cache: tuple[np.ndarray, tuple[int, ...]] | None = None  # (cols, x.shape) of the last forward
 
     def params(self) -> list[Param]:
         return [self.weight, self.bias]
@@ -128,13 +130,14 @@ class Conv2D(Layer):
 
     def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         self.check_input(x)
-        k, p = self.kernel, self.padding
+        p = self.padding
         y, cols = _conv.conv_forward(x, self.weight.value, self.bias.value, self.stride, p,
                                      self._scratch)
         self._cache = (cols, x.shape)
         return y
 
     def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        assert self._cache is not None, "backward before forward"
         cols, xshape = self._cache
         dx, dw, db = _conv.conv_backward(dy, self.weight.value, cols, xshape, self.stride,
                                          self.padding, self._scratch, need_dx)
@@ -147,7 +150,7 @@ class _Pool(Layer):
     def __init__(self, size: int = 2, stride: int | None = None):
         self.size = _check_positive_int("size", size)
         self.stride = self.size if stride is None else _check_positive_int("stride", stride)
-        self._cache = None
+        self._cache: tuple | None = None  # what the subclass's backward needs from the last forward
 
     def spec(self) -> dict:
         return {"type": self.kind, "size": self.size, "stride": self.stride}
@@ -168,6 +171,7 @@ class MaxPool2D(_Pool):
         return y
 
     def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        assert self._cache is not None, "backward before forward"
         arg, xshape = self._cache
         if self.size == self.stride:
             return _conv.maxpool_tiled_backward(dy, arg, xshape, self.size)
@@ -184,6 +188,7 @@ class AvgPool2D(_Pool):
         return _conv.avgpool_forward(x, self.size, self.stride)
 
     def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        assert self._cache is not None, "backward before forward"
         return _conv.avgpool_backward(dy, self._cache, self.size, self.stride)
 
 
@@ -203,7 +208,7 @@ class Dense(Layer):
         w = rng.uniform(-bound, bound, size=(in_features, out_features)).astype(dtype)
         self.weight = Param(w, "weight")
         self.bias = Param(np.zeros(out_features, dtype=dtype), "bias")
-        self._x = None
+        self._x: np.ndarray | None = None  # the last forward's input (in, N)
 
     def params(self) -> list[Param]:
         return [self.weight, self.bias]
@@ -220,6 +225,7 @@ class Dense(Layer):
         return y
 
     def _bwd(self, dy: np.ndarray, need_dx: bool) -> np.ndarray | None:
+        assert self._x is not None, "backward before forward"
         self.weight.grad = np.matmul(self._x, dy.T)
         self.bias.grad = dy.sum(axis=1)
         return np.matmul(self.weight.value, dy) if need_dx else None

@@ -100,6 +100,7 @@ class _ConvReluPool:
         # Few output channels make a thin matmul: then compute whole pooling tiles per product
         # (measured faster for LeNet-5's first layer, slower for wider layers).
         self.tiled = conv.stride == 1 and conv.out_ch * pool.size ** 2 <= 32
+        self._cache: tuple | None = None  # what backward needs from the last forward
 
     def _fwd(self, x: np.ndarray, train: bool) -> np.ndarray:
         conv, k = self.conv, self.pool.size
@@ -122,6 +123,7 @@ class _ConvReluPool:
 
     def _bwd(self, da: np.ndarray, need_dx: bool) -> np.ndarray | None:
         conv = self.conv
+        assert self._cache is not None, "backward before forward"
         if self.tiled:
             x, cols, _, args, a = self._cache
             if args is None:  # forward ran with train=False
@@ -148,7 +150,8 @@ class _ConvReluPool:
 
 def _blocks(layers: list[L.Layer]) -> list:
     """The layers grouped for execution: Conv2D, ReLU, MaxPool2D(size == stride) run fused."""
-    out, i = [], 0
+    out: list[_ConvReluPool | L.Layer] = []
+    i = 0
     while i < len(layers):
         a, b, c = (layers[i:i + 3] + [None, None])[:3]
         if (isinstance(a, L.Conv2D) and isinstance(b, L.ReLU) and isinstance(c, L.MaxPool2D)
@@ -156,7 +159,7 @@ def _blocks(layers: list[L.Layer]) -> list:
             out.append(_ConvReluPool(a, b, c))
             i += 3
         else:
-            out.append(a)
+            out.append(layers[i])
             i += 1
     return out
 
@@ -225,6 +228,7 @@ class Sequential:
             if out is None:
                 out = np.empty((n,) + z.shape[1:], dtype=z.dtype)
             out[start:start + len(z)] = z
+        assert out is not None  # n > INFER_CHUNK: the loop ran
         return out
 
     def backward(self, dlogits: np.ndarray, input_grad: bool = True) -> np.ndarray | None:
@@ -293,7 +297,7 @@ class Sequential:
             p.value = v.astype(p.value.dtype, copy=True)
             p.grad = np.zeros_like(p.value)
 
-    def astype(self, dtype) -> "Sequential":
+    def astype(self, dtype) -> Sequential:
         """Convert every parameter to ``dtype`` in place; returns self."""
         for layer in self.layers:
             layer.astype(dtype)

@@ -144,7 +144,7 @@ def save_networks(path: str | os.PathLike, networks, header: dict | None = None)
     payload = dict(arrays)
     payload[HEADER_KEY] = np.frombuffer(text.encode("utf-8"), dtype=np.uint8)
     with atomic_open(path) as f:
-        np.savez(f, **payload)
+        np.savez(f, **payload)  # type: ignore[arg-type]  # numpy's stub lets **kwds fill allow_pickle: bool
     return full
 
 

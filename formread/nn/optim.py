@@ -8,7 +8,7 @@ from the adaptive step, as AdamW does (Loshchilov and Hutter 2019).
 from __future__ import annotations
 
 import math
-from typing import Callable
+from collections.abc import Callable
 
 import numpy as np
 

@@ -184,13 +184,13 @@ class DataParallel:
         check_param(isinstance(model, Sequential), "model", "a Sequential", type(model))
         self.model = model
         self.seed = int(seed)
-        self._proc = None
+        self._proc: subprocess.Popen[str] | None = None
         self._capacity = 0
-        self._in_shape = None
+        self._in_shape: tuple | None = None
         self._limits = None
-        self._finalizer = None
+        self._finalizer: weakref.finalize | None = None
 
-    def __enter__(self) -> "DataParallel":
+    def __enter__(self) -> DataParallel:
         return self
 
     def __exit__(self, *exc) -> None:
@@ -230,6 +230,7 @@ class DataParallel:
         env["PYTHONPATH"] = os.pathsep.join(filter(None, [root, os.environ.get("PYTHONPATH")]))
         proc = subprocess.Popen([sys.executable, "-m", "formread.nn.parallel"], stdin=subprocess.PIPE,
                                 stdout=subprocess.PIPE, text=True, bufsize=1, env=env)
+        assert proc.stdin is not None and proc.stdout is not None  # both are pipes
         self._finalizer = weakref.finalize(self, _shutdown, proc, path)
         cfg = {"path": path, "dtype": dtype.str, "shapes": [list(s) for s in shapes],
                "spec": self.model.spec, "seed": self.seed, "capacity": capacity,
@@ -318,6 +319,7 @@ class DataParallel:
         np.copyto(self._xbuf[:n2], xpart, casting="unsafe")
         if ypart is not None:
             self._ybuf[:n2] = ypart
+        assert self._proc is not None and self._proc.stdin is not None  # _start ran and made the pipe
         try:
             self._proc.stdin.write(command + "\n")
             self._proc.stdin.flush()

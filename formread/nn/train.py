@@ -28,9 +28,9 @@ import math
 import os
 import time
 import zipfile
+from collections.abc import Callable
 from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
@@ -38,7 +38,7 @@ from ..errors import DataError, ParameterError, check_param
 from ..fileio import atomic_open
 from .augment import AugmentConfig, augment_batch
 from .calibrate import fit_temperature, scaled_nll, softmax
-from .metrics import expected_calibration_error
+from .metrics import classification_report, expected_calibration_error
 from .model import Sequential
 from .optim import SGD, Adam, cosine_schedule, step_schedule
 from .parallel import DataParallel
@@ -131,7 +131,7 @@ class TrainConfig:
         return asdict(self)
 
     @classmethod
-    def from_dict(cls, d: dict) -> "TrainConfig":
+    def from_dict(cls, d: dict) -> TrainConfig:
         d = dict(d)
         aug = AugmentConfig(**d.pop("augment", {}))
         known = {f.name for f in fields(cls)}
@@ -190,7 +190,7 @@ def stratified_split(y: np.ndarray, fraction: float, rng: np.random.Generator) -
     train, val : sorted ndarrays of int64 indices (disjoint, covering 0..N-1)
     """
     y = np.asarray(y)
-    val = []
+    parts: list[np.ndarray] = []
     if fraction > 0:
         for c in np.unique(y):
             idx = np.flatnonzero(y == c)
@@ -198,8 +198,8 @@ def stratified_split(y: np.ndarray, fraction: float, rng: np.random.Generator) -
             if k >= idx.size:
                 k = idx.size - 1
             if k > 0:
-                val.append(rng.choice(idx, size=k, replace=False))
-    val = np.sort(np.concatenate(val)) if val else np.zeros(0, np.int64)
+                parts.append(rng.choice(idx, size=k, replace=False))
+    val = np.sort(np.concatenate(parts)) if parts else np.zeros(0, np.int64)
     mask = np.ones(y.size, bool)
     mask[val] = False
     return np.flatnonzero(mask).astype(np.int64), val.astype(np.int64)
@@ -263,8 +263,9 @@ def _restore_optimizer(opt, arrays: dict[str, np.ndarray], meta: dict, where: Pa
         opt.t = int(meta.get("t", 0))
 
 
-def _layer_rngs(model: Sequential) -> list:
-    return [layer.rng for layer in model.layers if isinstance(getattr(layer, "rng", None), np.random.Generator)]
+def _layer_rngs(model: Sequential) -> list[np.random.Generator]:
+    rngs = [getattr(layer, "rng", None) for layer in model.layers]
+    return [r for r in rngs if isinstance(r, np.random.Generator)]
 
 
 def _fingerprint(x: np.ndarray, y: np.ndarray) -> str:
@@ -276,7 +277,7 @@ def _fingerprint(x: np.ndarray, y: np.ndarray) -> str:
 
 def _atomic_savez(path: Path, arrays: dict[str, np.ndarray]) -> None:
     with atomic_open(path) as f:
-        np.savez(f, **arrays)
+        np.savez(f, **arrays)  # type: ignore[arg-type]  # numpy's stub lets **kwds fill allow_pickle: bool
 
 
 def _save_checkpoint(path: Path, model, best_state, opt, rng, state: dict) -> None:
@@ -498,8 +499,6 @@ def evaluate(model: Sequential, x: np.ndarray, y: np.ndarray, temperature: float
     :func:`formread.nn.metrics.classification_report`), ``ece_raw`` and ``nll_raw`` at
     temperature 1, ``ece`` and ``nll`` at ``temperature``, and ``temperature``.
     """
-    from .metrics import classification_report
-
     logits = predict_logits(model, x)
     raw = classification_report(softmax(logits), y)
     cal = classification_report(softmax(logits, temperature), y)

@@ -22,7 +22,7 @@ __all__ = ["audit_draw", "apply_audit"]
 
 def audit_draw(content_hash: str, field: str, seed: int = 0) -> float:
     """A number in [0, 1), uniform over fields, fixed by (page content, field name, seed)."""
-    h = hashlib.sha256(f"formread-audit:{seed}:{content_hash}:{field}".encode("utf-8")).digest()
+    h = hashlib.sha256(f"formread-audit:{seed}:{content_hash}:{field}".encode()).digest()
     return int.from_bytes(h[:8], "big") / 2.0 ** 64
 
 

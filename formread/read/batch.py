@@ -22,13 +22,17 @@ import dataclasses
 import hashlib
 import multiprocessing
 import os
+import signal
 import stat
+import threading
 import time
 from collections import deque
 from collections.abc import Callable, Iterable
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+
+from threadpoolctl import threadpool_limits
 
 from ..errors import ImageError, LayoutError, LedgerError, check_param, one_line
 from ..form.layout import Layout, parse_layout, read_layout_text
@@ -125,6 +129,7 @@ def list_scans(inputs: Iterable) -> list[tuple[str, str | None]]:
     # the same file named twice (or by two paths) is read once
     unique = []
     for source, refusal in out:
+        key: Path | str
         try:
             key = Path(source).resolve()
         except (OSError, RuntimeError):
@@ -165,14 +170,10 @@ _STATE: dict = {}
 
 def _init_worker(ctx: RunContext, pin_threads: bool, parent: int | None = None) -> None:
     """Worker start: keep the run's context; one BLAS thread; Ctrl-C left to the main process."""
-    import signal
-
     if pin_threads:
         signal.signal(signal.SIGINT, signal.SIG_IGN)   # Ctrl-C is the main process's business
         if parent is not None:
             _watch_parent(parent)
-        from threadpoolctl import threadpool_limits
-
         _STATE["limits"] = threadpool_limits(limits=1)
     _STATE["ctx"] = ctx
 
@@ -182,8 +183,6 @@ def _watch_parent(parent: int) -> None:
 
     The pid is the reader's own, passed in: a reader killed while its workers still start up has
     already gone when they get here, so asking for the parent now would name init's pid instead."""
-    import threading
-
     if os.getppid() != parent:
         os._exit(0)
 
@@ -307,7 +306,7 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
     scans = list_scans(inputs)
     cluster = None
     if scheduler is not None:
-        from .cluster import connect
+        from .cluster import connect  # here: cluster imports this module's helpers (an import cycle)
         cluster = connect(scheduler)              # an unreachable scheduler: one line before any page
     ledger = open_ledger(outdir)
     try:
@@ -327,7 +326,7 @@ def read_batch(inputs: Iterable, layout, outdir, *, bundle=None, threshold: floa
         report = BatchReport(run_id=run_id, outdir=Path(outdir))
         try:
             if cluster is not None:
-                from .cluster import run_on_cluster
+                from .cluster import run_on_cluster  # here: an import cycle, as above
                 run_on_cluster(cluster, scans, ctx, ledger, report, progress, send_bytes=send_bytes,
                                write=_write)
             else:
@@ -372,11 +371,11 @@ def _run(scans, ctx: RunContext, ledger: Ledger, report: BatchReport, workers: i
                                    initargs=(ctx, True, os.getpid()))
     else:
         _init_worker(ctx, False)
-    from threadpoolctl import threadpool_limits
 
     # with workers busy on the other cores, the main process's BLAS keeps to one thread
     limits = threadpool_limits(limits=1) if pin else None
-    counts = {"files": len(scans), "pages": 0, "sources": set()}
+    counts = {"files": len(scans), "pages": 0}
+    sources: set[str] = set()   # the files opened so far
     queued: set = set()
 
     def submit(item):
@@ -384,7 +383,7 @@ def _run(scans, ctx: RunContext, ledger: Ledger, report: BatchReport, workers: i
             return _Done(item)
         page, h, load_s = item
         counts["pages"] += 1
-        counts["sources"].add(page.source)
+        sources.add(page.source)
         report.imaging_seconds += load_s
         report.stages["load"] = report.stages.get("load", 0.0) + load_s
         prior = known.get(h)
@@ -400,7 +399,7 @@ def _run(scans, ctx: RunContext, ledger: Ledger, report: BatchReport, workers: i
             _write(work, known, ledger, report)
             if progress is not None:
                 # total: pages met so far plus one per file not opened yet
-                total = counts["pages"] + max(0, counts["files"] - len(counts["sources"]))
+                total = counts["pages"] + max(0, counts["files"] - len(sources))
                 progress(report.pages, max(total, report.pages), review=report.review, failed=len(report.problems))
     finally:
         if limits is not None:

@@ -226,7 +226,7 @@ class Bundle:
             return None
         return lambda target, name: self.decisions.threshold_for(form, name, target)
 
-    def save_successor(self, path, networks, header: dict) -> "Bundle":
+    def save_successor(self, path, networks, header: dict) -> Bundle:
         """Write new networks (a retrained version) that keep this bundle's fitted parts, as
         inherited: they were fitted for this bundle's networks, not the new ones."""
         return save_bundle(path, networks, header, decoder=self.decoder, decoder_fitted_for=self.decoder_fitted_for,

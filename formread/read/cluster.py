@@ -25,6 +25,7 @@ import time
 from pathlib import Path
 
 from ..errors import ClusterError, ImageError, one_line
+from .batch import _file_failure_hash, _known, decoded_pages, display_name
 from .pagework import PageWork, RunContext, failed_page, read_page
 
 __all__ = ["connect", "run_on_cluster", "CONNECT_SECONDS"]
@@ -36,7 +37,7 @@ CONNECT_SECONDS = 10.0
 def connect(address: str):
     """A Dask client of the scheduler at ``address``; ClusterError when it cannot be reached."""
     try:
-        from distributed import Client
+        from distributed import Client  # here: the optional dask extra, imported only for --scheduler
     except ImportError:
         raise ClusterError("--scheduler needs the distributed package: pip install 'formread[dask]'") from None
     try:
@@ -48,8 +49,6 @@ def connect(address: str):
 def _file_task(path: str, source: str, data: bytes | None, ctx: RunContext, known: frozenset) -> list[PageWork]:
     """On a worker: every page of one scan file (at ``path``, or given as ``data``), read or skipped
     when the ledger already holds it; ``source`` is the file's name as the ledger records it."""
-    from .batch import _file_failure_hash, _known, decoded_pages
-
     out: list[PageWork] = []
     with tempfile.TemporaryDirectory() as tmp:
         if data is not None:                      # the worker does not share the folder: a local copy
@@ -87,9 +86,7 @@ def _scatter(client, items: list, tries: int = 3):
 
 def run_on_cluster(client, scans, ctx: RunContext, ledger, report, progress, *, send_bytes: bool, write) -> None:
     """Submit one task per scan file and write the pages to ``ledger`` as the tasks finish."""
-    from distributed import as_completed
-
-    from .batch import _file_failure_hash, display_name
+    from distributed import as_completed  # here: the optional dask extra, imported only for --scheduler
 
     known = ledger.known_pages()
     done_hashes = frozenset(h for h, status in known.items() if status != "failed")

@@ -336,7 +336,8 @@ class _Option:
 
     def __init__(self, string: str, prob: float, candidate: int, field_rules: FieldRules):
         self.string, self.prob, self.candidate = string, prob, candidate
-        self._field_rules, self._rules = field_rules, None
+        self._field_rules = field_rules
+        self._rules: dict[str, bool] | None = None
 
     @property
     def rules(self) -> dict[str, bool]:
@@ -367,7 +368,7 @@ def _normalise(name: str, i: int, cand: CandidateEvidence, temperature: float = 
     p = np.asarray(cand.probs, dtype=np.float64)
     if p.ndim == 1 and p.size == 0:
         p = p.reshape(0, 10)
-    check_param(p.ndim == 2 and p.shape[1] == 10 and np.isfinite(p).all() and (p >= 0).all(),
+    check_param(bool(p.ndim == 2 and p.shape[1] == 10 and np.isfinite(p).all() and (p >= 0).all()),
                 f"{name}.candidates[{i}].probs", "a finite non-negative (K, 10) array", p.shape)
     s = p.sum(axis=1, keepdims=True)
     p = np.where(s > 0, p / np.where(s > 0, s, 1.0), 0.1)
@@ -527,11 +528,12 @@ def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, rela
         offers = []
         for f in fields:
             st = states[f]
+            assert st.chosen is not None  # a field with a reading has its chosen string
             ok = list(itertools.islice((o for o in st.options if o.string and o.ok), n))
             offers.append(ok or [st.chosen])
         weighted = [[_weight(o, model) * o.prob for o in offer] for offer in offers]
         best, best_p, sat = None, -1.0, 0.0
-        sat_mass = [dict() for _ in fields]
+        sat_mass: list[dict[str, float]] = [dict() for _ in fields]
         for idx in itertools.product(*[range(len(o)) for o in offers]):
             combo = [offers[i][j] for i, j in enumerate(idx)]
             values = {f: int(o.string) for f, o in zip(fields, combo)}
@@ -554,8 +556,9 @@ def _apply_relations(states: dict[str, _State], compiled: CompiledRules, *, rela
                 st.reading.rules["relation"] = True
                 _set_choice(st, o, sat_mass[i][o.string] / max(denom, _FLOOR))
         else:
-            current = {f: int(states[f].chosen.string) for f in fields
-                       if states[f].chosen.string.isascii() and states[f].chosen.string.isdigit()}
+            chosen = [states[f].chosen for f in fields]   # set: every field here has a reading
+            current = {f: int(o.string) for f, o in zip(fields, chosen)
+                       if o is not None and o.string.isascii() and o.string.isdigit()}
             for f in fields:
                 failing = [rel for rel in rels if f in rel.fields
                            and (not all(g in current for g in rel.fields) or not rel.holds(current))]
@@ -613,6 +616,7 @@ def _threshold(thresholds, name: str) -> float:
     t = thresholds.get(name) if thresholds is not None else None
     t = getattr(t, "value", t)          # a FieldThreshold or a plain number
     check_param(t is not None, f"thresholds[{name!r}]", "a threshold for every field (resolve_thresholds)", t)
+    assert t is not None  # check_param raised otherwise
     return float(t)
 
 

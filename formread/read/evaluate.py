@@ -8,6 +8,7 @@ reviewed (their final value of confirmed / corrected / empty fields).
 from __future__ import annotations
 
 from pathlib import Path
+from typing import Any
 
 from ..errors import DataError
 from ..form.rules import check_field, check_relations
@@ -76,13 +77,14 @@ def writer_mistakes(scored, run_of: dict, layouts: dict) -> dict:
     pages: dict = {}
     for f in scored:
         pages.setdefault((f.source, f.page_number), []).append(f)
-    out = {"fields": 0, "fields_accepted": 0, "relations": 0, "relations_accepted": 0, "list": []}
+    out: dict[str, Any] = {"fields": 0, "fields_accepted": 0, "relations": 0, "relations_accepted": 0, "list": []}
     for key, fields in pages.items():
         where = run_of.get((Path(key[0]).name, key[1]))
         layout = None if where is None else page_layout(layouts, *where)
         if layout is None:
             continue
         compiled = layout.rules
+        assert compiled is not None  # compiled when the layout loaded
         for f in fields:
             if f.field in compiled.fields and not all(check_field(compiled, f.field, f.truth).values()):
                 out["fields"] += 1

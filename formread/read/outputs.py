@@ -15,6 +15,7 @@ import csv
 import io
 import json
 from pathlib import Path
+from types import EllipsisType
 
 from ..fileio import form_slug, spreadsheet_cell
 from ..ledger.store import Ledger, atomic_write
@@ -47,7 +48,7 @@ def _field_names(rows: list[dict]) -> list[str]:
     return list(seen)
 
 
-def readings_csv(ledger: Ledger, form: str | None = ..., pages=None, fields=None) -> str:
+def readings_csv(ledger: Ledger, form: str | None | EllipsisType = ..., pages=None, fields=None) -> str:
     """``readings.csv`` text: one row per page, a value and a status column per field (cells a
     spreadsheet would run as a formula are quoted, see formread.fileio.spreadsheet_cell).
 

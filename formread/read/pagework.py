@@ -17,6 +17,7 @@ candidate's residual, or "ambiguous") - a page is never read against a layout it
 from __future__ import annotations
 
 import io
+import tempfile
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -78,8 +79,6 @@ class RunContext:
         b = _BUNDLES.get(self.bundle_sha256)
         if b is None:
             if self.bundle_bytes is not None:
-                import tempfile
-
                 with tempfile.TemporaryDirectory() as tmp:
                     path = Path(tmp) / Path(self.bundle_path).name
                     path.write_bytes(self.bundle_bytes)
@@ -207,6 +206,7 @@ def read_page(page, content_hash: str, ctx: RunContext) -> PageWork:
             row.status, row.error = "unregistered", f"{page.source} page {page.page_number}: {ident.reason}"
             row.image_png = _page_png(page.gray, page.dpi)[0]
             return PageWork(row, stages, time.perf_counter() - t0)
+        assert ident.index is not None  # identified: index and registration are set
         layout, registration = ctx.layouts[ident.index], ident.registration
     row.form = layout.name
     thresholds = ctx.thresholds[layout.name]

@@ -40,6 +40,7 @@ from dataclasses import dataclass, field
 from pathlib import Path, PurePath, PureWindowsPath
 
 import numpy as np
+from PIL import Image, ImageDraw, ImageFont
 
 from formread.errors import DataError
 from formread.read.tune import choose_threshold, error_review_curve
@@ -325,8 +326,6 @@ def write_curve_png(path, curve: np.ndarray, *, threshold: float | None = None, 
     -------
     Path of the written file.  DataError when it cannot be written.
     """
-    from PIL import Image, ImageDraw, ImageFont
-
     c = np.asarray(curve, dtype=np.float64).reshape(-1, 4)
     c = c[c[:, 1] < 1.0 - 1e-12]          # nothing accepted: no error to show
     W, H = size

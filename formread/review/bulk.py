@@ -94,7 +94,8 @@ def read_decisions(path) -> list[tuple[int, dict | str]]:
 
 
 def _page_index(ledger: Ledger) -> tuple[dict, dict]:
-    exact, base = {}, {}
+    exact: dict[tuple[str, int], int] = {}
+    base: dict[tuple[str, int], set[int]] = {}   # (file's base name, page) -> page ids
     for r in ledger.conn.execute("SELECT id, source, page_number FROM pages"):
         exact[(r["source"], int(r["page_number"]))] = int(r["id"])
         b = (PurePath(r["source"]).name, int(r["page_number"]))
@@ -168,7 +169,7 @@ def apply_decisions(ledger: Ledger, records, *, reviewer: str) -> ApplyReport:
             rep.refused.append(Refusal(line, f"field {name!r} of {src!r} page {page} is not waiting for a "
                                              f"decision ({why})"))
             continue
-        if action == "correct" and value.strip() == (row["reading"] or None):
+        if action == "correct" and value is not None and value.strip() == (row["reading"] or None):
             action = "confirm"
         try:
             detail = save_decision(ledger, int(row["id"]), action=action, version=int(row["version"]),

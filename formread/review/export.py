@@ -84,7 +84,8 @@ def _snapshot(outdir: str | Path) -> tuple[list[dict], list[dict]]:
         how = _how(r["decision"], r["final_status"])
         records.append({
             "page_id": r["page_id"], "source": r["source"], "page_number": r["page_number"],
-            "page_status": r["page_status"], "form": r["form"], "field": r["name"], "value": _value(how, r["reading"], r["final_value"]),
+            "page_status": r["page_status"], "form": r["form"], "field": r["name"],
+            "value": _value(how, r["reading"], r["final_value"]),
             "how": how, "reading": r["reading"], "confidence": r["confidence"], "reason": r["reason"],
             "reviewer": r["reviewer"], "reviewed_at": r["reviewed_at"],
             "model_sha256": r["model_sha256"], "threshold": r["threshold"],

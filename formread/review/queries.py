@@ -159,14 +159,17 @@ def field_limit(layout: Layout | None, name: str, recorded: int | None = None) -
     (cells or max_digits, narrowed by the length rule), else :data:`DEFAULT_MAX_DIGITS`."""
     if recorded is not None:
         return int(recorded)
-    if _spec(layout, name) is None:
+    if layout is None or _spec(layout, name) is None:
         return DEFAULT_MAX_DIGITS
     return layout.capacity(name)
 
 
 def field_relations(layout: Layout | None, name: str) -> list[str]:
     """The layout's cross-field rules that use field ``name`` (rule text as written)."""
-    return [] if layout is None else [r.text for r in layout.rules.relations_of(name)]
+    if layout is None:
+        return []
+    assert layout.rules is not None  # compiled when the layout loaded
+    return [r.text for r in layout.rules.relations_of(name)]
 
 
 def value_warnings(ledger: Ledger, field_id: int) -> list[str]:
@@ -181,9 +184,12 @@ def value_warnings(ledger: Ledger, field_id: int) -> list[str]:
     if row is None or row["final_status"] not in ("confirmed", "corrected"):
         return []
     layout = run_layout(ledger, row["run_id"], row["form"])
-    if layout is None or row["name"] not in layout.rules.fields:
+    if layout is None:
         return []
     compiled = layout.rules
+    assert compiled is not None  # compiled when the layout loaded
+    if row["name"] not in compiled.fields:
+        return []
     out = [f"The value breaks the field's {rule} rule." for rule, ok in
            check_field(compiled, row["name"], row["final_value"] or "").items() if not ok]
     values = {r["name"]: (r["final_value"] if r["final_status"] is not None else r["reading"])

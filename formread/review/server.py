@@ -64,7 +64,7 @@ _ROUTE_ID = re.compile(r"/(api/field|api/page|img/field|img/page)/([0-9]{1,12})\
 
 
 def _static_bytes(name: str) -> bytes:
-    return resources.files("formread.review").joinpath("static", name).read_bytes()
+    return resources.files("formread.review").joinpath("static").joinpath(name).read_bytes()
 
 
 class _Refused(Exception):
@@ -251,10 +251,10 @@ class _Handler(BaseHTTPRequestHandler):
                 raise _Refused(HTTPStatus.NOT_FOUND, "no such file")
             return self._send(HTTPStatus.OK, _static_bytes(name), _STATIC[name])
         if path == "/api/queue":
-            name = (query.get("name") or [""])[0] or None
+            want_name = (query.get("name") or [""])[0] or None
             reason = (query.get("reason") or [""])[0] or None
             return self._with_ledger(lambda led: self._json(HTTPStatus.OK, {
-                "ids": queries.list_pending(led, name=name, reason=reason),
+                "ids": queries.list_pending(led, name=want_name, reason=reason),
                 "filters": queries.pending_filters(led),
                 "reviewer": self.server.reviewer,
                 "outdir": str(self.server.outdir),

@@ -7,8 +7,8 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-from PIL import Image
 from clikit import one_line_error as _one_line_error
+from PIL import Image
 from typer.testing import CliRunner
 
 from formread.cli.main import app

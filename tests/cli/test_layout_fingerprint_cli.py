@@ -8,8 +8,8 @@ import sys
 from pathlib import Path
 
 import numpy as np
-from PIL import Image
 from clikit import one_line_error
+from PIL import Image
 from typer.testing import CliRunner
 
 from formread.cli.main import app

@@ -145,7 +145,7 @@ def test_score_json_text_curve_and_missing_truth_pages(setup, tmp_path):
 def _truth_from_ledger(out, path: Path, *, wrong: bool) -> Path:
     """Truth equal to the ledger's readings (every field right), or every digit shifted (every field wrong)."""
     recs: dict = {}
-    for (name, page), fields in readings(out).items():
+    for (name, _page), fields in readings(out).items():
         if name.endswith(".png"):
             recs[name] = {k: ("".join(str((int(c) + wrong) % 10) for c in v[0]) if v[0] else "1" * wrong)
                           for k, v in fields.items()}

@@ -5,22 +5,21 @@ from __future__ import annotations
 
 import datetime as dt
 import json
-import tomllib
-from pathlib import Path
 
 import numpy as np
 import pytest
+import tomllib
 from PIL import Image
 
-from formread.learn.datasets import mnist_raw, mnist_split_indices
 from formread.demo import demo_layout_path, make_demo
 from formread.demo.card import marks_mm, read_card_layout
 from formread.demo.scan import ScanSettings, random_scan_settings, scan_matrix
 from formread.demo.values import card_values
+from formread.errors import ParameterError
+from formread.form.checkdigits import luhn_compute, luhn_valid
 from formread.form.layout import load_layout
 from formread.imaging.load import load_pages
-from formread.form.checkdigits import luhn_compute, luhn_valid
-from formread.errors import ParameterError
+from formread.learn.datasets import mnist_raw, mnist_split_indices
 
 COUNT = 8   # smallest set with every format: 3-page TIFF, 2-page PDF, PNG, TIFF, JPEG (one upside down)
 

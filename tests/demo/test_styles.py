@@ -20,8 +20,8 @@ from typer.testing import CliRunner
 
 from formread.cli.main import app
 from formread.demo import demo_layout_path, make_demo
-from formread.demo.scan import ScanSettings, scan_matrix
 from formread.demo.fill import HALF_SEED, load_test_digits, mnist_test_halves, pen_stroke, thin
+from formread.demo.scan import ScanSettings, scan_matrix
 from formread.demo.styles import STYLES, WRITERS, draw_writer
 from formread.demo.values import CROPS, SLIP_MISTAKE_KINDS, slip_values
 from formread.errors import ParameterError
@@ -377,7 +377,7 @@ def test_cli_makes_a_styled_set_and_lists_every_style(tmp_path):
 
 
 def test_draw_writer_changes_only_its_own_ranges():
-    for name, pop in WRITERS.items():
+    for _name, pop in WRITERS.items():
         base = draw_writer(WRITERS["demo"], np.random.default_rng(9))
         w = draw_writer(pop, np.random.default_rng(9))
         assert w.bias == base.bias and w.sloppy == base.sloppy and w.touch == base.touch

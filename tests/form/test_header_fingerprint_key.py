@@ -93,7 +93,8 @@ def test_set_header_fingerprint_adds_then_replaces_and_keeps_comments():
 
 
 def test_set_header_fingerprint_needs_a_header_table_and_a_good_fingerprint():
-    no_header = BASE.format(extra="").replace("[form.header]   # the printed title\nx = 25.0\ny = 6.0\nw = 98.0\nh = 12.0\n", "")
+    no_header = BASE.format(extra="").replace(
+        "[form.header]   # the printed title\nx = 25.0\ny = 6.0\nw = 98.0\nh = 12.0\n", "")
     with pytest.raises(LayoutError, match=r"^n\.toml: no \[form\.header\] table"):
         set_header_fingerprint(no_header, FP, "n.toml")
     with pytest.raises(LayoutError, match=r"^b\.toml: \[form\.header\]: 'fingerprint' has 2 cells"):

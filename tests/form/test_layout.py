@@ -169,7 +169,8 @@ BAD = [
     (_bad('binarize = "auto"', 'binarize = "magic"'), r"\[form\]: 'binarize' must be one of auto, otsu, sauvola"),
     (_bad("threshold = 0.90", "threshold = 1.5"), r"\[form\]: 'threshold' must be a number in \(0, 1\]"),
     (_bad("w = 150.0", "w = 250.0"), r"\[form.header\]: rectangle .* lies off the 210 x 297 mm page"),
-    (_bad("x = 40.0 ", "x = 180.0 "), r"field 'member_number': rectangle x=180 y=60 w=48 h=7 lies off the 210 x 297 mm page"),
+    (_bad("x = 40.0 ", "x = 180.0 "),
+     r"field 'member_number': rectangle x=180 y=60 w=48 h=7 lies off the 210 x 297 mm page"),
     (_bad('name = "member_number"', 'name = "Member-No"'), r"field 'Member-No': bad name"),
     (_bad('name = "member_number"', 'name = "9lives"'), r"field '9lives': bad name"),
     (_bad('name = "previous_reading"', 'name = "member_number"'), r"field 'member_number': duplicate field name"),
@@ -194,20 +195,25 @@ BAD = [
      r"relation 'litres_used = current_reading': unknown field 'litres_used'"),
     (EXAMPLE.split("[[fields]]")[0], r"layout: no \[\[fields\]\]"),
     (_bad("x = 110", "x = 90"), r"field 'current_reading': overlaps field 'previous_reading'"),
-    (_bad("y = 60.0", "y = 55.0").replace("y = 80\n", "y = 58\n", 1), r"field 'previous_reading': overlaps field 'member_number'"),
+    (_bad("y = 60.0", "y = 55.0").replace("y = 80\n", "y = 58\n", 1),
+     r"field 'previous_reading': overlaps field 'member_number'"),
     (_bad("h = 7.0", 'h = true'), r"field 'member_number': 'h' must be a number; got boolean True"),
-    (_bad('[[fields]]\nname = "previous_reading"', '[[fields]]\nnom = "previous_reading"'), r"field 2: missing key 'name'"),
-    (EXAMPLE.split("[[marks]]", 1)[0] + "[[marks]]\nx = 12.0\ny = 12.0\nsize = 6.0\n[[marks]]\nx = 198.0\ny = 12.0\nsize = 6.0\n",
+    (_bad('[[fields]]\nname = "previous_reading"', '[[fields]]\nnom = "previous_reading"'),
+     r"field 2: missing key 'name'"),
+    (EXAMPLE.split("[[marks]]", 1)[0]
+     + "[[marks]]\nx = 12.0\ny = 12.0\nsize = 6.0\n[[marks]]\nx = 198.0\ny = 12.0\nsize = 6.0\n",
      r"marks: at least 3 registration marks are needed; got 2"),
     (_bad("size = 6.0\n[[marks]]\nx = 198.0\ny = 12.0", "size = 6.0\n[[marks]]\nx = 209.0\ny = 12.0"),
      r"mark 2: rectangle .* lies off the 210 x 297 mm page"),
-    (_bad("size = 6.0\n[[marks]]\nx = 198.0\ny = 12.0\nsize = 6.0", "size = 6.0\n[[marks]]\nx = 198.0\ny = 12.0\nsize = 0"),
+    (_bad("size = 6.0\n[[marks]]\nx = 198.0\ny = 12.0\nsize = 6.0",
+          "size = 6.0\n[[marks]]\nx = 198.0\ny = 12.0\nsize = 0"),
      r"mark 2: 'size' must be > 0"),
     (_bad("size = 6.0\n[[marks]]\nx = 198.0\ny = 12.0", "size = 6.0\n[[marks]]\nx = 15.0\ny = 14.0"),
      r"mark 2: overlaps mark 1"),
     (_bad("x = 12.0\ny = 285.0", "x = 100.0\ny = 12.0").replace("x = 198.0\ny = 285.0", "x = 150.0\ny = 12.0"),
      r"marks: the marks lie \(nearly\) on one line"),
-    (_bad("x = 40.0 ", "x = 8.0 ").replace("y = 60.0", "y = 10.0", 1), r"field 'member_number': covers registration mark 1"),
+    (_bad("x = 40.0 ", "x = 8.0 ").replace("y = 60.0", "y = 10.0", 1),
+     r"field 'member_number': covers registration mark 1"),
     (_bad('rule = "current_reading', 'rule = 5 # "'), r"relation 1: 'rule' must be a string"),
     (EXAMPLE + "\n[[relations]]\nrule = '  '\n", r"relation 2: 'rule' is empty"),
     ("relations = 3\n" + EXAMPLE.split("[[relations]]")[0], r"layout: 'relations' must be an array of tables"),
@@ -258,7 +264,8 @@ def test_layouts_are_frozen():
 
 
 # Property: any layout the parser accepts is written back by to_toml to the same layout.
-from hypothesis import given, settings, strategies as st  # noqa: E402
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st
 
 # Rules and relations are compiled when a layout loads, so the generated ones are valid ones.
 _rules = st.sampled_from([{}, {"check": "luhn"}, {"range": [0, 999]}, {"optional": True},

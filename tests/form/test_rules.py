@@ -1,9 +1,9 @@
 """Field rules: compilation errors and evaluation (on real layouts built by tests/read/fakes.py)."""
 
 import pytest
+from fakes import field_spec, layout_of
 
 from formread.errors import RuleError
-from fakes import field_spec, layout_of
 from formread.form.rules import check_field, compile_rules
 
 

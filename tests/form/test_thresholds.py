@@ -1,13 +1,18 @@
 """The one threshold policy (formread/form/thresholds.py) and layout edits that keep the clerk's comments."""
 
 import pytest
-
 from fakes import field_spec, layout_of
+
 from formread.errors import LayoutError, ParameterError
 from formread.form.edit import set_form_value
 from formread.form.layout import load_layout
-from formread.form.thresholds import (DEFAULT_TARGET, DEFAULT_THRESHOLD, check_threshold, form_threshold,
-                                      resolve_thresholds)
+from formread.form.thresholds import (
+    DEFAULT_TARGET,
+    DEFAULT_THRESHOLD,
+    check_threshold,
+    form_threshold,
+    resolve_thresholds,
+)
 
 
 def _lay(form_threshold=0.9, a=None, b=None, target=None):

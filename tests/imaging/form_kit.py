@@ -17,11 +17,11 @@ taken by ``blank_fingerprint`` from a straight 300 dpi render of the blank form,
 from __future__ import annotations
 
 import dataclasses
-from functools import lru_cache
+from functools import cache
 
 import numpy as np
-
 from synth import Transform, render_form, render_page
+
 from formread.demo.card import LAYOUT_PATH, marks_mm, read_card_layout, render_card
 from formread.demo.fill import load_test_digits, random_writer, write_field
 from formread.demo.scan import random_scan_settings, scan_matrix, simulate_scan
@@ -71,14 +71,14 @@ def _toml(name: str) -> str:
     return "\n".join(out) + "\n"
 
 
-@lru_cache(maxsize=None)
+@cache
 def _plain(name: str) -> Layout:
     if name == "demo":
         return read_card_layout(LAYOUT_PATH)
     return parse_layout(_toml(name), f"{name}.toml")
 
 
-@lru_cache(maxsize=None)
+@cache
 def _fingerprinted(name: str) -> Layout:
     layout = _plain(name)
     if name == "demo":

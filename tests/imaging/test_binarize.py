@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from skimage import filters as skf
-
 from synth import Transform, example_layout, render_page
+
 from formread.errors import ParameterError
 from formread.imaging.binarize import binarize, is_uneven, threshold_otsu, threshold_sauvola
 

@@ -6,9 +6,9 @@ import math
 
 import numpy as np
 import pytest
+from digit_pages import FakeField, FakeRegistration
 from scipy import ndimage
 
-from digit_pages import FakeField, FakeRegistration
 from formread.imaging.binarize import ink_map
 from formread.imaging.fields import crop_to_page, cut_field
 from formread.imaging.lines import _runs_open
@@ -118,5 +118,6 @@ def test_crop_samples_the_page_bilinearly():
         i, j = int(np.floor(py)), int(np.floor(px))
         fy, fx = py - i, px - j
         p = page.astype(float)
-        want = ((1 - fy) * ((1 - fx) * p[i, j] + fx * p[i, j + 1]) + fy * ((1 - fx) * p[i + 1, j] + fx * p[i + 1, j + 1]))
+        want = ((1 - fy) * ((1 - fx) * p[i, j] + fx * p[i, j + 1])
+                + fy * ((1 - fx) * p[i + 1, j] + fx * p[i + 1, j + 1]))
         assert abs(int(crop.gray[r, c]) - want) <= 1.0

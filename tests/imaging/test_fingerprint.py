@@ -7,13 +7,21 @@ import dataclasses
 
 import numpy as np
 import pytest
-
 from form_kit import HEADERS, kit_layouts, scan_kit_form
 from synth import Transform, example_layout, render_form, render_page
+
 from formread.errors import LayoutError, RegistrationError
 from formread.form.layout import Region, parse_layout
-from formread.imaging.fingerprint import (InkMap, blank_fingerprint, compare_header, fingerprint_match, grid_shape,
-                                          header_densities, make_fingerprint, parse_fingerprint)
+from formread.imaging.fingerprint import (
+    InkMap,
+    blank_fingerprint,
+    compare_header,
+    fingerprint_match,
+    grid_shape,
+    header_densities,
+    make_fingerprint,
+    parse_fingerprint,
+)
 from formread.imaging.identify import MIN_HEADER
 from formread.imaging.load import Page
 from formread.imaging.register import register_page

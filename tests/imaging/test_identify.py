@@ -8,14 +8,21 @@ import dataclasses
 
 import numpy as np
 import pytest
-from PIL import Image
-
 from form_kit import KIT_NAMES, kit_layouts, scan_demo_card, scan_kit_form
+from PIL import Image
 from synth import Transform, example_layout, render_page
+
 from formread.errors import ParameterError, RegistrationError
-from formread.imaging.identify import (MIN_HEADER, MIN_LINES, TELL_HEADER, TELL_LINES, Identification,
-                                       identify_form, line_share)
 from formread.imaging.fingerprint import InkMap
+from formread.imaging.identify import (
+    MIN_HEADER,
+    MIN_LINES,
+    TELL_HEADER,
+    TELL_LINES,
+    Identification,
+    identify_form,
+    line_share,
+)
 from formread.imaging.load import Page, load_pages
 from formread.imaging.register import register_page
 

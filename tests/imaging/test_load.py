@@ -8,8 +8,8 @@ import zlib
 import numpy as np
 import pytest
 from PIL import Image
-
 from synth import Transform, example_layout, render_page
+
 from formread.errors import ImageError, ParameterError
 from formread.imaging import load as load_mod
 from formread.imaging.load import FALLBACK_DPI, Page, iter_pages, load_pages

@@ -4,13 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from digit_pages import FakeField, FakeRegistration
+from synth import Transform, corners_px, example_layout, render_page
+
 from formread.errors import RegistrationError, SegmentationError
 from formread.imaging.fields import cut_field
 from formread.imaging.load import Page
 from formread.imaging.pipeline import STEPS, process_page
-from synth import Transform, corners_px, example_layout, render_page
 
 DIGITS = {"member": "12345678", "day": "31", "reading": "40571", "litres": "  12 4"}
 

@@ -4,15 +4,15 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
-
 from digit_pages import S, blank_page, draw_boxes, draw_rect
+from synth import Transform, corners_px, example_layout, render_page
+
 from formread.errors import LayoutError
-from formread.imaging.draft import draft_layout
 from formread.form.layout import parse_layout
+from formread.imaging.draft import draft_layout
 from formread.imaging.load import Page
 from formread.imaging.pipeline import process_page
 from formread.imaging.proof import PALETTE, render_proof
-from synth import Transform, corners_px, example_layout, render_page
 
 
 def _marks(page: np.ndarray, w_mm: float, h_mm: float, size: float = 6.0, inset: float = 9.0) -> None:

@@ -11,12 +11,12 @@ import math
 
 import numpy as np
 import pytest
-
 from synth import Transform, corners_px, degrade, example_layout, render_page, to_pixels, truth_matrix
+
 from formread.errors import RegistrationError
+from formread.form.layout import parse_layout
 from formread.imaging.binarize import binarize
 from formread.imaging.deskew import estimate_skew, rotate
-from formread.form.layout import parse_layout
 from formread.imaging.load import Page
 from formread.imaging.register import Registration, apply_affine, fit_affine, register_page
 
@@ -135,13 +135,15 @@ def test_one_mark_covered_the_other_three_register(covered):
 def test_two_marks_covered_is_refused_with_the_reason(covered):
     tr = Transform(rotation_deg=-1.0, margin_mm=5, cover_marks=covered)
     gray, _ = render_page(LAYOUT, 150, DIGITS, np.random.default_rng(3), tr)
-    with pytest.raises(RegistrationError, match=r"^scan\.tif page 4: only 2 of the layout's 4 registration marks found"):
+    with pytest.raises(RegistrationError,
+                       match=r"^scan\.tif page 4: only 2 of the layout's 4 registration marks found"):
         register_page(Page(gray, 150.0, "scan.tif", 4), LAYOUT)
 
 
 def test_blank_page_is_refused():
     gray = degrade(np.full((1300, 900), 240, np.uint8), np.random.default_rng(4), noise=8, jpeg_quality=70)
-    with pytest.raises(RegistrationError, match=r"^blank\.png page 1: no registration marks found \(the page looks blank\)"):
+    with pytest.raises(RegistrationError,
+                       match=r"^blank\.png page 1: no registration marks found \(the page looks blank\)"):
         register_page(Page(gray, 150.0, "blank.png", 1), LAYOUT)
 
 
@@ -234,7 +236,8 @@ def _turn_cases():
 TURN_CASES = _turn_cases()
 
 
-@pytest.mark.parametrize("dpi,tr", TURN_CASES, ids=[f"{d}dpi-turn{t.turn_deg}-{i}" for i, (d, t) in enumerate(TURN_CASES)])
+@pytest.mark.parametrize("dpi,tr", TURN_CASES,
+                         ids=[f"{d}dpi-turn{t.turn_deg}-{i}" for i, (d, t) in enumerate(TURN_CASES)])
 def test_a_page_in_any_quarter_turn_registers_upright(dpi, tr):
     rng = np.random.default_rng(dpi + tr.turn_deg)
     gray, truth = render_page(LAYOUT, dpi, DIGITS, rng, tr)

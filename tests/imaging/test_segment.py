@@ -8,9 +8,20 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from digit_pages import (
+    FakeField,
+    S,
+    blank_page,
+    cut_gap,
+    digit_ink,
+    draw_boxes,
+    draw_rect,
+    identity_registration,
+    mnist_test,
+    page_box_to_crop,
+    stamp,
+)
 
-from digit_pages import (S, FakeField, blank_page, cut_gap, digit_ink, draw_boxes, draw_rect,
-                         identity_registration, mnist_test, page_box_to_crop, stamp)
 from formread.imaging.fields import cut_field
 from formread.imaging.lines import remove_box_lines
 from formread.imaging.segment import MAX_CANDIDATES, segment_boxed, segment_open

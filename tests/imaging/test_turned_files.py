@@ -6,9 +6,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from form_kit import INDEX_DEMO, kit_layouts, scan_demo_card
 from PIL import Image
 
-from form_kit import INDEX_DEMO, kit_layouts, scan_demo_card
 from formread.imaging.identify import identify_form
 from formread.imaging.load import load_pages
 from formread.imaging.register import register_page

@@ -16,8 +16,8 @@ from scipy import ndimage
 from typer.testing import CliRunner
 
 from formread.cli.main import app
-from formread.learn.datasets import mnist_raw, mnist_split_indices
 from formread.digits import normalize_batch
+from formread.learn.datasets import mnist_raw, mnist_split_indices
 from formread.learn.retrain import retrain
 from formread.read.bundle import load_bundle
 from formread.store import shipped_model, store_dir

@@ -5,10 +5,10 @@ import json
 import numpy as np
 
 from formread.learn.datasets import load_samples_folder
+from formread.learn.samples import MANIFEST, collect_samples
 from formread.ledger.fieldfile import load_digits
 from formread.ledger.store import open_ledger
 from formread.review import queries
-from formread.learn.samples import MANIFEST, collect_samples
 
 
 def _decide(out, field_id, action, value=None, reviewer="ines"):
@@ -46,7 +46,8 @@ def test_confirmed_and_corrected_fields_become_labelled_samples(ledger, tmp_path
     assert "".join(str(r["digit"]) for r in cur) == "03247"
     # the image stored for a sample is the one the network saw, as 8-bit grey, ink light on dark
     conn = open_ledger(out, create=False)
-    path = conn.conn.execute("SELECT digits_path FROM fields WHERE id = ?", (ids[(0, "current_reading")],)).fetchone()[0]
+    path = conn.conn.execute("SELECT digits_path FROM fields WHERE id = ?",
+                             (ids[(0, "current_reading")],)).fetchone()[0]
     conn.close()
     seen = load_digits(out / path)
     from PIL import Image

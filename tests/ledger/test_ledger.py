@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from formread.errors import LedgerError
-from formread.ledger.store import FieldRow, PageRow, atomic_write, open_ledger, page_hash
 from formread.ledger.schema import SCHEMA_VERSION
+from formread.ledger.store import FieldRow, PageRow, atomic_write, open_ledger, page_hash
 
 
 def _run(ledger):

@@ -41,7 +41,8 @@ def test_a_first_release_ledger_upgrades_and_keeps_every_row(v1):
     assert (len(before["pages"]), len(before["fields"]), len(before["reviews"])) == (4, 24, 2)
     with open_ledger(v1, create=False) as led:
         assert led.conn.execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
-        assert led.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()[0] == str(SCHEMA_VERSION)
+        assert (led.conn.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()[0]
+                == str(SCHEMA_VERSION))
         thresholds = {r[0] for r in led.conn.execute("SELECT threshold FROM fields")}
         assert thresholds == {0.8962}            # the run's threshold, which applied to every field then
         # the review side works on it: the decided fields, their audit rows, a pending field

@@ -6,8 +6,13 @@ from sklearn.metrics import confusion_matrix as sk_confusion
 from sklearn.metrics import precision_score, recall_score
 
 from formread.errors import ParameterError
-from formread.nn.metrics import (accuracy, classification_report, confusion_matrix,
-                                 expected_calibration_error, precision_recall)
+from formread.nn.metrics import (
+    accuracy,
+    classification_report,
+    confusion_matrix,
+    expected_calibration_error,
+    precision_recall,
+)
 
 
 def _preds(seed=0, n=500):

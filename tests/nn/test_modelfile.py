@@ -10,8 +10,16 @@ import pytest
 from formread.digits import NORMALISATION
 from formread.errors import ModelFileError
 from formread.nn.model import build_model
-from formread.nn.modelfile import (HEADER_KEY, header_sha256, load_model, load_networks, read_header, save_model,
-                                   save_networks, weights_sha256)
+from formread.nn.modelfile import (
+    HEADER_KEY,
+    header_sha256,
+    load_model,
+    load_networks,
+    read_header,
+    save_model,
+    save_networks,
+    weights_sha256,
+)
 
 X = np.random.default_rng(1).random((5, 1, 28, 28), dtype=np.float32)
 

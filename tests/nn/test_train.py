@@ -6,12 +6,11 @@ import time
 import numpy as np
 import pytest
 
-from formread.learn.datasets import digits_raw, digits_split_indices
 from formread.digits import upscale_small
 from formread.errors import DataError
+from formread.learn.datasets import digits_raw, digits_split_indices, load_array_file
 from formread.nn.augment import AugmentConfig
 from formread.nn.model import build_model
-from formread.learn.datasets import load_array_file
 from formread.nn.train import TrainConfig, stratified_split, train
 
 TINY = [

@@ -9,7 +9,6 @@ import pytest
 from PIL import Image
 from readkit import demo_layout, readings, tiny_model, write_copies
 
-import formread.read.batch as batch
 import formread.read.pagework as pagework
 from formread.ledger.fieldfile import load_digits, load_field_file
 from formread.read.batch import list_scans, read_batch

@@ -8,8 +8,15 @@ import pytest
 from formread.errors import ModelFileError
 from formread.nn.model import build_model
 from formread.nn.modelfile import load_networks, save_model
-from formread.read.bundle import (FITTED, INHERITED, SHIPPED_CONSTANTS, Decisions, load_bundle, save_bundle,
-                                  shipped_decoder)
+from formread.read.bundle import (
+    FITTED,
+    INHERITED,
+    SHIPPED_CONSTANTS,
+    Decisions,
+    load_bundle,
+    save_bundle,
+    shipped_decoder,
+)
 from formread.read.decode import PLAIN, ConfidenceModel
 
 SHIPPED = Path(__file__).resolve().parents[2] / "models" / "default.npz"

@@ -6,13 +6,12 @@ import sqlite3
 import threading
 import time
 
+import distributed  # noqa: E402  (the dask extra is a test dependency: never skipped)
 import pytest
 from readkit import demo_layout, readings, write_copies
 
 from formread.errors import ClusterError
 from formread.read.batch import read_batch
-
-import distributed  # noqa: E402  (the dask extra is a test dependency: never skipped)
 
 # distributed's own sockets and dashboard may warn while clusters start and stop; they are not formread's
 pytestmark = [pytest.mark.filterwarnings("ignore::ResourceWarning"),

@@ -1,27 +1,34 @@
 """Decoding with hand-made probability tables: rules, relations, confidence, decisions."""
 
+import dataclasses
 import functools
-from dataclasses import dataclass
 import itertools
 import json
 import math
+from dataclasses import dataclass
+from pathlib import Path
 
 import numpy as np
 import pytest
+from fakes import field_spec as _field_spec
+from fakes import layout_of
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from formread.errors import ParameterError
 from formread.form.checkdigits import luhn_compute, luhn_valid
-import dataclasses
-from pathlib import Path
-
 from formread.form.thresholds import check_threshold, resolve_thresholds
-from formread.read.bundle import load_bundle
-from formread.read.decode import (PLAIN, CandidateEvidence, ConfidenceModel, FieldEvidence, decode_field,
-                                  evidence_from_digits, kbest_strings)
 from formread.read import decode as _decode
-from fakes import field_spec as _field_spec, layout_of
+from formread.read.bundle import load_bundle
+from formread.read.decode import (
+    PLAIN,
+    CandidateEvidence,
+    ConfidenceModel,
+    FieldEvidence,
+    decode_field,
+    evidence_from_digits,
+    kbest_strings,
+)
 
 SHIPPED = load_bundle(Path(__file__).resolve().parents[2] / "models" / "default.npz").decoder
 """The decoder constants the shipped model bundle carries."""

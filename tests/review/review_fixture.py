@@ -9,6 +9,7 @@ probabilities are invented so that each review reason appears.
 from __future__ import annotations
 
 import functools
+import hashlib
 import json
 import sqlite3
 from pathlib import Path
@@ -16,11 +17,9 @@ from pathlib import Path
 import numpy as np
 from PIL import Image, ImageDraw, ImageFont
 
-from formread.learn.datasets import mnist_raw, mnist_split_indices
-import hashlib
-
 from formread.form.layout import parse_layout
 from formread.form.thresholds import resolve_thresholds
+from formread.learn.datasets import mnist_raw, mnist_split_indices
 from formread.ledger.store import open_ledger
 
 DPI = 200
@@ -236,7 +235,7 @@ def make_ledger(outdir: str | Path, *, seed: int = 7) -> dict:
         info["pages"].append(page_id)
         _png(gray, outdir / "pages" / f"{page_id}.png")
         conn.execute("UPDATE pages SET image_path = ? WHERE id = ?", (f"pages/{page_id}.png", page_id))
-        for name, (kind, x, y, w, h, n, _label) in FIELDS.items():
+        for name, (kind, x, y, w, h, _n, _label) in FIELDS.items():
             truth = card["truth"][name]
             box = [round(x * MM - 8, 1), round(y * MM - 8, 1), round((x + w) * MM + 8, 1), round((y + h) * MM + 8, 1)]
             if unreg:

@@ -7,13 +7,13 @@ import sqlite3
 
 import numpy as np
 import pytest
+from review_fixture import snapshot
 
 from formread.errors import LedgerError, ReviewError
 from formread.ledger.fieldfile import load_digits
 from formread.ledger.store import open_ledger
 from formread.review import queries, wording
 from formread.review.queries import InvalidValue, StaleSave, UnknownItem
-from review_fixture import snapshot
 
 
 def _conn(out):
@@ -142,7 +142,8 @@ def test_keeping_a_blank_proposal_marks_the_field_empty(ledger):
         conn.conn.execute("UPDATE fields SET reading = '', reason = 'missing' WHERE id = ?", (fid,))
         d = queries.save_decision(conn, fid, action="confirm", version=0, reviewer="ann")
         assert (d["final_value"], d["final_status"]) == ("", "empty")
-        assert tuple(conn.conn.execute("SELECT action, old_value, new_value FROM reviews").fetchone()) == ("empty", "", "")
+        row = conn.conn.execute("SELECT action, old_value, new_value FROM reviews").fetchone()
+        assert tuple(row) == ("empty", "", "")
 
 
 def test_stale_save_refused_between_two_reviewers(ledger):

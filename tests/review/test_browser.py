@@ -18,7 +18,7 @@ import pytest
 from PIL import Image
 
 from formread.ledger.store import open_ledger
-from formread.review import queries, wording
+from formread.review import queries
 from formread.review.export import export_final
 from formread.review.server import running
 
@@ -145,9 +145,10 @@ def test_clerk_clears_fields_by_keyboard(ledger, tmp_path):
             expect(page.locator("#earlier")).to_contain_text("Already decided: 0051 (corrected) by bob")
 
             # a request from the page without the token header is refused
-            status = page.evaluate("fetch('/api/field/%d', {method: 'POST', headers: {'Content-Type': "
+            status = page.evaluate(f"fetch('/api/field/{ids[(2, 'plot_number')]}', "
+                                   "{method: 'POST', headers: {'Content-Type': "
                                    "'application/json'}, body: JSON.stringify({action: 'confirm', version: 1})})"
-                                   ".then(r => r.status)" % ids[(2, "plot_number")])
+                                   ".then(r => r.status)")
             assert status == 403
 
             # reload: the queue holds what is left
@@ -209,7 +210,8 @@ def test_review_of_a_real_demo_run(tmp_path):
 
     from formread.cli.main import app
     from formread.nn.modelfile import read_header
-    from formread.store import demo_forms as demo_dir, in_use_path as default_model_path
+    from formread.store import demo_forms as demo_dir
+    from formread.store import in_use_path as default_model_path
 
     sync_playwright, expect = _playwright()
     scans = tmp_path / "scans"

@@ -3,12 +3,12 @@
 import json
 import sqlite3
 
+from review_fixture import snapshot
 from typer.testing import CliRunner
 
 from formread.cli.main import app
 from formread.ledger.store import open_ledger
 from formread.review.bulk import apply_decisions, read_decisions
-from review_fixture import snapshot
 
 SRC = "cards-2026-04.tif"      # the fixture's pages are scans/cards-2026-04.tif pages 1-3
 

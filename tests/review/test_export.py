@@ -9,9 +9,9 @@ from typer.testing import CliRunner
 
 from formread.cli.main import app
 from formread.errors import LedgerError
-from formread.ledger.store import open_ledger
-from formread.review import queries, wording
 from formread.fileio import atomic_write
+from formread.ledger.store import open_ledger
+from formread.review import queries
 from formread.review.export import CSV_NAME, JSONL_NAME, export_final, final_records
 
 

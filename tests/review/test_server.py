@@ -9,13 +9,13 @@ import sys
 import threading
 
 import pytest
+from review_fixture import snapshot
 from typer.testing import CliRunner
 
 from formread.cli.main import app
 from formread.ledger.store import open_ledger
-from formread.review import queries, wording
+from formread.review import queries
 from formread.review.server import MAX_BODY, TOKEN_HEADER, running
-from review_fixture import snapshot
 
 
 @pytest.fixture
