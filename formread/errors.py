@@ -7,7 +7,7 @@ Every message is one line and names the file (and page, field) it concerns.
 __all__ = [
     "FormreadError", "DataError", "ModelFileError", "ImageError", "LayoutError",
     "RegistrationError", "SegmentationError", "RuleError", "LedgerError",
-    "ReviewError", "ParameterError", "ComputeError", "ClusterError", "one_line", "check_param",
+    "ReviewError", "ParameterError", "ComputeError", "ClusterError", "WriteError", "one_line", "check_param",
 ]
 
 
@@ -17,6 +17,11 @@ class FormreadError(Exception):
 
 class ParameterError(FormreadError, ValueError):
     """A bad parameter: names it, says what it must be and what it got."""
+
+
+class WriteError(FormreadError, OSError):
+    """A file cannot be written (a folder in its place, a read-only folder, a full disk); still an OSError
+    for callers that catch those."""
 
 
 class DataError(FormreadError):

@@ -1,6 +1,6 @@
 """Atomic file writes: readers see the old file or the whole new one, never a part.
 
-Neutral (imports nothing of formread), so the network, the review side and the CLI share it.
+Neutral (imports only the error types), so the network, the review side and the CLI share it.
 The ledger keeps its own variant with fixed temp names under its write lock
 (``formread.ledger.store.atomic_write``).
 """
@@ -13,6 +13,8 @@ import re
 import tempfile
 from pathlib import Path
 
+from .errors import WriteError
+
 __all__ = ["atomic_open", "atomic_write", "spreadsheet_cell", "form_slug"]
 
 _UMASK = os.umask(0)
@@ -24,11 +26,17 @@ def atomic_open(path: str | os.PathLike, mode: str = "wb", **kwargs):
     """Open a temporary file beside ``path``; on success fsync it and move it into place.
 
     ``mode`` is "wb" or "w" (text; pass ``encoding``/``newline`` in ``kwargs``).  On any
-    exception the temporary file is removed and ``path`` is left as it was.
+    exception the temporary file is removed and ``path`` is left as it was; a file that cannot be
+    written (a folder in its place, a read-only folder, a full disk) is a one-line WriteError.
     """
     path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    except OSError as e:
+        blocked = next((p for p in path.parents if p.exists() and not p.is_dir()), None)
+        why = f"{blocked} is a file, not a folder" if blocked is not None else (e.strerror or str(e))
+        raise WriteError(f"{path}: cannot be written ({why})") from None
     try:
         os.chmod(tmp, 0o666 & ~_UMASK)      # as an ordinary new file would be, not mkstemp's 0600
         with os.fdopen(fd, mode, **kwargs) as f:
@@ -36,9 +44,11 @@ def atomic_open(path: str | os.PathLike, mode: str = "wb", **kwargs):
             f.flush()
             os.fsync(f.fileno())
         os.replace(tmp, path)
-    except BaseException:
+    except BaseException as e:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
+        if isinstance(e, OSError):
+            raise WriteError(f"{path}: cannot be written ({e.strerror or e})") from None
         raise
 
 

@@ -22,6 +22,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+import tempfile
 import time
 from collections.abc import Callable
 from dataclasses import dataclass
@@ -49,6 +50,8 @@ from .values import MISTAKE_KINDS, SLIP_MISTAKE_KINDS, card_values, slip_values
 
 __all__ = ["make_demo", "demo_layout_path", "TRUTH_NAME", "LAYOUT_NAME", "FORMS", "DemoForm"]
 
+MAX_COUNT = 100_000
+"""Most pages one demo set holds (a mistyped count would otherwise fill the disk for days)."""
 TRUTH_NAME = "truth.jsonl"
 PART_NAME = "truth.jsonl.part"
 LAYOUT_NAME = "layout.toml"
@@ -156,7 +159,7 @@ def _sources(path: Path, *, strict: bool) -> set[str]:
     for line in path.read_text(encoding="utf-8", errors="replace").splitlines():
         try:
             names.add(str(json.loads(line)["source"]))
-        except (ValueError, KeyError, TypeError):
+        except (ValueError, KeyError, TypeError, RecursionError):
             if strict and line.strip():
                 raise ParameterError(f"{path}: not a demo ground truth; choose a new or empty folder") from None
     return names
@@ -167,7 +170,18 @@ def _prepare(outdir: Path) -> None:
     listed scans and truth are removed.  Other files are never touched."""
     if outdir.exists() and not outdir.is_dir():
         raise ParameterError(f"{outdir}: not a folder")
-    outdir.mkdir(parents=True, exist_ok=True)
+    try:
+        outdir.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        blocked = next((p for p in outdir.parents if p.exists() and not p.is_dir()), None)
+        why = f"{blocked} is a file, not a folder" if blocked is not None else (e.strerror or str(e))
+        raise ParameterError(f"{outdir}: cannot be made ({why})") from None
+    try:                                   # a folder that cannot be written is said before any work
+        fd, probe = tempfile.mkstemp(prefix=".formread-probe.", dir=outdir)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as e:
+        raise ParameterError(f"{outdir}: cannot be written ({e.strerror or e})") from None
     truth, part = outdir / TRUTH_NAME, outdir / PART_NAME
     if not truth.is_file() and not part.is_file():
         if any(p.name not in (LAYOUT_NAME, "README.md") for p in outdir.iterdir()):
@@ -239,7 +253,8 @@ def make_demo(outdir: str | Path, *, count: int = 30, seed: int = 7, style: str 
         Bad ``count``, ``seed``, ``style``, ``form`` or ``half``, or ``outdir`` is a non-empty
         folder that is not a demo set.
     """
-    check_param(isinstance(count, int) and count >= 1, "count", "an integer >= 1", count)
+    check_param(isinstance(count, int) and 1 <= count <= MAX_COUNT, "count", f"an integer in 1..{MAX_COUNT:,}",
+                count)
     check_param(isinstance(seed, int) and seed >= 0, "seed", "an integer >= 0", seed)
     check_param(style in STYLES, "style", f"one of {', '.join(STYLES)}", style)
     check_param(form in FORMS, "form", f"one of {', '.join(FORMS)}", form)

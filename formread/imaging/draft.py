@@ -252,7 +252,7 @@ def draft_layout(page, *, name: str | None = None) -> Layout:
     marks = find_marks(ink, lab, objs, dpi)
     if len(marks) < 3:
         raise LayoutError(f"{where}: only {len(marks)} solid corner squares found (a layout needs at least 3 "
-                          f"registration marks; is it the blank form, scanned straight at {dpi:g} dpi?)")
+                          f"registration marks; is it the blank form, scanned straight at {dpi:.0f} dpi?)")
     boxes = _rows_of_boxes(find_boxes(lab, objs, dpi))
     if not boxes:
         raise LayoutError(f"{where}: no printed field rectangles found")

@@ -235,11 +235,15 @@ def load_array_file(path: str | os.PathLike) -> tuple[np.ndarray, np.ndarray]:
     if not p.is_file():
         raise DataError(f"{p}: array file not found")
     try:
-        with np.load(p, allow_pickle=False) as npz:
-            if "x" not in npz.files or "y" not in npz.files:
-                found = ", ".join(npz.files) or "none"
-                raise DataError(f"{p}: array file must hold arrays 'x' and 'y'; found {found}")
-            x, y = npz["x"], npz["y"]
+        with open(p, "rb") as fh:             # closed even when the archive is damaged
+            npz = np.load(fh, allow_pickle=False)
+            if not isinstance(npz, np.lib.npyio.NpzFile):
+                raise ValueError("not an .npz archive")
+            with npz:
+                if "x" not in npz.files or "y" not in npz.files:
+                    found = ", ".join(npz.files) or "none"
+                    raise DataError(f"{p}: array file must hold arrays 'x' and 'y'; found {found}")
+                x, y = npz["x"], npz["y"]
     except (OSError, ValueError, EOFError, zipfile.BadZipFile):
         raise DataError(f"{p}: not a readable .npz array file (truncated or another kind of file)") from None
     if x.ndim == 3:
@@ -267,6 +271,7 @@ def load_named(name: str, part: str = "train"):
     -------
     formread.learn.datasets.Dataset with x of shape (N, 1, 28, 28) float32 and y of shape (N,) int64
     """
+    _check_part(part)        # an array file has no parts, but a mistyped part is still a mistake
     if name.startswith("npz:"):
         x, y = load_array_file(name.split(":", 1)[1])
         return Dataset(x, y, name)

@@ -94,7 +94,7 @@ def _read_manifest(path: Path) -> list[dict]:
             continue
         try:
             rec = json.loads(line)
-        except ValueError:
+        except (ValueError, RecursionError):
             raise DataError(f"{path}: line {n} is not JSON") from None
         if not isinstance(rec, dict) or "file" not in rec or "digit" not in rec:
             raise DataError(f"{path}: line {n} is not a sample record")
@@ -130,7 +130,8 @@ def collect_samples(outdir: str | Path, samples_dir: str | Path, *,
     try:
         root.mkdir(parents=True, exist_ok=True)
     except OSError as e:
-        raise DataError(f"{root}: samples folder cannot be created ({e.strerror or e})") from None
+        why = "a file is in its place" if root.exists() and not root.is_dir() else (e.strerror or str(e))
+        raise DataError(f"{root}: samples folder cannot be created ({why})") from None
     manifest_path = root / MANIFEST
     records = _read_manifest(manifest_path)
     by_key = {(r.get("content_hash"), r.get("field"), r.get("position")): r for r in records}

@@ -110,8 +110,12 @@ class FieldFile:
 
 def _read(path) -> dict:
     try:
-        with np.load(path, allow_pickle=False) as z:
-            return {k: z[k] for k in z.files}
+        with open(path, "rb") as fh:          # closed even when the archive is damaged
+            z = np.load(fh, allow_pickle=False)
+            if not isinstance(z, np.lib.npyio.NpzFile):
+                raise ValueError("not an .npz archive")
+            with z:
+                return {k: z[k] for k in z.files}
     except (OSError, ValueError, EOFError, zipfile.BadZipFile) as e:
         raise LedgerError(f"{path}: digit images cannot be read ({e.__class__.__name__})") from None
 

@@ -148,6 +148,12 @@ def check_output_folder(outdir: Path) -> Path:
     return outdir
 
 
+def _name(text) -> str:
+    """A path or command line as the ledger stores it (UTF-8 text): bytes a name from another system's
+    encoding brings (surrogate escapes from the file system or argv) become backslash escapes."""
+    return os.fsencode(str(text)).decode("utf-8", "backslashreplace")
+
+
 class Ledger:
     """An open ledger (``OUTDIR/ledger.sqlite``) in WAL mode, autocommit outside explicit transactions."""
 
@@ -170,8 +176,8 @@ class Ledger:
             cur = self.conn.execute(
                 "INSERT INTO runs (started, layout_path, layout_sha256, model_path, model_sha256, threshold,"
                 " command, layout_text, bundle, audit_rate) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                (utc_now(), str(layout_path), layout_sha256, str(model_path), model_sha256, float(threshold),
-                 command, layout_text, None if bundle is None else json.dumps(bundle, sort_keys=True),
+                (utc_now(), _name(layout_path), layout_sha256, _name(model_path), model_sha256, float(threshold),
+                 _name(command), layout_text, None if bundle is None else json.dumps(bundle, sort_keys=True),
                  float(audit_rate)))
             assert cur.lastrowid is not None  # set by the INSERT
             return int(cur.lastrowid)
@@ -182,7 +188,7 @@ class Ledger:
         with self.transaction():
             self.conn.execute("INSERT INTO run_forms (run_id, form, layout_path, layout_sha256, layout_text, "
                               "threshold, audit_rate) VALUES (?, ?, ?, ?, ?, ?, ?)",
-                              (run_id, form, str(layout_path), layout_sha256, layout_text, float(threshold),
+                              (run_id, form, _name(layout_path), layout_sha256, layout_text, float(threshold),
                                float(audit_rate)))
 
     def finish_run(self, run_id: int) -> None:

@@ -300,8 +300,12 @@ def _load_checkpoint(path: Path) -> tuple[dict, dict[str, np.ndarray]]:
     if not path.is_file():
         raise DataError(f"{path}: no checkpoint to resume from")
     try:
-        with np.load(path, allow_pickle=False) as npz:
-            arrays = {k: npz[k] for k in npz.files}
+        with open(path, "rb") as fh:          # closed even when the archive is damaged
+            npz = np.load(fh, allow_pickle=False)
+            if not isinstance(npz, np.lib.npyio.NpzFile):
+                raise ValueError("not an .npz archive")
+            with npz:
+                arrays = {k: npz[k] for k in npz.files}
         meta = json.loads(arrays.pop("meta.json").tobytes().decode("utf-8"))
     except (OSError, ValueError, KeyError, EOFError, UnicodeDecodeError, zipfile.BadZipFile, RecursionError):
         raise DataError(f"{path}: not a readable training checkpoint") from None

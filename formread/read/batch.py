@@ -141,10 +141,14 @@ def list_scans(inputs: Iterable) -> list[tuple[str, str | None]]:
     return unique
 
 
+_CONTROL = {**{c: f"\\x{c:02x}" for c in (*range(32), 0x7F)}, 0x0A: "\\n", 0x0D: "\\r", 0x09: "\\t"}
+
+
 def display_name(path) -> str:
     """A file name as the ledger and messages hold it: undecodable bytes (a name from another system's
-    encoding) are shown as backslash escapes instead of stopping every batch."""
-    return os.fsencode(str(path)).decode("utf-8", "backslashreplace")
+    encoding) are shown as backslash escapes instead of stopping every batch, and control characters
+    (a newline in a name) as escapes too, so that a message naming the file stays one line."""
+    return os.fsencode(str(path)).decode("utf-8", "backslashreplace").translate(_CONTROL)
 
 
 def _not_regular(path: Path) -> str | None:
@@ -220,7 +224,11 @@ def decoded_pages(scans):
                 t0 = time.perf_counter()
         except ImageError as e:
             # pages decoded before the failure are kept; the rest of the file is one failed record
-            yield failed_page(name, n + 1, _file_failure_hash(source), one_line(e), time.perf_counter() - t0)
+            msg = str(e)
+            if msg.startswith(str(source)):            # the message names the file as the ledger does
+                msg = name + msg[len(str(source)):]
+            yield failed_page(name, n + 1, _file_failure_hash(source), one_line(ImageError(msg)),
+                              time.perf_counter() - t0)
 
 
 # ------------------------------------------------------------------------------------------ the job

@@ -10,7 +10,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
-from ..errors import DataError
+from ..errors import DataError, check_param
 from ..form.rules import check_field, check_relations
 from ..ledger.store import ledger_path, open_ledger
 from .runs import page_layout, run_layouts
@@ -150,7 +150,10 @@ def tune_ledger(outdir, truth_path=None, *, target: float = 0.005, criterion: st
     ------
     DataError
         No field with a known answer.
+    ParameterError
+        ``target`` outside [0, 1) (checked before anything is read).
     """
+    check_param(isinstance(target, (int, float)) and 0.0 <= target < 1.0, "target", "in [0, 1)", target)
     recs, _ = ledger_readings(outdir)
     missing = 0
     if truth_path is not None:

@@ -81,13 +81,23 @@ def _base(source: str) -> str:
     return PureWindowsPath(str(source)).name if "\\" in str(source) else PurePath(str(source)).name
 
 
+MAX_PAGE_NUMBER = 1_000_000
+"""Largest page number a truth record may name (a scan file of a million pages is not a form batch)."""
+
+
 def load_truth(path) -> list[TruthPage]:
     """Read a ``truth.jsonl`` file; DataError("<file> line N: <problem>") on any bad line."""
     p = Path(path)
     try:
         text = p.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as e:
-        raise DataError(f"{p}: cannot read the truth file: {e.__class__.__name__}: {e}") from None
+    except FileNotFoundError:
+        raise DataError(f"{p}: no such truth file") from None
+    except IsADirectoryError:
+        raise DataError(f"{p}: is a folder, not a truth file") from None
+    except UnicodeDecodeError as e:
+        raise DataError(f"{p}: not UTF-8 text (byte {e.start})") from None
+    except OSError as e:
+        raise DataError(f"{p}: cannot read the truth file ({e.strerror or e})") from None
     out: list[TruthPage] = []
     seen: dict[tuple[str, int], int] = {}
     for n, line in enumerate(text.splitlines(), 1):
@@ -98,13 +108,16 @@ def load_truth(path) -> list[TruthPage]:
             obj = json.loads(line)
         except json.JSONDecodeError as e:
             raise DataError(f"{where}: not JSON ({e.msg})") from None
+        except RecursionError:
+            raise DataError(f"{where}: JSON nested too deeply to be a truth record") from None
         if not isinstance(obj, dict):
             raise DataError(f"{where}: expected a JSON object")
         src, page, fields = obj.get("source"), obj.get("page_number", 1), obj.get("fields")
         if not isinstance(src, str) or not src:
             raise DataError(f"{where}: 'source' must be a file name")
-        if isinstance(page, bool) or not isinstance(page, int) or page < 1:
-            raise DataError(f"{where}: 'page_number' must be a whole number >= 1; got {page!r}")
+        if isinstance(page, bool) or not isinstance(page, int) or not 1 <= page <= MAX_PAGE_NUMBER:
+            raise DataError(f"{where}: 'page_number' must be a whole number from 1 to {MAX_PAGE_NUMBER:,}; "
+                            f"got {str(page)[:40]!r}")
         if not isinstance(fields, dict):
             raise DataError(f"{where}: 'fields' must be an object of field name -> digits")
         for k, v in fields.items():

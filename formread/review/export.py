@@ -123,7 +123,8 @@ def export_final(outdir: str | Path, out_dir: str | Path | None = None) -> Expor
     try:
         out.mkdir(parents=True, exist_ok=True)
     except OSError as e:
-        raise LedgerError(f"{out}: cannot create the export folder ({e.strerror})") from None
+        why = "a file is in its place" if out.exists() and not out.is_dir() else (e.strerror or str(e))
+        raise LedgerError(f"{out}: cannot create the export folder ({why})") from None
 
     counts = {h: 0 for h in HOW}
     for rec in records:

@@ -104,7 +104,7 @@ def test_bad_truth_lines(tmp_path, line, fragment):
 
 
 def test_missing_truth_file_and_ambiguous_names(tmp_path):
-    with pytest.raises(FormreadError, match="cannot read the truth file"):
+    with pytest.raises(FormreadError, match="nope.jsonl: no such truth file"):
         load_truth(tmp_path / "nope.jsonl")
     path = write_truth(tmp_path, TRUTH)
     r = readings() + [rec("/elsewhere/cards_01.tif", 3, "meter", "1", 0.5)]
