@@ -74,9 +74,9 @@ CASES = [
          ("count",), after=nothing_made),
     Case("demo-make-count-letters", lambda w: make()(w)[:3] + ["--count", "ten", "--quiet"], 2, ("--count",)),
     Case("demo-make-seed-negative", make("--seed", "-1"), 1, ("seed",), after=nothing_made),
-    Case("demo-make-style-bogus", make("--style", "crayon"), 1, ("style", "crayon"), after=nothing_made),
-    Case("demo-make-form-bogus", make("--form", "invoice"), 1, ("form", "invoice"), after=nothing_made),
-    Case("demo-make-half-c", make("--half", "c"), 1, ("half",), after=nothing_made),
+    Case("demo-make-style-bogus", make("--style", "crayon"), 2, ("--style", "crayon"), after=nothing_made),
+    Case("demo-make-form-bogus", make("--form", "invoice"), 2, ("--form", "invoice"), after=nothing_made),
+    Case("demo-make-half-c", make("--half", "c"), 2, ("--half",), after=nothing_made),
     Case("demo-make-truth-of-another-kind", make(out=lambda w: write(w.path("demo") / "truth.jsonl", "{oops\n")
                                                  .parent), 1, ("truth.jsonl",)),
     Case("demo-out-is-a-file", lambda w: ["demo", "--out", str(write(w.path("f"), "x")), "--workers", "1", "--quiet"],

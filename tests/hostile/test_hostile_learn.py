@@ -188,7 +188,7 @@ CASES = [
     Case("evaluate-model-garbage", lambda w: ["evaluate", str(write(w.path("g.npz"), os.urandom(64)))], 1,
          ("g.npz",)),
     Case("evaluate-part-bogus", lambda w: ["evaluate", str(w.model), "--dataset", f"npz:{bars(w)}", "--part", "x"],
-         1, ("part", "'x'")),
+         2, ("--part", "'x'")),
     Case("evaluate-npy-named-npz", lambda w: ["evaluate", str(w.model), "--dataset", "npz:" + str(_npy(w))], 1,
          ("plain.npz",)),
     Case("train-resume-npy-checkpoint", _checkpoint(lambda w, p: _npy(w, p)), 1, ("m.npz.ckpt",),
