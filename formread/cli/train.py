@@ -80,6 +80,12 @@ def train_cmd(
                                         help="Scale of the elastic displacement (pixels)."),
     elastic_sigma: float = typer.Option(_AUG.elastic_sigma, "--elastic-sigma", min=0.5, max=20.0,
                                         help="Smoothing of the elastic displacement (pixels)."),
+    stroke: bool = typer.Option(_AUG.stroke, "--stroke/--no-stroke",
+                                help="Thicken or thin strokes, as finer and wider pens draw."),
+    degrade: bool = typer.Option(_AUG.degrade, "--degrade/--no-degrade",
+                                 help="Scanner blur, resolution loss or bilevel thresholding."),
+    remnants: bool = typer.Option(_AUG.remnants, "--remnants/--no-remnants",
+                                  help="Box-line remnants along an edge, as cutting leaves."),
     seed: int = typer.Option(_RECIPE.seed, "--seed", min=0, max=2 ** 32 - 1,
                              help="Seeds the weights, split, shuffling and augmentation."),
     workers: int = typer.Option(_CFG.workers, "--workers", "-w", min=1, max=2,
@@ -102,7 +108,7 @@ def train_cmd(
         weight_decay=weight_decay, label_smoothing=label_smoothing, val_fraction=val_fraction,
         patience=patience, workers=workers,
         augment=dataclasses.replace(_AUG, affine=affine, elastic=elastic, elastic_alpha=elastic_alpha,
-                                    elastic_sigma=elastic_sigma))
+                                    elastic_sigma=elastic_sigma, stroke=stroke, degrade=degrade, remnants=remnants))
     recipe = Recipe(dataset=dataset, arch=arch.value, seed=seed, config=cfg)
     recipe.validate()
     ckpt = checkpoint or out.with_name(out.name + ".ckpt")

@@ -64,7 +64,10 @@ class Recipe:
                 "--label-smoothing", f"{cfg.label_smoothing:g}", "--val-fraction", f"{cfg.val_fraction:g}",
                 "--patience", str(cfg.patience), "--affine" if a.affine else "--no-affine",
                 "--elastic" if a.elastic else "--no-elastic", "--elastic-alpha", f"{a.elastic_alpha:g}",
-                "--elastic-sigma", f"{a.elastic_sigma:g}", "--seed", str(self.seed)]
+                "--elastic-sigma", f"{a.elastic_sigma:g}"]
+        # the pen and scanner effects are named only when on, so earlier records read as they were
+        args += [f"--{name}" for name in ("stroke", "degrade", "remnants") if getattr(a, name)]
+        args += ["--seed", str(self.seed)]
         if cfg.workers != 1:
             args += ["--workers", str(cfg.workers)]
         args += ["--out", str(out)]

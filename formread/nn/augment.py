@@ -1,4 +1,4 @@
-"""Training-time distortions of digit images: random affine maps and elastic distortion.
+"""Training-time distortions of digit images: geometry (affine, elastic) and pen and scanner effects.
 
 Both are done for a whole batch at once: one set of sampling coordinates of
 shape (N, 28, 28) is built with numpy and the batch is resampled by a single
@@ -11,6 +11,13 @@ random displacement field, uniform in [-1, 1] per pixel, smoothed with a
 Gaussian of standard deviation ``sigma`` and scaled by ``alpha``.  The paper's
 values are about sigma = 4 and alpha = 34 on 29x29 digits (quoted from memory
 of the paper); the defaults here (alpha 24) are the shipped model's recipe, milder.
+
+Pen and scanner effects (off by default; the shipped recipe does not use them): stroke width
+(grey dilation or erosion of the normalised 28x28 digit by one 3x3 step, blended by a random
+strength, so a hairline and a marker version of a digit are both seen), scanner degradation
+(Gaussian blur, resolution loss by down- and up-sampling, or bilevel thresholding at a random
+level) and the box remnants cutting leaves (a short line along one edge).  They apply to the same
+share ``prob`` of a batch as the geometric distortions, after them.
 """
 
 from __future__ import annotations
@@ -22,7 +29,8 @@ from scipy import ndimage
 
 from ..errors import check_param
 
-__all__ = ["AugmentConfig", "random_affine", "elastic", "augment_batch"]
+__all__ = ["AugmentConfig", "random_affine", "elastic", "stroke_width", "degrade", "box_remnants",
+           "augment_batch"]
 
 
 @dataclass
@@ -47,6 +55,18 @@ class AugmentConfig:
         Scale and smoothing (pixels) of the displacement field.
     prob : float
         Share of the images in a batch that are distorted; the rest pass unchanged.
+    stroke : bool
+        Thicken or thin the strokes (each distorted image: thicker, thinner or as is, equal chances).
+    stroke_max : float
+        Largest blend towards one 3x3 dilation or erosion step, in [0, 1].
+    degrade : bool
+        Scanner degradation: blur, resolution loss or bilevel thresholding (one of them, equal chances).
+    degrade_prob : float
+        Share of the distorted images that are degraded.
+    remnants : bool
+        Draw a box-line remnant along one edge.
+    remnants_prob : float
+        Share of the distorted images that get one.
     """
 
     affine: bool = True
@@ -58,13 +78,19 @@ class AugmentConfig:
     elastic_alpha: float = 24.0
     elastic_sigma: float = 4.0
     prob: float = 0.9
+    stroke: bool = False
+    stroke_max: float = 1.0
+    degrade: bool = False
+    degrade_prob: float = 0.5
+    remnants: bool = False
+    remnants_prob: float = 0.2
 
     def as_dict(self) -> dict:
         return asdict(self)
 
     @property
     def enabled(self) -> bool:
-        return (self.affine or self.elastic) and self.prob > 0
+        return (self.affine or self.elastic or self.stroke or self.degrade or self.remnants) and self.prob > 0
 
 
 def _identity_grid(n: int, h: int, w: int) -> tuple[np.ndarray, np.ndarray]:
@@ -161,6 +187,124 @@ def elastic(x: np.ndarray, rng: np.random.Generator, *, alpha: float = 34.0, sig
     return _resample(x, rr + dr, cc + dc)
 
 
+_CROSS = ndimage.generate_binary_structure(2, 1)[None, None]   # (1, 1, 3, 3): per image, 4-connected
+
+
+def stroke_width(x: np.ndarray, rng: np.random.Generator, *, max_strength: float = 1.0,
+                 direction: np.ndarray | None = None) -> np.ndarray:
+    """Thicken or thin every image's strokes, as a wider or finer pen would draw them.
+
+    Each image is blended with its grey dilation (thicker) or erosion (thinner) by one 4-connected
+    3x3 step, by a strength drawn uniformly in [0, max_strength].  Thinning never removes more than
+    half of an image's ink, so a hairline digit is not erased.
+
+    Parameters
+    ----------
+    x : ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    rng : numpy.random.Generator
+    max_strength : float in [0, 1]
+    direction : ndarray of shape (N,), int, optional
+        +1 thicker, -1 thinner, 0 unchanged per image; drawn with equal chances when omitted.
+
+    Returns
+    -------
+    ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    """
+    _check(x)
+    n = len(x)
+    d = rng.integers(-1, 2, n) if direction is None else np.asarray(direction)
+    s = np.asarray(rng.uniform(0.0, max_strength, n), dtype=np.float32)
+    thick = ndimage.grey_dilation(x, footprint=_CROSS, mode="constant", cval=0.0)
+    thin = ndimage.grey_erosion(x, footprint=_CROSS, mode="constant", cval=0.0)
+    mass, lost = x.sum(axis=(1, 2, 3)), (x - thin).sum(axis=(1, 2, 3))
+    s_thin = np.minimum(s, np.where(lost > 0, 0.5 * mass / np.maximum(lost, 1e-6), 1.0)).astype(np.float32)
+    w = np.where(d > 0, s, 0.0)[:, None, None, None].astype(np.float32)
+    v = np.where(d < 0, s_thin, 0.0)[:, None, None, None].astype(np.float32)
+    out = x + w * (thick - x) + v * (thin - x)
+    return np.clip(out, 0.0, 1.0).astype(np.float32, copy=False)
+
+
+_BLUR_SIGMAS = (0.5, 0.8, 1.1)   # pixels of the 28x28 image
+_LOW_RES = (12, 14, 18)          # side the image is sampled down to, then back up to 28
+
+
+def degrade(x: np.ndarray, rng: np.random.Generator, kind: np.ndarray | None = None) -> np.ndarray:
+    """Scanner degradation of every image: blur, resolution loss or bilevel thresholding.
+
+    Blur is a Gaussian of sigma 0.5-1.1 px; resolution loss samples the image down to 12-18 px a
+    side and back up (bilinear), as a 200 dpi scan of a small digit is; bilevel thresholding keeps
+    ink above a level drawn in [0.25, 0.65] as full black (low levels fatten, high ones break thin
+    strokes), as a bilevel scanner does.
+
+    Parameters
+    ----------
+    x : ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    rng : numpy.random.Generator
+    kind : ndarray of shape (N,), int, optional
+        0 blur, 1 resolution loss, 2 bilevel per image; drawn with equal chances when omitted.
+
+    Returns
+    -------
+    ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    """
+    _check(x)
+    n, _, h, w = x.shape
+    k = rng.integers(0, 3, n) if kind is None else np.asarray(kind)
+    level = rng.integers(0, 3, n)
+    thr = np.asarray(rng.uniform(0.25, 0.65, n), dtype=np.float32)
+    out = x.copy()
+    for j in range(3):
+        sel = np.flatnonzero((k == 0) & (level == j))
+        if sel.size:
+            out[sel] = ndimage.gaussian_filter(x[sel], sigma=(0, 0, _BLUR_SIGMAS[j], _BLUR_SIGMAS[j]),
+                                               mode="constant", truncate=3.0)
+        sel = np.flatnonzero((k == 1) & (level == j))
+        if sel.size:
+            side = _LOW_RES[j]
+            small = ndimage.zoom(x[sel], (1, 1, side / h, side / w), order=1, grid_mode=True, mode="grid-constant")
+            out[sel] = ndimage.zoom(small, (1, 1, h / side, w / side), order=1, grid_mode=True,
+                                    mode="grid-constant")[:, :, :h, :w]
+    sel = k == 2
+    out[sel] = (x[sel] >= thr[sel, None, None, None]).astype(np.float32)
+    return np.clip(out, 0.0, 1.0).astype(np.float32, copy=False)
+
+
+def box_remnants(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Draw a printed-line remnant along one edge of every image, as cutting a boxed field leaves.
+
+    The line lies within 2 px of a random edge, 1-2 px thick, over 30-100% of that side, at a
+    grey level of 0.4-1.0; ink already there is kept (maximum).
+
+    Parameters
+    ----------
+    x : ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    """
+    _check(x)
+    n, _, h, w = x.shape
+    out = x.copy()
+    edge = np.asarray(rng.integers(0, 4, n))           # 0 top, 1 bottom, 2 left, 3 right
+    off = np.asarray(rng.integers(0, 3, n))
+    thick = np.asarray(rng.integers(1, 3, n))
+    frac = np.asarray(rng.uniform(0.3, 1.0, n))
+    grey = np.asarray(rng.uniform(0.4, 1.0, n), dtype=np.float32)
+    for i in range(n):
+        side = h if edge[i] >= 2 else w
+        length = max(1, int(round(frac[i] * side)))
+        start = int(rng.integers(0, side - length + 1))
+        a = int(off[i]) if edge[i] in (0, 2) else (h if edge[i] == 1 else w) - int(off[i]) - int(thick[i])
+        b = a + int(thick[i])
+        if edge[i] < 2:
+            out[i, 0, a:b, start:start + length] = np.maximum(out[i, 0, a:b, start:start + length], grey[i])
+        else:
+            out[i, 0, start:start + length, a:b] = np.maximum(out[i, 0, start:start + length, a:b], grey[i])
+    return out
+
+
 def augment_batch(x: np.ndarray, rng: np.random.Generator, cfg: AugmentConfig) -> np.ndarray:
     """Distort a training batch: affine and/or elastic in one resampling pass.
 
@@ -180,15 +324,31 @@ def augment_batch(x: np.ndarray, rng: np.random.Generator, cfg: AugmentConfig) -
     if not cfg.enabled or len(x) == 0:
         return x.copy()
     n, _, h, w = x.shape
-    if cfg.affine:
-        src_r, src_c = _affine_coords(n, h, w, cfg, rng)
-    else:
-        src_r, src_c = _identity_grid(n, h, w)
-    if cfg.elastic:
-        dr, dc = _elastic_field(n, h, w, cfg.elastic_alpha, cfg.elastic_sigma, rng)
-        src_r += dr
-        src_c += dc
-    out = _resample(x, src_r, src_c)
+    out = x
+    if cfg.affine or cfg.elastic:
+        if cfg.affine:
+            src_r, src_c = _affine_coords(n, h, w, cfg, rng)
+        else:
+            src_r, src_c = _identity_grid(n, h, w)
+        if cfg.elastic:
+            dr, dc = _elastic_field(n, h, w, cfg.elastic_alpha, cfg.elastic_sigma, rng)
+            src_r += dr
+            src_c += dc
+        out = _resample(x, src_r, src_c)
+    # pen and scanner effects draw from the generator only when on, so the shipped recipe's
+    # random stream (and its weights) stay as they were
+    if cfg.stroke:
+        out = stroke_width(out, rng, max_strength=cfg.stroke_max)
+    if cfg.degrade:
+        sel = rng.random(n) < cfg.degrade_prob
+        out = out.copy() if out is x else out
+        out[sel] = degrade(out[sel], rng)
+    if cfg.remnants:
+        sel = rng.random(n) < cfg.remnants_prob
+        out = out.copy() if out is x else out
+        out[sel] = box_remnants(out[sel], rng)
+    if out is x:
+        out = x.copy()
     keep = rng.random(n) >= cfg.prob
     out[keep] = x[keep]
     return out

@@ -5,7 +5,15 @@ import pytest
 from scipy import ndimage
 
 from formread.errors import ParameterError
-from formread.nn.augment import AugmentConfig, augment_batch, elastic, random_affine
+from formread.nn.augment import (
+    AugmentConfig,
+    augment_batch,
+    box_remnants,
+    degrade,
+    elastic,
+    random_affine,
+    stroke_width,
+)
 
 
 def _batch(n=16, seed=0):
@@ -73,3 +81,86 @@ def test_prob_zero_leaves_batch_alone_and_bad_shape_refused():
     np.testing.assert_array_equal(augment_batch(x, np.random.default_rng(0), AugmentConfig(prob=0.0)), x)
     with pytest.raises(ParameterError):
         augment_batch(x[:, 0], np.random.default_rng(0), AugmentConfig())
+
+
+# --- pen and scanner effects --------------------------------------------------------------
+
+def _digits(n=40):
+    """Real handwritten digits (scikit-learn's bundled 8x8 digits, first half), normalised as training data is."""
+    from formread.learn.datasets import load_dataset
+    return load_dataset("digits", "train").x[:n].astype(np.float32)
+
+
+def _width(x):
+    """Mean stroke width per image: ink mass over the length of its skeleton (scikit-image)."""
+    from skimage.morphology import skeletonize
+    return np.array([im[0].sum() / max(1, skeletonize(im[0] > 0.5).sum()) for im in x])
+
+
+@pytest.mark.parametrize("fn", [
+    lambda x, r: stroke_width(x, r),
+    lambda x, r: degrade(x, r),
+    lambda x, r: box_remnants(x, r),
+    lambda x, r: augment_batch(x, r, AugmentConfig(prob=1.0, stroke=True, degrade=True, remnants=True)),
+])
+def test_pen_and_scanner_effects_shape_dtype_range_seed(fn):
+    x = _digits(24)
+    a, b = fn(x, np.random.default_rng(5)), fn(x, np.random.default_rng(5))
+    assert a.shape == x.shape and a.dtype == np.float32
+    assert a.min() >= 0 and a.max() <= 1
+    np.testing.assert_array_equal(a, b)             # same seed, same images
+    assert not np.array_equal(a, fn(x, np.random.default_rng(6)))   # another seed, other images
+    assert not np.allclose(a, x)
+
+
+def test_stroke_width_goes_the_intended_way():
+    x = _digits()
+    n = len(x)
+    thick = stroke_width(x, np.random.default_rng(0), direction=np.ones(n, int), max_strength=1.0)
+    thin = stroke_width(x, np.random.default_rng(0), direction=-np.ones(n, int), max_strength=1.0)
+    same = stroke_width(x, np.random.default_rng(0), direction=np.zeros(n, int))
+    w0, w_thick, w_thin = _width(x), _width(thick), _width(thin)
+    # strength is drawn in [0, 1]: most images change visibly, every one the intended way
+    assert np.all(w_thick >= w0 - 1e-6) and np.mean(w_thick > w0 * 1.1) > 0.6
+    assert np.all(thin.sum(axis=(1, 2, 3)) <= x.sum(axis=(1, 2, 3)) + 1e-4)
+    assert np.median(w_thin) < np.median(w0)
+    np.testing.assert_array_equal(same, x)
+    # thinning keeps at least half of every image's ink: a hairline digit is not erased
+    assert np.all(thin.sum(axis=(1, 2, 3)) >= 0.5 * x.sum(axis=(1, 2, 3)) - 1e-3)
+
+
+def test_degrade_kinds():
+    x = _digits()
+    n = len(x)
+    blur = degrade(x, np.random.default_rng(0), kind=np.zeros(n, int))
+    low = degrade(x, np.random.default_rng(0), kind=np.ones(n, int))
+    bi = degrade(x, np.random.default_rng(0), kind=np.full(n, 2))
+    # blur and resolution loss soften edges: the largest step between neighbours falls
+    step = lambda im: np.abs(np.diff(im, axis=3)).max(axis=(1, 2, 3))  # noqa: E731
+    assert np.all(step(blur) < step(x)) and np.mean(step(low) < step(x)) > 0.9
+    # both keep the ink roughly where it was (the centre of mass moves under a pixel)
+    for y in (blur, low):
+        for a, b in zip(x[:, 0], y[:, 0]):
+            assert np.hypot(*np.subtract(ndimage.center_of_mass(a), ndimage.center_of_mass(b))) < 1.0
+    assert set(np.unique(bi)) <= {0.0, 1.0}            # bilevel: black or white only
+    assert np.all((bi > 0) <= (x >= 0.25))             # ink only where the image had some
+
+
+def test_box_remnants_are_lines_at_an_edge():
+    x = np.zeros((50, 1, 28, 28), np.float32)
+    out = box_remnants(x, np.random.default_rng(3))
+    inner = out[:, 0, 4:24, 4:24]
+    assert inner.max() == 0                            # nothing drawn away from the edges
+    assert np.all(out.reshape(50, -1).max(axis=1) >= 0.4)
+    digits = _digits(10)
+    kept = box_remnants(digits, np.random.default_rng(3))
+    assert np.all(kept >= digits)                     # the digit's own ink stays
+
+
+def test_shipped_recipe_stream_is_unchanged_by_the_new_options():
+    # the new effects are off by default and draw nothing then: the same seed gives the same batch
+    x = _batch()
+    a = augment_batch(x, np.random.default_rng(9), AugmentConfig())
+    b = augment_batch(x, np.random.default_rng(9), AugmentConfig(stroke=False, degrade=False, remnants=False,
+                                                                 stroke_max=0.3))
+    np.testing.assert_array_equal(a, b)
