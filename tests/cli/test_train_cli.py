@@ -179,3 +179,18 @@ def test_train_without_validation_split(tmp_path, arrays):
     assert header["temperature"] == 1.0 and header["metrics"]["validation"]["accuracy"] is None
     res = runner.invoke(app, ["info", str(out), "--json"])
     assert json.loads(res.stdout)["sha256"] == header["sha256"]
+
+
+def test_pen_and_scanner_flags_reach_the_recipe_and_its_command(tmp_path, arrays):
+    out = tmp_path / "pens.npz"
+    res = runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(out), "--seed", "2",
+                              "--stroke", "--degrade", "--remnants"] + FAST)
+    assert res.exit_code == 0, res.output
+    _, header = load_model(out)
+    cmd = header["training"]["command"]
+    assert "--stroke" in cmd and "--degrade" in cmd and "--remnants" in cmd
+    plain = tmp_path / "plain.npz"
+    assert runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(plain)] + FAST).exit_code == 0
+    plain_cmd = load_model(plain)[1]["training"]["command"]
+    # off, they are not named: a recipe recorded before they existed reads the same
+    assert "--stroke" not in plain_cmd and "--degrade" not in plain_cmd and "--remnants" not in plain_cmd
