@@ -86,6 +86,8 @@ def train_cmd(
                                  help="Scanner blur, resolution loss or bilevel thresholding."),
     remnants: bool = typer.Option(_AUG.remnants, "--remnants/--no-remnants",
                                   help="Box-line remnants along an edge, as cutting leaves."),
+    breaks: bool = typer.Option(_AUG.breaks, "--breaks/--no-breaks",
+                                help="Small gaps in the strokes, as bilevel scans and dry pens leave."),
     seed: int = typer.Option(_RECIPE.seed, "--seed", min=0, max=2 ** 32 - 1,
                              help="Seeds the weights, split, shuffling and augmentation."),
     workers: int = typer.Option(_CFG.workers, "--workers", "-w", min=1, max=2,
@@ -108,7 +110,8 @@ def train_cmd(
         weight_decay=weight_decay, label_smoothing=label_smoothing, val_fraction=val_fraction,
         patience=patience, workers=workers,
         augment=dataclasses.replace(_AUG, affine=affine, elastic=elastic, elastic_alpha=elastic_alpha,
-                                    elastic_sigma=elastic_sigma, stroke=stroke, degrade=degrade, remnants=remnants))
+                                    elastic_sigma=elastic_sigma, stroke=stroke, degrade=degrade, remnants=remnants,
+                                    breaks=breaks))
     recipe = Recipe(dataset=dataset, arch=arch.value, seed=seed, config=cfg)
     recipe.validate()
     ckpt = checkpoint or out.with_name(out.name + ".ckpt")

@@ -66,7 +66,7 @@ class Recipe:
                 "--elastic" if a.elastic else "--no-elastic", "--elastic-alpha", f"{a.elastic_alpha:g}",
                 "--elastic-sigma", f"{a.elastic_sigma:g}"]
         # the pen and scanner effects are named only when on, so earlier records read as they were
-        args += [f"--{name}" for name in ("stroke", "degrade", "remnants") if getattr(a, name)]
+        args += [f"--{name}" for name in ("stroke", "degrade", "remnants", "breaks") if getattr(a, name)]
         args += ["--seed", str(self.seed)]
         if cfg.workers != 1:
             args += ["--workers", str(cfg.workers)]

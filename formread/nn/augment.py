@@ -29,7 +29,7 @@ from scipy import ndimage
 
 from ..errors import check_param
 
-__all__ = ["AugmentConfig", "random_affine", "elastic", "stroke_width", "degrade", "box_remnants",
+__all__ = ["AugmentConfig", "random_affine", "elastic", "stroke_width", "degrade", "box_remnants", "stroke_breaks",
            "augment_batch"]
 
 
@@ -67,6 +67,10 @@ class AugmentConfig:
         Draw a box-line remnant along one edge.
     remnants_prob : float
         Share of the distorted images that get one.
+    breaks : bool
+        Break strokes with one to three small gaps, as bilevel scans and dry pens leave.
+    breaks_prob : float
+        Share of the distorted images that get them.
     """
 
     affine: bool = True
@@ -84,13 +88,16 @@ class AugmentConfig:
     degrade_prob: float = 0.5
     remnants: bool = False
     remnants_prob: float = 0.2
+    breaks: bool = False
+    breaks_prob: float = 0.3
 
     def as_dict(self) -> dict:
         return asdict(self)
 
     @property
     def enabled(self) -> bool:
-        return (self.affine or self.elastic or self.stroke or self.degrade or self.remnants) and self.prob > 0
+        return (self.affine or self.elastic or self.stroke or self.degrade or self.remnants
+                or self.breaks) and self.prob > 0
 
 
 def _identity_grid(n: int, h: int, w: int) -> tuple[np.ndarray, np.ndarray]:
@@ -305,6 +312,37 @@ def box_remnants(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     return out
 
 
+def stroke_breaks(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
+    """Cut one to three small gaps into every image's strokes.
+
+    Each gap is a disc of radius 1-1.8 px centred on a pixel of strong ink (>= 0.5), cleared to
+    paper; an image without such ink is returned as it was.
+
+    Parameters
+    ----------
+    x : ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    ndarray of shape (N, 1, H, W), float32 in [0, 1]
+    """
+    _check(x)
+    n, _, h, w = x.shape
+    out = x.copy()
+    rr, cc = np.mgrid[0:h, 0:w]
+    gaps = rng.integers(1, 4, n)
+    for i in range(n):
+        ink = np.flatnonzero(x[i, 0] >= 0.5)
+        if ink.size == 0:
+            continue
+        for at in rng.choice(ink, size=int(gaps[i])):
+            r0, c0 = divmod(int(at), w)
+            radius = float(rng.uniform(1.0, 1.8))
+            out[i, 0][(rr - r0) ** 2 + (cc - c0) ** 2 <= radius ** 2] = 0.0
+    return out
+
+
 def augment_batch(x: np.ndarray, rng: np.random.Generator, cfg: AugmentConfig) -> np.ndarray:
     """Distort a training batch: affine and/or elastic in one resampling pass.
 
@@ -347,6 +385,10 @@ def augment_batch(x: np.ndarray, rng: np.random.Generator, cfg: AugmentConfig) -
         sel = rng.random(n) < cfg.remnants_prob
         out = out.copy() if out is x else out
         out[sel] = box_remnants(out[sel], rng)
+    if cfg.breaks:
+        sel = rng.random(n) < cfg.breaks_prob
+        out = out.copy() if out is x else out
+        out[sel] = stroke_breaks(out[sel], rng)
     if out is x:
         out = x.copy()
     keep = rng.random(n) >= cfg.prob

@@ -125,7 +125,7 @@ class TrainConfig:
         check_param(self.step_epochs >= 1, "step_epochs", "an integer >= 1", self.step_epochs)
         check_param(isinstance(self.warmup, int) and self.warmup >= 0, "warmup", "an integer >= 0", self.warmup)
         check_param(self.workers in (1, 2), "workers", "1 or 2", self.workers)
-        for name in ("prob", "stroke_max", "degrade_prob", "remnants_prob"):
+        for name in ("prob", "stroke_max", "degrade_prob", "remnants_prob", "breaks_prob"):
             v = getattr(a, name)
             check_param(num(v) and 0 <= v <= 1, f"augment.{name}", "a number in [0, 1]", v)
 

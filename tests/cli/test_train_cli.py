@@ -184,11 +184,11 @@ def test_train_without_validation_split(tmp_path, arrays):
 def test_pen_and_scanner_flags_reach_the_recipe_and_its_command(tmp_path, arrays):
     out = tmp_path / "pens.npz"
     res = runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(out), "--seed", "2",
-                              "--stroke", "--degrade", "--remnants"] + FAST)
+                              "--stroke", "--degrade", "--remnants", "--breaks"] + FAST)
     assert res.exit_code == 0, res.output
     _, header = load_model(out)
     cmd = header["training"]["command"]
-    assert "--stroke" in cmd and "--degrade" in cmd and "--remnants" in cmd
+    assert all(f"--{k}" in cmd for k in ("stroke", "degrade", "remnants", "breaks"))
     plain = tmp_path / "plain.npz"
     assert runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(plain)] + FAST).exit_code == 0
     plain_cmd = load_model(plain)[1]["training"]["command"]

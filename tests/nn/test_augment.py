@@ -12,6 +12,7 @@ from formread.nn.augment import (
     degrade,
     elastic,
     random_affine,
+    stroke_breaks,
     stroke_width,
 )
 
@@ -101,7 +102,9 @@ def _width(x):
     lambda x, r: stroke_width(x, r),
     lambda x, r: degrade(x, r),
     lambda x, r: box_remnants(x, r),
-    lambda x, r: augment_batch(x, r, AugmentConfig(prob=1.0, stroke=True, degrade=True, remnants=True)),
+    lambda x, r: stroke_breaks(x, r),
+    lambda x, r: augment_batch(x, r, AugmentConfig(prob=1.0, stroke=True, degrade=True, remnants=True,
+                                                   breaks=True)),
 ])
 def test_pen_and_scanner_effects_shape_dtype_range_seed(fn):
     x = _digits(24)
@@ -164,3 +167,16 @@ def test_shipped_recipe_stream_is_unchanged_by_the_new_options():
     b = augment_batch(x, np.random.default_rng(9), AugmentConfig(stroke=False, degrade=False, remnants=False,
                                                                  stroke_max=0.3))
     np.testing.assert_array_equal(a, b)
+
+
+def test_stroke_breaks_only_remove_ink_and_cut_strokes():
+    x = _digits()
+    out = stroke_breaks(x, np.random.default_rng(4))
+    assert np.all(out <= x)                            # ink is only taken away
+    lost = (x - out).sum(axis=(1, 2, 3)) / x.sum(axis=(1, 2, 3))
+    assert np.all(lost > 0) and np.all(lost < 0.35)    # small gaps, never the whole digit
+    # a gap splits strokes: more connected pieces of ink in most images (scipy.ndimage.label)
+    pieces = lambda im: ndimage.label(im[0] >= 0.5)[1]  # noqa: E731
+    assert np.mean([pieces(b) > pieces(a) for a, b in zip(x, out)]) > 0.4
+    np.testing.assert_array_equal(stroke_breaks(np.zeros((2, 1, 28, 28), np.float32),
+                                                np.random.default_rng(0)), 0)
