@@ -331,7 +331,7 @@ def stroke_breaks(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     n, _, h, w = x.shape
     out = x.copy()
     rr, cc = np.mgrid[0:h, 0:w]
-    gaps = rng.integers(1, 4, n)
+    gaps = np.asarray(rng.integers(1, 4, n))
     for i in range(n):
         ink = np.flatnonzero(x[i, 0] >= 0.5)
         if ink.size == 0:
