@@ -373,24 +373,21 @@ def augment_batch(x: np.ndarray, rng: np.random.Generator, cfg: AugmentConfig) -
             src_r += dr
             src_c += dc
         out = _resample(x, src_r, src_c)
+    if out is x:
+        out = x.copy()              # the caller's batch is never changed
     # pen and scanner effects draw from the generator only when on, so the shipped recipe's
     # random stream (and its weights) stay as they were
     if cfg.stroke:
         out = stroke_width(out, rng, max_strength=cfg.stroke_max)
     if cfg.degrade:
         sel = rng.random(n) < cfg.degrade_prob
-        out = out.copy() if out is x else out
         out[sel] = degrade(out[sel], rng)
     if cfg.remnants:
         sel = rng.random(n) < cfg.remnants_prob
-        out = out.copy() if out is x else out
         out[sel] = box_remnants(out[sel], rng)
     if cfg.breaks:
         sel = rng.random(n) < cfg.breaks_prob
-        out = out.copy() if out is x else out
         out[sel] = stroke_breaks(out[sel], rng)
-    if out is x:
-        out = x.copy()
     keep = rng.random(n) >= cfg.prob
     out[keep] = x[keep]
     return out
