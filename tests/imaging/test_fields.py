@@ -9,7 +9,7 @@ import pytest
 from digit_pages import FakeField, FakeRegistration
 from scipy import ndimage
 
-from formread.imaging.binarize import ink_map
+from formread.imaging.binarize import ink_map, page_ink_level, threshold_otsu
 from formread.imaging.fields import crop_to_page, cut_field
 from formread.imaging.lines import _runs_open
 
@@ -121,3 +121,34 @@ def test_crop_samples_the_page_bilinearly():
         want = ((1 - fy) * ((1 - fx) * p[i, j] + fx * p[i, j + 1])
                 + fy * ((1 - fx) * p[i + 1, j] + fx * p[i + 1, j + 1]))
         assert abs(int(crop.gray[r, c]) - want) <= 1.0
+
+
+def test_page_level_sits_in_the_middle_of_a_bilevel_page_gap():
+    # Otsu's between-class variance is the same for every level between 0 and 255 on a bilevel
+    # page (common practice: Otsu 1979, the criterion depends on the classes only); the level is
+    # put in the middle, and on a grey page (no empty gap above Otsu's level) it is Otsu's own
+    rng = np.random.default_rng(4)
+    bilevel = np.where(rng.random((300, 300)) < 0.05, 0, 255).astype(np.uint8)
+    assert page_ink_level(bilevel) == 127.5
+    grey = np.clip(rng.normal(200, 30, (300, 300)), 0, 255).astype(np.uint8)
+    assert page_ink_level(grey) == min(threshold_otsu(grey[::3, ::3]),
+                                       0.8 * np.percentile(grey[::3, ::3], 99, method="inverted_cdf"))
+
+
+@pytest.mark.parametrize("angle", [0.3, 0.7, -0.5])
+def test_a_thin_bilevel_line_stays_whole_in_the_crop(angle):
+    # a bilevel 200 dpi scan of a printed line one pixel thick, slightly askew: resampling to the
+    # crop grid turns it into greys; with the page's level it must stay one unbroken line
+    m = _matrix(200, angle, shift=(30.0, 20.0))
+    page = np.full((900, 900), 255, np.uint8)
+    for c in range(page.shape[1]):                  # the line y = 45 mm, drawn pixel by pixel
+        x_mm = (c + 0.5 - m[0, 2]) / m[0, 0]
+        r = int(np.floor(m[1, 0] * x_mm + m[1, 1] * 45.0 + m[1, 2]))
+        if 0 <= r < page.shape[0]:
+            page[r, c] = 0
+    reg = FakeRegistration(m, page)
+    crop = cut_field(reg, FIELD, px_per_mm=10.0, margin_mm=1.5, level=page_ink_level(page))
+    lab, n = ndimage.label(crop.ink, np.ones((3, 3), bool))
+    assert n == 1
+    cols = np.flatnonzero(crop.ink.any(axis=0))
+    assert cols.size == crop.ink.shape[1]           # it covers every column of the crop
