@@ -116,8 +116,9 @@ def learn_cmd(
     resume: bool = typer.Option(False, "--resume", help="Continue an interrupted fine-tuning from its checkpoint."),
     truth: list[Path] | None = typer.Option(None, "--truth", help="Known values of a run's pages (truth.jsonl), "
                                                                      "for development sets; one per run, in order."),
-    refit_only: bool = typer.Option(False, "--refit-only", help="No training: fit the decisions of the bundle's "
-                                                                "own network on every page (e.g. a new form)."),
+    refit_only: bool = typer.Option(False, "--refit-only", help="No training: fit the decoder's digit map and the "
+                                                                "decisions of the bundle's own network on every page "
+                                                                "(a new form, a new network)."),
     as_json: bool = typer.Option(False, "--json", help="Machine-readable report."),
     quiet: bool = typer.Option(False, "--quiet", "-q", help="No progress bar."),
 ):

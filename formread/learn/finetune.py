@@ -77,8 +77,7 @@ def fine_tune(parent, header: dict, x_local: np.ndarray, y_local: np.ndarray, or
     new.load_state_dict(parent.state_dict())
     base = (header.get("training") or {}).get("config") or {}
     aug = base.get("augment")
-    aug = AugmentConfig(**{k: v for k, v in aug.items() if k in AugmentConfig.__dataclass_fields__}) \
-        if isinstance(aug, dict) else AugmentConfig()
+    aug = AugmentConfig.from_dict(aug) if isinstance(aug, dict) else AugmentConfig.from_dict({})
     cfg = TrainConfig(epochs=epochs, lr=lr, optimizer="adam", schedule="cosine", warmup=0,
                       batch_size=int(base.get("batch_size", 64)), val_fraction=0.1,
                       label_smoothing=float(base.get("label_smoothing", 0.0)), patience=0, augment=aug, seed=seed)

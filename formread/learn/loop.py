@@ -79,8 +79,9 @@ class LearnConfig:
     margin : float                  most accuracy an original held-out part may lose for promotion
     target : float or None          error among accepted aimed at; None: each form's target_error,
                                     else formread.form.thresholds.DEFAULT_TARGET
-    refit_only : bool               no training: refit the fitted decisions of the bundle's own
-                                    network on every page (a new form, or development sets)
+    refit_only : bool               no training: refit the decoder's digit map and the fitted decisions
+                                    of the bundle's own network on every page (a new form, a new
+                                    network, or development sets)
     """
 
     held_out: float = 0.3
@@ -506,8 +507,12 @@ def learn(runs, *, bundle=None, out=None, config: LearnConfig | None = None, pro
 
 
 def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out, runs, cfg, t0) -> LearnReport:
-    """Fitted decisions of the bundle's own network from every page (no training, decoder kept)."""
+    """The decoder's digit reliability map and the fitted decisions of the bundle's own network, from
+    every page (no training)."""
     pairs = _read_again(fields, layouts, bundle, bundle.decoder)
+    p, ok = _digit_evidence(pairs, layouts, bundle)
+    decoder = refit_digit_map(bundle.decoder, p, ok)
+    pairs = _read_again(fields, layouts, bundle, decoder)
     evidence = _evidence(pairs)
     rep.before = rep.after = _figures(evidence, targets)
     rep.pages_held_out = len({f.page for f in fields})
@@ -520,8 +525,9 @@ def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out,
                            "architecture", "decoder", "decisions")}
     decisions = Decisions(evidence, fitted_on=f"{rep.pages_held_out} pages of {len(runs)} run(s), "
                                                f"{rep.after['fields']} fields")
-    new = save_bundle(out, list(bundle.networks), header, decoder=bundle.decoder,
-                      decoder_fitted_for=bundle.decoder_fitted_for, decoder_fitted_on=bundle.decoder_fitted_on,
+    new = save_bundle(out, list(bundle.networks), header, decoder=decoder,
+                      decoder_fitted_on=f"digit map: {len(ok)} digits of {rep.pages_held_out} pages of {len(runs)} "
+                                        f"run(s); other constants: {bundle.decoder_fitted_on or 'as shipped'}",
                       decisions=decisions)
     rep.bundle_after, rep.temperature = str(new.path), bundle.temperature
     rep.original_before = rep.original_after = {}

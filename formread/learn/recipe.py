@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import check_param
+from ..nn.augment import PEN_AND_SCANNER
 from ..nn.metrics import classification_report
 from ..nn.model import ARCHITECTURES, build_model
 from ..nn.train import TrainConfig, TrainResult, evaluate, train
@@ -65,8 +66,7 @@ class Recipe:
                 "--patience", str(cfg.patience), "--affine" if a.affine else "--no-affine",
                 "--elastic" if a.elastic else "--no-elastic", "--elastic-alpha", f"{a.elastic_alpha:g}",
                 "--elastic-sigma", f"{a.elastic_sigma:g}"]
-        # the pen and scanner effects are named only when on, so earlier records read as they were
-        args += [f"--{name}" for name in ("stroke", "degrade", "remnants", "breaks") if getattr(a, name)]
+        args += [f"--{name}" if getattr(a, name) else f"--no-{name}" for name in PEN_AND_SCANNER]
         args += ["--seed", str(self.seed)]
         if cfg.workers != 1:
             args += ["--workers", str(cfg.workers)]

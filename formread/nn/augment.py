@@ -30,7 +30,10 @@ from scipy import ndimage
 from ..errors import check_param
 
 __all__ = ["AugmentConfig", "random_affine", "elastic", "stroke_width", "degrade", "box_remnants", "stroke_breaks",
-           "augment_batch"]
+           "augment_batch", "PEN_AND_SCANNER"]
+
+PEN_AND_SCANNER = ("stroke", "degrade", "remnants", "breaks")
+"""The pen and scanner effects (on in the shipped recipe since 2026-12-03; off in records before)."""
 
 
 @dataclass
@@ -82,17 +85,24 @@ class AugmentConfig:
     elastic_alpha: float = 24.0
     elastic_sigma: float = 4.0
     prob: float = 0.9
-    stroke: bool = False
+    stroke: bool = True
     stroke_max: float = 1.0
-    degrade: bool = False
+    degrade: bool = True
     degrade_prob: float = 0.5
-    remnants: bool = False
+    remnants: bool = True
     remnants_prob: float = 0.2
-    breaks: bool = False
+    breaks: bool = True
     breaks_prob: float = 0.3
 
     def as_dict(self) -> dict:
         return asdict(self)
+
+    @classmethod
+    def from_dict(cls, d: dict) -> AugmentConfig:
+        """The config a model header recorded; unknown keys are dropped, and the pen and scanner effects
+        a record does not name are off (records made before they existed)."""
+        off = {name: False for name in PEN_AND_SCANNER}
+        return cls(**{**off, **{k: v for k, v in d.items() if k in cls.__dataclass_fields__}})
 
     @property
     def enabled(self) -> bool:

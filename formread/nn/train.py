@@ -135,7 +135,7 @@ class TrainConfig:
     @classmethod
     def from_dict(cls, d: dict) -> TrainConfig:
         d = dict(d)
-        aug = AugmentConfig(**d.pop("augment", {}))
+        aug = AugmentConfig.from_dict(d.pop("augment", {}))
         known = {f.name for f in fields(cls)}
         return cls(augment=aug, **{k: v for k, v in d.items() if k in known})
 

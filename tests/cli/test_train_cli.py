@@ -182,15 +182,21 @@ def test_train_without_validation_split(tmp_path, arrays):
 
 
 def test_pen_and_scanner_flags_reach_the_recipe_and_its_command(tmp_path, arrays):
+    # on by default (the shipped recipe); each can be turned off, and the command spells out both
     out = tmp_path / "pens.npz"
-    res = runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(out), "--seed", "2",
-                              "--stroke", "--degrade", "--remnants", "--breaks"] + FAST)
+    res = runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(out), "--seed", "2"] + FAST)
     assert res.exit_code == 0, res.output
     _, header = load_model(out)
-    cmd = header["training"]["command"]
+    cmd = header["training"]["command"].split()
     assert all(f"--{k}" in cmd for k in ("stroke", "degrade", "remnants", "breaks"))
+    assert all(header["training"]["config"]["augment"][k] for k in ("stroke", "degrade", "remnants", "breaks"))
     plain = tmp_path / "plain.npz"
-    assert runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(plain)] + FAST).exit_code == 0
-    plain_cmd = load_model(plain)[1]["training"]["command"]
-    # off, they are not named: a recipe recorded before they existed reads the same
-    assert "--stroke" not in plain_cmd and "--degrade" not in plain_cmd and "--remnants" not in plain_cmd
+    res = runner.invoke(app, ["train", "--dataset", f"npz:{arrays}", "--out", str(plain), "--no-stroke",
+                              "--no-degrade", "--no-remnants", "--no-breaks"] + FAST)
+    assert res.exit_code == 0, res.output
+    plain_header = load_model(plain)[1]
+    plain_cmd = plain_header["training"]["command"].split()
+    assert all(f"--no-{k}" in plain_cmd and f"--{k}" not in plain_cmd
+               for k in ("stroke", "degrade", "remnants", "breaks"))
+    assert not any(plain_header["training"]["config"]["augment"][k] for k in ("stroke", "degrade", "remnants",
+                                                                                "breaks"))

@@ -86,6 +86,19 @@ def test_spot_checks_appear_in_score_and_report(spot_runs):
     assert res.exit_code == 0 and "spot checks" in res.output and "upper bound" in res.output
 
 
+def test_refit_only_fits_the_digit_map_and_decisions_and_keeps_the_network(spot_runs, tmp_path, bundle):
+    # --refit-only is how a newly trained network gets its decisions (DEVELOPERS.md); the network
+    # itself must not change, the decoder's digit map and the decisions must be fitted for it
+    out = tmp_path / "refit.npz"
+    rep = learn([spot_runs[1]], bundle=bundle, out=out, config=LearnConfig(refit_only=True))
+    new = load_bundle(out)
+    assert new.weights_sha256 == bundle.weights_sha256
+    assert new.decoder_status == "fitted" and new.decisions.status == "fitted"
+    assert new.decoder.digit_calibration != bundle.decoder.digit_calibration
+    assert "digit map:" in new.decoder_fitted_on and f"{rep.pages_held_out} pages" in new.decoder_fitted_on
+    assert not rep.promoted and "outside the model store" in rep.reason
+
+
 def test_learn_refits_decisions_and_the_next_read_uses_them(spot_runs, tmp_path):
     res = CliRunner().invoke(app, ["learn", str(spot_runs[0]), "--epochs", "2", "--target", "0.02", "--json",
                                    "--quiet"])

@@ -6,6 +6,7 @@ from scipy import ndimage
 
 from formread.errors import ParameterError
 from formread.nn.augment import (
+    PEN_AND_SCANNER,
     AugmentConfig,
     augment_batch,
     box_remnants,
@@ -160,13 +161,19 @@ def test_box_remnants_are_lines_at_an_edge():
     assert np.all(kept >= digits)                     # the digit's own ink stays
 
 
-def test_shipped_recipe_stream_is_unchanged_by_the_new_options():
-    # the new effects are off by default and draw nothing then: the same seed gives the same batch
+def test_records_without_the_pen_effects_replay_as_they_were_made():
+    # a header recorded before the pen and scanner effects existed names none of them: read back,
+    # they are off, and the batch is the one affine + elastic alone gave (the same random stream)
+    rec = AugmentConfig.from_dict({"affine": True, "elastic": True, "prob": 0.9, "unknown_key": 1})
+    assert not any(getattr(rec, n) for n in PEN_AND_SCANNER)
     x = _batch()
-    a = augment_batch(x, np.random.default_rng(9), AugmentConfig())
+    a = augment_batch(x, np.random.default_rng(9), rec)
     b = augment_batch(x, np.random.default_rng(9), AugmentConfig(stroke=False, degrade=False, remnants=False,
-                                                                 stroke_max=0.3))
+                                                                 breaks=False, stroke_max=0.3))
     np.testing.assert_array_equal(a, b)
+    # the shipped recipe has them on, and they change the batch
+    assert all(getattr(AugmentConfig(), n) for n in PEN_AND_SCANNER)
+    assert not np.array_equal(augment_batch(x, np.random.default_rng(9), AugmentConfig()), a)
 
 
 def test_stroke_breaks_only_remove_ink_and_cut_strokes():

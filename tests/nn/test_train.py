@@ -167,7 +167,8 @@ def test_cnn_beats_the_svc_of_scikit_learns_digits_example():
     x = np.clip(upscale_small(images, 2) / 16.0, 0.0, 1.0)[:, None].astype(np.float32)
     cfg = TrainConfig(epochs=50, batch_size=32, lr=2e-3, val_fraction=0.0, patience=0, seed=0, label_smoothing=0.0,
                       augment=AugmentConfig(rotate_deg=10, scale=0.1, shear=0.15, shift_px=1.0,
-                                            elastic=True, elastic_alpha=6.0, elastic_sigma=2.5, prob=0.9))
+                                            elastic=True, elastic_alpha=6.0, elastic_sigma=2.5, prob=0.9,
+                                            stroke=False, degrade=False, remnants=False, breaks=False))
     t0 = time.monotonic()
     model = build_model(DIGITS16, np.random.default_rng(0))
     train(model, x[tr], labels[tr], cfg)
