@@ -17,7 +17,7 @@ MODEL = ROOT / "models" / "default.npz"
 CARD = ROOT / "models" / "MODEL_CARD.md"
 
 # Measured when the model was trained (models/MODEL_CARD.md); floors allow 0.002 below.
-MEASURED = {"mnist:test": 0.9890, "digits:test": 0.9889}
+MEASURED = {"mnist:test": 0.9870, "digits:test": 0.9889}
 
 
 @pytest.fixture(scope="module")
