@@ -94,13 +94,15 @@ ACCEPTED = "accepted"
 REVIEW = "review"
 AUDIT = "audit"
 REASONS = ("page_not_registered", "segmentation_doubtful", "missing", "rule_failed:<rule>",
-           "best_breaks_rule:<rule>", "low_confidence", "audit")
+           "best_breaks_rule:<rule>", "low_confidence", "blank_beside_missing", "audit")
 """Reasons for review, a fixed vocabulary.  ``rule_failed:<rule>`` names the rule
 (``length``, ``range``, ``date``, ``luhn``, ..., or ``relation``) the reading breaks;
 ``best_breaks_rule:<rule>``: the reading keeps the rules only because it differs from the
 reader's own best reading, which breaks ``<rule>`` (a writer's mistake must reach a person,
-see ``ConfidenceModel.rule_fit_ratio``); ``audit``: a spot check of a field that would have
-been accepted (formread.read.audit).  Order of precedence: page_not_registered (whole page),
+see ``ConfidenceModel.rule_fit_ratio``); ``blank_beside_missing``: an optional field found blank
+on a page where a field that must be filled is blank too (a grey pen lost by a bilevel scan, a
+faded page: a blank read there is no evidence of a blank on paper); ``audit``: a spot check of a
+field that would have been accepted (formread.read.audit).  Order of precedence: page_not_registered (whole page),
 segmentation_doubtful when there is no reading at all, missing, rule_failed:<rule>,
 best_breaks_rule:<rule>, segmentation_doubtful, low_confidence, audit."""
 
@@ -671,6 +673,10 @@ def decode_page(evidence: dict[str, FieldEvidence], layout, *, confidence: Confi
     _apply_relations(states, compiled, relation_top=relation_top, max_combinations=max_combinations, model=m)
     for name, st in states.items():
         _decide(st, _threshold(thresholds, name), m)
+    if any(st.reading.reason == "missing" for st in states.values()):
+        for st in states.values():
+            if st.reading.reading == "" and st.reading.decision == ACCEPTED:
+                st.reading.reason, st.reading.decision = "blank_beside_missing", REVIEW
     return {name: st.reading for name, st in states.items()}
 
 

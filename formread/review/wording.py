@@ -81,6 +81,9 @@ def explain_reason(reason: str | None, *, confidence: float | None = None,
             out.append("The page could not be matched to the form layout: read the value from the page view.")
         elif part == "missing":
             out.append("Nothing was found here, but the field must be filled.")
+        elif part == "blank_beside_missing":
+            out.append("Nothing was found here, and fields that must be filled are blank on this page too: "
+                       "the ink may be too faint for the scan. Check the paper.")
         else:
             out.append(f"Flagged: {part}.")
     return out
