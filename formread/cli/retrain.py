@@ -94,7 +94,16 @@ def _render_learn(rep) -> list[str]:
         lines.append(f"  {form}: target {_pct(f['target'])} -> {t}")
     for part in rep.original_before or {}:
         lines.append(f"{part} accuracy: {rep.original_before[part]:.4f} -> {rep.original_after[part]:.4f}")
-    lines.append(f"wrote {rep.bundle_after} (temperature {rep.temperature:.3f}; decoder and decisions refitted)")
+    kept = rep.kept_network or {}
+    tuned = kept.get("fine_tuned_bundle", rep.bundle_after)
+    lines.append(f"wrote {tuned} (temperature {rep.temperature:.3f}; decoder and decisions refitted)")
+    if kept:
+        iu, rf = kept["in_use"], kept["refitted"]
+        lines.append(f"network in use, held-out pages: decisions in use -> refitted on the fitting pages: review "
+                     f"{_pct(iu['review_rate'])} -> {_pct(rf['review_rate'])}, error among accepted "
+                     f"{_pct(iu['error_among_accepted'])} -> {_pct(rf['error_among_accepted'])}")
+        if "fine_tuned_bundle" in kept:
+            lines.append(f"wrote {rep.bundle_after} (the network in use, decisions refitted on every page)")
     lines.append(("promoted: now in use. " if rep.promoted else "not promoted: ") + rep.reason)
     return lines
 

@@ -24,6 +24,11 @@ So one step, from reviewed runs:
    error falls below the old bundle's (whose threshold is chosen the same way on the same pages)
    and no original held-out part loses more than ``margin``.  The bundle in use is never
    overwritten: the new one is a new version beside it.
+7. **Otherwise keep the network, refit its decisions** when that pays: the decisions in use were
+   fitted elsewhere (the shipped ones on development cards) and may let more errors through on
+   this office's forms than its target allows.  Decisions fitted on the fitting pages are compared
+   with those in use on the held-out pages; when they review less without more error, or cut an
+   error above the target, the same network with decisions fitted on every page is promoted.
 
 The next ``formread read`` then uses the promoted bundle and its fitted decisions for every form it
 learnt, as soon as the layout names a ``target_error`` (or no threshold of its own): the layout
@@ -146,6 +151,7 @@ class LearnReport:
     original_before: dict = field(default_factory=dict)
     original_after: dict = field(default_factory=dict)
     targets: dict = field(default_factory=dict)
+    kept_network: dict = field(default_factory=dict)
     temperature: float = 1.0
     seconds: float = 0.0
 
@@ -502,8 +508,66 @@ def learn(runs, *, bundle=None, out=None, config: LearnConfig | None = None, pro
         rep.reason = (f"review rate at the target on the held-out pages {_pct(rb)} -> {_pct(ra)}; original "
                       f"held-out parts within the margin {cfg.margin:.4f}")
         promote(new.path)
+    if not rep.promoted:
+        _keep_network(bundle, fitting, before_pairs, layouts, targets, rep, runs)
     rep.seconds = time.monotonic() - t0
     return rep
+
+
+def _applied(pairs: list[tuple], layouts: dict, fitted_for: Callable) -> dict:
+    """What thresholds resolved as ``formread read`` resolves them give on fields of known truth: review
+    rate and error among accepted (spot checks left out: every eligible field at or above its threshold
+    counts as accepted).  ``fitted_for(form)``: the ``fitted`` callable of the threshold policy."""
+    thresholds = {form: resolve_thresholds(layout, fitted=fitted_for(form)) for form, layout in layouts.items()}
+    n = accepted = wrong = 0
+    for f, r in pairs:
+        n += 1
+        if r.reason in (None, "low_confidence") and r.confidence >= thresholds[f.form][f.name].value:
+            accepted += 1
+            wrong += r.reading != f.truth
+    return {"fields": n, "accepted": accepted, "wrong_accepted": wrong,
+            "review_rate": 1 - accepted / n if n else None,
+            "error_among_accepted": wrong / accepted if accepted else None,
+            "upper_95": clopper_pearson_upper(wrong, accepted) if accepted else None}
+
+
+def _keep_network(bundle: Bundle, fitting: list[_Field], held_pairs: list[tuple], layouts: dict, targets: dict,
+                  rep: LearnReport, runs) -> None:
+    """When the fine-tuned network is not promoted, the network in use may still need decisions fitted for
+    these forms: its decisions were fitted elsewhere (the shipped ones on development cards).  Decisions
+    fitted on the fitting pages are compared with those in use on the held-out pages (the network in use
+    never trained on either); when they send fewer fields to review without more error, or cut an error
+    above the target, the network in use is promoted again with decisions fitted on every page (a new
+    version: the bundle in use is not overwritten)."""
+    fit_pairs = _read_again(fitting, layouts, bundle, bundle.decoder)
+    trial = Decisions(_evidence(fit_pairs))
+    in_use = _applied(held_pairs, layouts, bundle.fitted_threshold)
+    refit = _applied(held_pairs, layouts, lambda form: lambda t, n: trial.threshold_for(form, n, t))
+    rep.kept_network = {"in_use": in_use, "refitted": refit}
+    target = max(targets.values())
+    e0, e1 = in_use["error_among_accepted"] or 0.0, refit["error_among_accepted"] or 0.0
+    r0, r1 = in_use["review_rate"], refit["review_rate"]
+    if r0 is None or r1 is None:
+        return
+    # less review without more error, or (the decisions in use missing the target here) less error
+    better = (r1 < r0 and e1 <= e0) or (e0 > target and e1 < e0)
+    if not better:
+        return
+    pages = {f.page for f, _ in fit_pairs + held_pairs}
+    decisions = Decisions(_evidence(fit_pairs + held_pairs), fitted_on=f"{len(pages)} pages of {len(runs)} run(s), "
+                                                                     f"the network in use kept")
+    header = {k: v for k, v in bundle.header.items()
+              if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created",
+                           "architecture", "decoder", "decisions")}
+    out = next_version_path(bundle.path)
+    kept = save_bundle(out, list(bundle.networks), header, decoder=bundle.decoder,
+                       decoder_fitted_for=bundle.decoder_fitted_for, decoder_fitted_on=bundle.decoder_fitted_on,
+                       decisions=decisions)
+    promote(kept.path)
+    rep.kept_network["fine_tuned_bundle"] = rep.bundle_after
+    rep.promoted, rep.bundle_after = True, str(kept.path)
+    rep.reason += (f"; the network in use kept, with decisions refitted on these pages (held-out pages: review "
+                   f"{_pct(r0)} -> {_pct(r1)}, error among accepted {_pct(e0)} -> {_pct(e1)})")
 
 
 def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out, runs, cfg, t0) -> LearnReport:
