@@ -449,6 +449,9 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     if n == 0:
         return FieldDigits(field.name, field.kind, image, [empty], None, False, None, corners, crop.rect)
     rows_ink = np.flatnonzero(ink.any(axis=1))
+    # all the ink shorter than a blank boxed cell's limit: no digit seen whole (writing faded or lost
+    # by a bilevel scan, a stray mark), which a reader must not take for a confident "1"
+    marks_only = rows_ink[-1] - rows_ink[0] + 1 < BLANK_HEIGHT * (y1 - y0)
     # pieces of broken digits are short; the whole line of writing is about one digit tall
     dh = max(dh, 0.85 * (rows_ink[-1] - rows_ink[0] + 1), 0.25 * (y1 - y0))
     sw = _stroke_width(ink)
@@ -568,6 +571,8 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
         img, box = _digit(weights, ink)
         candidates = [Candidate(img[None, None], [box], 100.0)]
     doubtful, reason = _open_doubt(candidates, field, dh)
+    if marks_only and not doubtful:
+        doubtful, reason = True, "only marks shorter than a digit (faint, broken or stray writing?)"
     return FieldDigits(field.name, field.kind, image, candidates, None, doubtful, reason, corners, crop.rect)
 
 

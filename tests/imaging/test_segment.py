@@ -144,6 +144,26 @@ def test_two_far_apart_digits_are_never_doubtful():
 PLOT = FakeField("plot", "open", 10.0, 8.0, 36.0, 11.0, max_digits=3)
 
 
+def test_an_open_field_holding_only_a_short_mark_is_doubtful():
+    # a hairline digit lost by a bilevel scan leaves a fragment that reads as a sure "1"; ink shorter
+    # than a quarter of the field (BLANK_HEIGHT, the boxed cells' limit) is no digit seen whole
+    images, labels = mnist_test()
+    page = blank_page(100.0, 28.0)
+    draw_rect(page, OPEN.x, OPEN.y, OPEN.w, OPEN.h)
+    stamp(page, digit_ink(images[np.flatnonzero(labels == 1)[0]], 2.2 * S), int((OPEN.x + 20) * S),
+          int((OPEN.y + 4) * S))
+    fd = segment_open(cut_field(identity_registration(page), OPEN), OPEN)
+    assert len(fd.candidates[0].boxes) == 1 and fd.doubtful and "shorter than a digit" in fd.reason
+    # the same digit at a writing size (7 mm in an 11 mm field) is not
+    page = blank_page(100.0, 28.0)
+    draw_rect(page, OPEN.x, OPEN.y, OPEN.w, OPEN.h)
+    stamp(page, digit_ink(images[np.flatnonzero(labels == 1)[0]], 7 * S), int((OPEN.x + 20) * S),
+          int((OPEN.y + 2) * S))
+    fd = segment_open(cut_field(identity_registration(page), OPEN), OPEN)
+    assert len(fd.candidates[0].boxes) == 1 and not fd.doubtful
+
+
+
 def one_touching_ranks(n_cases: int, seed: int) -> np.ndarray:
     """Rank of the true split (99 = absent) on drawn 2-3 digit fields whose first digit is an
     MNIST test-part "1" touching or overlapping the next digit a little."""
