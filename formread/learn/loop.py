@@ -14,8 +14,8 @@ So one step, from reviewed runs:
 3. **Digit samples** from the fitting pages' clerk-decided fields.  A field whose reading had
    another digit count than the decided value is cut again to that count (the stored candidate
    splits, else the stored crop cut anew), so touching and broken digits are learnt too.
-4. **Fine-tune** the network in use (formread.learn.finetune: original data mixed in,
-   augmentation, a fresh temperature), its original held-out parts measured before and after.
+4. **Fine-tune** the network in use (formread.learn.finetune: original data mixed in, the
+   parent's geometric augmentation, a fresh temperature), its original held-out parts measured before and after.
 5. **Refit the decisions for the new network** on the held-out pages, read again with it (every
    stored candidate split): the digit reliability map of the decoder, and the evidence
    (confidence, right or wrong, eligible) from which a threshold for any target error is chosen

@@ -3,10 +3,10 @@
 Local samples (``DIR/<digit>/*.png``, see :mod:`formread.learn.samples`) are split once, stratified
 and seeded, into a fine-tuning part and a held-out part.  The current model is fine-tuned on
 the fine-tuning part mixed with a sample of its own original training data (so it does not
-forget the writers it knew), with the same augmentation as in training, and its temperature is
-refitted on the run's validation split.  Accuracy is measured before and after on the held-out
-local samples and on the original held-out test parts (the MNIST sample's test part and the
-second half of scikit-learn's digits for the shipped model).
+forget the writers it knew), with the geometric augmentation of its training (not the pen and
+scanner effects), and its temperature is refitted on the run's validation split.  Accuracy is
+measured before and after on the held-out local samples and on the original held-out test parts
+(the MNIST sample's test part and the second half of scikit-learn's digits for the shipped model).
 
 The new model is always written as a new version in the model store (``<name>-r<N>.npz``,
 formread/store.py); the model in use is never overwritten.  Its decoder constants and fitted

@@ -105,14 +105,21 @@ def test_learn_refits_decisions_and_the_next_read_uses_them(spot_runs, tmp_path)
     assert res.exit_code == 0, res.output
     rep = json.loads(res.stdout)
     assert rep["pages_held_out"] >= 3 and rep["samples"] > 50 and sum(rep["samples_per_digit"]) == rep["samples"]
+    shipped = load_bundle(shipped_model())
+    kept = rep["kept_network"].get("fine_tuned_bundle")          # the network in use kept (learn step 7)
+    tuned = load_bundle(kept or rep["bundle_after"])
+    assert tuned.decoder_status == "fitted" and tuned.decisions.status == "fitted"  # refitted for this network
+    assert tuned.decoder.digit_calibration != shipped.decoder.digit_calibration
+    assert tuned.weights_sha256 != shipped.weights_sha256
     new = load_bundle(rep["bundle_after"])
-    assert new.decoder_status == "fitted" and new.decisions.status == "fitted"    # refitted for this network
-    assert new.decoder.digit_calibration != load_bundle(shipped_model()).decoder.digit_calibration
     assert set(new.decisions.forms) == {"Larkspur Lane water meter card"}
     assert Path(rep["bundle_after"]).parent == store_dir()                        # a new version in the store
+    if kept:
+        assert rep["promoted"] and new.weights_sha256 == shipped.weights_sha256
+        assert new.decisions.status == "fitted" and "network in use kept" in new.decisions.fitted_on
     if rep["promoted"]:
         assert in_use_path() == Path(rep["bundle_after"])
-        assert rep["after"]["review_rate"] < rep["before"]["review_rate"]
+        assert kept or rep["after"]["review_rate"] < rep["before"]["review_rate"]
         out = tmp_path / "next"
         read_batch(SCANS[:3], DEMO / "layout.toml", out, workers=1)
         with open_ledger(out, create=False) as led:

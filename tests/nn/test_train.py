@@ -19,7 +19,7 @@ TINY = [
     {"type": "dense", "in": 256, "out": 16}, {"type": "relu"}, {"type": "dropout", "p": 0.2},
     {"type": "dense", "in": 16, "out": 10},
 ]
-NO_AUG = AugmentConfig(affine=False, elastic=False)
+NO_AUG = AugmentConfig(affine=False, elastic=False, stroke=False, degrade=False, remnants=False, breaks=False)
 
 
 def _toy(n=300, seed=0):
