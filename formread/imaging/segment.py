@@ -449,11 +449,12 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     if n == 0:
         return FieldDigits(field.name, field.kind, image, [empty], None, False, None, corners, crop.rect)
     rows_ink = np.flatnonzero(ink.any(axis=1))
+    ink_h = rows_ink[-1] - rows_ink[0] + 1
     # all the ink shorter than a blank boxed cell's limit: no digit seen whole (writing faded or lost
     # by a bilevel scan, a stray mark), which a reader must not take for a confident "1"
-    marks_only = rows_ink[-1] - rows_ink[0] + 1 < BLANK_HEIGHT * (y1 - y0)
+    marks_only = ink_h < BLANK_HEIGHT * (y1 - y0)
     # pieces of broken digits are short; the whole line of writing is about one digit tall
-    dh = max(dh, 0.85 * (rows_ink[-1] - rows_ink[0] + 1), 0.25 * (y1 - y0))
+    dh = max(dh, 0.85 * ink_h, 0.25 * (y1 - y0))
     sw = _stroke_width(ink)
     prof = ink.sum(axis=0).astype(np.float64)
     cols_ink = np.flatnonzero(prof > 0)

@@ -79,7 +79,7 @@ def fine_tune(parent, header: dict, x_local: np.ndarray, y_local: np.ndarray, or
     new.load_state_dict(parent.state_dict())
     base = (header.get("training") or {}).get("config") or {}
     aug = base.get("augment")
-    aug = AugmentConfig.from_dict(aug) if isinstance(aug, dict) else AugmentConfig.from_dict({})
+    aug = AugmentConfig.from_dict(aug if isinstance(aug, dict) else {})
     # the parent's geometric distortions, without its pen and scanner effects: the local digits were
     # cut from the office's own scans, and degrading them further washed out what they teach (stippled
     # digits of a new writer, tests/learn/test_retrain.py: 0.74 -> 0.79 with the effects, 0.87 without)

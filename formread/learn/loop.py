@@ -15,7 +15,8 @@ So one step, from reviewed runs:
    another digit count than the decided value is cut again to that count (the stored candidate
    splits, else the stored crop cut anew), so touching and broken digits are learnt too.
 4. **Fine-tune** the network in use (formread.learn.finetune: original data mixed in, the
-   parent's geometric augmentation, a fresh temperature), its original held-out parts measured before and after.
+   parent's geometric augmentation, a fresh temperature), its original held-out parts measured
+   before and after.
 5. **Refit the decisions for the new network** on the held-out pages, read again with it (every
    stored candidate split): the digit reliability map of the decoder, and the evidence
    (confidence, right or wrong, eligible) from which a threshold for any target error is chosen
@@ -70,6 +71,8 @@ MIN_DECIDED_FIELDS = 40
 MIN_DIGIT_CLASSES = 3
 """Local samples of fewer distinct digits would skew the network towards them."""
 _CLERK = ("confirmed", "corrected", "empty")
+_ELIGIBLE = (None, "low_confidence")
+"""Reasons of fields a threshold decides (the others go to review whatever it is)."""
 
 
 @dataclass
@@ -315,7 +318,7 @@ def _evidence(pairs: list[tuple]) -> dict:
     """{form: {field: ndarray (N, 3) of confidence, correct, eligible}}."""
     out: dict = {}
     for f, r in pairs:
-        eligible = r.reason in (None, "low_confidence")
+        eligible = r.reason in _ELIGIBLE
         out.setdefault(f.form, {}).setdefault(f.name, []).append(
             (float(r.confidence), float(r.reading == f.truth), float(eligible)))
     return {form: {n: np.asarray(v, np.float64) for n, v in fields.items()} for form, fields in out.items()}
@@ -522,7 +525,7 @@ def _applied(pairs: list[tuple], layouts: dict, fitted_for: Callable) -> dict:
     n = accepted = wrong = 0
     for f, r in pairs:
         n += 1
-        if r.reason in (None, "low_confidence") and r.confidence >= thresholds[f.form][f.name].value:
+        if r.reason in _ELIGIBLE and r.confidence >= thresholds[f.form][f.name].value:
             accepted += 1
             wrong += r.reading != f.truth
     return {"fields": n, "accepted": accepted, "wrong_accepted": wrong,
@@ -556,9 +559,7 @@ def _keep_network(bundle: Bundle, fitting: list[_Field], held_pairs: list[tuple]
     pages = {f.page for f, _ in fit_pairs + held_pairs}
     decisions = Decisions(_evidence(fit_pairs + held_pairs), fitted_on=f"{len(pages)} pages of {len(runs)} run(s), "
                                                                      f"the network in use kept")
-    header = {k: v for k, v in bundle.header.items()
-              if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created",
-                           "architecture", "decoder", "decisions")}
+    header = _provenance(bundle)
     out = next_version_path(bundle.path)
     kept = save_bundle(out, list(bundle.networks), header, decoder=bundle.decoder,
                        decoder_fitted_for=bundle.decoder_fitted_for, decoder_fitted_on=bundle.decoder_fitted_on,
@@ -584,9 +585,7 @@ def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out,
     out = Path(out) if out is not None else next_version_path(bundle.path)
     if out.resolve() in (bundle.path.resolve(), in_use_path().resolve()):
         raise DataError(f"{out}: the new version must not overwrite the bundle in use")
-    header = {k: v for k, v in bundle.header.items()
-              if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created",
-                           "architecture", "decoder", "decisions")}
+    header = _provenance(bundle)
     decisions = Decisions(evidence, fitted_on=f"{rep.pages_held_out} pages of {len(runs)} run(s), "
                                                f"{rep.after['fields']} fields")
     new = save_bundle(out, list(bundle.networks), header, decoder=decoder,
@@ -602,6 +601,13 @@ def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out,
         rep.reason = "written outside the model store; not put in use"
     rep.seconds = time.monotonic() - t0
     return rep
+
+
+def _provenance(bundle: Bundle) -> dict:
+    """The header parts a new version of the same networks carries over (what save_bundle rewrites left out)."""
+    return {k: v for k, v in bundle.header.items()
+            if k not in ("format", "format_version", "networks", "weights_sha256", "sha256", "created",
+                         "architecture", "decoder", "decisions")}
 
 
 def _pct(v) -> str:

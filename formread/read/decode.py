@@ -102,9 +102,10 @@ reader's own best reading, which breaks ``<rule>`` (a writer's mistake must reac
 see ``ConfidenceModel.rule_fit_ratio``); ``blank_beside_missing``: an optional field found blank
 on a page where a field that must be filled is blank too (a grey pen lost by a bilevel scan, a
 faded page: a blank read there is no evidence of a blank on paper); ``audit``: a spot check of a
-field that would have been accepted (formread.read.audit).  Order of precedence: page_not_registered (whole page),
-segmentation_doubtful when there is no reading at all, missing, rule_failed:<rule>,
-best_breaks_rule:<rule>, segmentation_doubtful, low_confidence, audit."""
+field that would have been accepted (formread.read.audit).  Order of precedence:
+page_not_registered (whole page), segmentation_doubtful when there is no reading at all, missing,
+rule_failed:<rule>, best_breaks_rule:<rule>, segmentation_doubtful, low_confidence,
+blank_beside_missing (decided per page, after the rest), audit."""
 
 TOP_PER_POSITION = 3
 MAX_STRINGS = 128
