@@ -122,3 +122,27 @@ def page_box_to_crop(box, crop) -> tuple[float, float, float, float]:
     f = crop.px_per_mm / S
     return ((x0 - crop.x0_mm * S) * f, (y0 - crop.y0_mm * S) * f,
             (x1 - crop.x0_mm * S) * f, (y1 - crop.y0_mm * S) * f)
+
+
+def _iou(a, b) -> float:
+    """Intersection over union of two (x0, y0, x1, y1) boxes."""
+    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
+    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
+    inter = ix * iy
+    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
+    return inter / union if union > 0 else 0.0
+
+
+def split_matches(cand_boxes, true_boxes, tol: float) -> bool:
+    """A candidate split (boxes in crop px) is the true one: as many digits, and each true box matched
+    by IoU >= 0.5 or every split between neighbours within ``tol`` px of the true gap."""
+    if len(cand_boxes) != len(true_boxes):
+        return False
+    if all(_iou(c, t) >= 0.5 for c, t in zip(cand_boxes, true_boxes)):
+        return True
+    for (c0, c1), (t0, t1) in zip(zip(cand_boxes, cand_boxes[1:]), zip(true_boxes, true_boxes[1:])):
+        split = (c0[2] + c1[0]) / 2
+        lo, hi = min(t0[2], t1[0]), max(t0[2], t1[0])
+        if not lo - tol <= split <= hi + tol:
+            return False
+    return True

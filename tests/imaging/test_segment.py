@@ -19,6 +19,7 @@ from digit_pages import (
     identity_registration,
     mnist_test,
     page_box_to_crop,
+    split_matches,
     stamp,
 )
 
@@ -27,28 +28,6 @@ from formread.imaging.lines import remove_box_lines
 from formread.imaging.segment import MAX_CANDIDATES, segment_boxed, segment_open
 
 OPEN = FakeField("amount", "open", 10.0, 8.0, 80.0, 11.0, max_digits=8)
-
-
-def _iou(a, b) -> float:
-    ix = max(0.0, min(a[2], b[2]) - max(a[0], b[0]))
-    iy = max(0.0, min(a[3], b[3]) - max(a[1], b[1]))
-    inter = ix * iy
-    union = (a[2] - a[0]) * (a[3] - a[1]) + (b[2] - b[0]) * (b[3] - b[1]) - inter
-    return inter / union if union > 0 else 0.0
-
-
-def _matches(cand_boxes, true_boxes, tol: float) -> bool:
-    """Same number of digits and each true box matched by IoU >= 0.5, or the x-splits agree."""
-    if len(cand_boxes) != len(true_boxes):
-        return False
-    if all(_iou(c, t) >= 0.5 for c, t in zip(cand_boxes, true_boxes)):
-        return True
-    for (c0, c1), (t0, t1) in zip(zip(cand_boxes, cand_boxes[1:]), zip(true_boxes, true_boxes[1:])):
-        split = (c0[2] + c1[0]) / 2
-        lo, hi = min(t0[2], t1[0]), max(t0[2], t1[0])
-        if not lo - tol <= split <= hi + tol:
-            return False
-    return True
 
 
 def draw_open_case(rng: np.random.Generator, images: np.ndarray):
@@ -96,7 +75,7 @@ def open_success(n_cases: int, seed: int):
         crop = cut_field(identity_registration(page), OPEN)
         fd = segment_open(crop, OPEN)
         true = [page_box_to_crop(b, crop) for b in boxes]
-        ok = any(_matches(c.boxes, true, 0.05 * crop.px_per_mm * 7) for c in fd.candidates)
+        ok = any(split_matches(c.boxes, true, 0.05 * crop.px_per_mm * 7) for c in fd.candidates)
         hits += ok
         cases.append((ok, kinds, len(true), [len(c.boxes) for c in fd.candidates]))
     return hits / n_cases, cases
@@ -188,7 +167,7 @@ def one_touching_ranks(n_cases: int, seed: int) -> np.ndarray:
         crop = cut_field(identity_registration(page), PLOT)
         fd = segment_open(crop, PLOT)
         true = [page_box_to_crop(b, crop) for b in boxes]
-        hit = [i for i, c in enumerate(fd.candidates) if _matches(c.boxes, true, 0.05 * crop.px_per_mm * 7)]
+        hit = [i for i, c in enumerate(fd.candidates) if split_matches(c.boxes, true, 0.05 * crop.px_per_mm * 7)]
         ranks.append(hit[0] if hit else 99)
     return np.array(ranks)
 
@@ -328,3 +307,4 @@ def test_two_digits_touching_across_a_border_are_parted():
     assert fd.blank.tolist() == [True, False, False, True, True, True]
     b1, b2 = fd.candidates[0].boxes[1:3]
     assert b1[2] <= b2[2] and b1[0] < b2[0]             # the 0's ink left of the 7's
+
