@@ -68,7 +68,7 @@ def _failed(field, reg, reason: str, crop=None) -> FieldDigits:
 
 
 def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float = 10.0,
-                 margin_mm: float = 1.5, registration=None) -> PageDigits:
+                 margin_mm: float | None = None, registration=None) -> PageDigits:
     """Register a page to its layout and cut every field into digit images.
 
     Parameters
@@ -79,7 +79,7 @@ def process_page(page, layout, *, timings: dict | None = None, px_per_mm: float 
     timings : dict or None
         When given, seconds spent per step (``binarize``, ``register``, ``cut``,
         ``segment``) are added to it, for the page-speed benchmark.
-    px_per_mm, margin_mm : float
+    px_per_mm, margin_mm : float (margin None: by the field's kind)
         Crop resolution and the paper kept around each field (see ``cut_field``).
     registration : Registration or None
         The page already registered to ``layout`` (by form identification); None registers it here.

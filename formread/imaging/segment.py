@@ -57,6 +57,9 @@ MAX_CANDIDATES = 8
 """Most segmentations returned for an open field."""
 SOLID_SHARE = 0.6
 """A field whose rectangle is more than this share ink cannot be segmented."""
+OPEN_INSIDE_SHARE = 0.3
+"""Open fields keep a piece of ink with at least this share inside the field rectangle: a digit
+crossing the printed line by a third of its height is still the field's (boxed cells: a half)."""
 SPECK_MM2 = 0.12
 """Ink pieces smaller than this (mm^2) and under 0.6 mm long are dropped as specks."""
 
@@ -141,8 +144,10 @@ def _ink_weights(crop: FieldCrop) -> np.ndarray:
     return (255.0 - crop.gray.astype(np.float32)) / np.float32(255.0)
 
 
-def _drop_specks(ink: np.ndarray, ppm: float, rect) -> tuple[np.ndarray, np.ndarray, int]:
-    """Label 8-connected ink, dropping specks and pieces lying mostly outside the field rectangle.
+def _drop_specks(ink: np.ndarray, ppm: float, rect, inside_share: float = 0.5
+                 ) -> tuple[np.ndarray, np.ndarray, int]:
+    """Label 8-connected ink, dropping specks and pieces with less than ``inside_share`` of their
+    ink inside the field rectangle.
 
     Returns
     -------
@@ -163,7 +168,7 @@ def _drop_specks(ink: np.ndarray, ppm: float, rect) -> tuple[np.ndarray, np.ndar
         ext = max(sl[0].stop - sl[0].start, sl[1].stop - sl[1].start)
         if area[i] < speck and ext < 0.6 * ppm:
             continue
-        if inside[i] < 0.5 * area[i]:
+        if inside[i] < inside_share * area[i]:
             continue
         keep[i] = True
     kept = keep[lab]
@@ -433,7 +438,7 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     x0, y0, x1, y1 = crop.rect
     res = remove_box_lines(crop.ink, rows=[y0, y1], cols=[x0, x1], px_per_mm=ppm,
                            h_min_run_mm=max(2.5, 0.4 * (x1 - x0) / ppm), max_lines=1)
-    lab, ink, n = _drop_specks(res.clean, ppm, crop.rect)
+    lab, ink, n = _drop_specks(res.clean, ppm, crop.rect, OPEN_INSIDE_SHARE)
     image = _outlined(crop, [x0, x1])
     corners = _crop_corners_px(crop)
     empty = Candidate(np.zeros((0, 1, SIZE, SIZE), np.float32), [], 0.0)

@@ -90,7 +90,8 @@ def test_sauvola_follows_a_shadow_that_a_single_level_cannot():
 def test_field_off_the_image_is_cut_as_paper_when_mostly_inside():
     m = _matrix(300, shift=(-370.0, 0.0))   # the field's left 1.35 mm (of 50) lie left of the image
     page = np.zeros((1000, 1000), np.uint8)  # an all-black image: anything white came from outside it
-    crop = cut_field(FakeRegistration(m, page), FakeField("edge", "open", 30.0, 10.0, 50.0, 10.0))
+    crop = cut_field(FakeRegistration(m, page), FakeField("edge", "open", 30.0, 10.0, 50.0, 10.0),
+                     margin_mm=1.5)
     assert crop.gray[:, :20].min() == 255 and crop.gray[:, 40:].max() == 0
 
 
