@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from ..errors import check_param
-from ..nn.augment import PEN_AND_SCANNER
+from ..nn.augment import LATER_EFFECTS
 from ..nn.metrics import classification_report
 from ..nn.model import ARCHITECTURES, build_model
 from ..nn.train import TrainConfig, TrainResult, evaluate, train
@@ -66,7 +66,7 @@ class Recipe:
                 "--patience", str(cfg.patience), "--affine" if a.affine else "--no-affine",
                 "--elastic" if a.elastic else "--no-elastic", "--elastic-alpha", f"{a.elastic_alpha:g}",
                 "--elastic-sigma", f"{a.elastic_sigma:g}"]
-        args += [f"--{name}" if getattr(a, name) else f"--no-{name}" for name in PEN_AND_SCANNER]
+        args += [f"--{name}" if getattr(a, name) else f"--no-{name}" for name in LATER_EFFECTS]
         args += ["--seed", str(self.seed)]
         if cfg.workers != 1:
             args += ["--workers", str(cfg.workers)]

@@ -12,12 +12,20 @@ Gaussian of standard deviation ``sigma`` and scaled by ``alpha``.  The paper's
 values are about sigma = 4 and alpha = 34 on 29x29 digits (quoted from memory
 of the paper); the defaults here (alpha 24) are the shipped model's recipe, milder.
 
-Pen and scanner effects (off by default; the shipped recipe does not use them): stroke width
+Pen and scanner effects (on in the shipped recipe since 2026-12-03): stroke width
 (grey dilation or erosion of the normalised 28x28 digit by one 3x3 step, blended by a random
 strength, so a hairline and a marker version of a digit are both seen), scanner degradation
 (Gaussian blur, resolution loss by down- and up-sampling, or bilevel thresholding at a random
 level) and the box remnants cutting leaves (a short line along one edge).  They apply to the same
 share ``prob`` of a batch as the geometric distortions, after them.
+
+Non-digits (outlier exposure, Hendrycks, Mazeika and Dietterich 2019, "Deep anomaly detection with
+outlier exposure"): :func:`touching_pairs` replaces a share of each batch with two of its digits
+drawn touching or overlapping and normalised as one piece, labelled :data:`NOT_A_DIGIT`, whose
+training target is the uniform distribution (``formread.nn.losses``).  An open field's reader
+weighs each way of splitting the ink by how surely every piece reads as one digit; a network that
+never saw two touching digits read a merged "1" and "6" as a sure "6", and the split that dropped
+the "1" won.  Off by default: measured, it did not pay (models/MODEL_CARD.md).
 """
 
 from __future__ import annotations
@@ -27,13 +35,18 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import ndimage
 
+from ..digits import normalize_digit
 from ..errors import check_param
 
 __all__ = ["AugmentConfig", "random_affine", "elastic", "stroke_width", "degrade", "box_remnants", "stroke_breaks",
-           "augment_batch", "PEN_AND_SCANNER"]
+           "augment_batch", "touching_pairs", "PEN_AND_SCANNER", "LATER_EFFECTS", "NOT_A_DIGIT"]
 
 PEN_AND_SCANNER = ("stroke", "degrade", "remnants", "breaks")
 """The pen and scanner effects (on in the shipped recipe since 2026-12-03; off in records before)."""
+LATER_EFFECTS = PEN_AND_SCANNER + ("pairs",)
+"""Every setting added after the first recipe: off when a model record does not name it."""
+NOT_A_DIGIT = -1
+"""Label of a training image that is no single digit (target: uniform over the classes)."""
 
 
 @dataclass
@@ -74,6 +87,11 @@ class AugmentConfig:
         Break strokes with one to three small gaps, as bilevel scans and dry pens leave.
     breaks_prob : float
         Share of the distorted images that get them.
+    pairs : bool
+        Replace a share of each batch by two of its digits touching (:func:`touching_pairs`),
+        labelled :data:`NOT_A_DIGIT` (off in the shipped recipe).
+    pairs_share : float
+        That share, in [0, 0.5].
     """
 
     affine: bool = True
@@ -93,6 +111,8 @@ class AugmentConfig:
     remnants_prob: float = 0.2
     breaks: bool = True
     breaks_prob: float = 0.3
+    pairs: bool = False
+    pairs_share: float = 0.1
 
     def as_dict(self) -> dict:
         return asdict(self)
@@ -100,8 +120,8 @@ class AugmentConfig:
     @classmethod
     def from_dict(cls, d: dict) -> AugmentConfig:
         """The config a model header recorded; unknown keys are dropped, and the pen and scanner effects
-        a record does not name are off (records made before they existed)."""
-        off = {name: False for name in PEN_AND_SCANNER}
+        a record does not name are off, and so are non-digit pairs (records made before they existed)."""
+        off = {name: False for name in LATER_EFFECTS}
         return cls(**{**off, **{k: v for k, v in d.items() if k in cls.__dataclass_fields__}})
 
     @property
@@ -351,6 +371,72 @@ def stroke_breaks(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
             radius = float(rng.uniform(1.0, 1.8))
             out[i, 0][(rr - r0) ** 2 + (cc - c0) ** 2 <= radius ** 2] = 0.0
     return out
+
+
+def _ink_box(img: np.ndarray) -> np.ndarray:
+    """The image cropped to its ink (pixels >= 0.15 of its peak); (0, 0) when it holds none."""
+    peak = float(img.max())
+    if peak <= 0:
+        return img[:0, :0]
+    rows = np.flatnonzero((img >= 0.15 * peak).any(axis=1))
+    cols = np.flatnonzero((img >= 0.15 * peak).any(axis=0))
+    return img[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+
+
+def touching_pairs(x: np.ndarray, y: np.ndarray, rng: np.random.Generator, share: float
+                   ) -> tuple[np.ndarray, np.ndarray]:
+    """Replace a share of a batch by pairs of its digits touching side by side, labelled NOT_A_DIGIT.
+
+    Each pair is two images of the batch, each cropped to its ink and brought to the same height
+    (within 10%), the right one overlapping the left by 0-35% of the narrower width (0 = touching)
+    and shifted up or down by up to 15% of the height, joined by the maximum and normalised as
+    one piece of ink (``formread.digits.normalize_digit``), as an open field's reader sees two
+    touching digits it did not part.
+
+    Parameters
+    ----------
+    x : ndarray of shape (N, 1, 28, 28), float32 in [0, 1]
+    y : ndarray of shape (N,), int labels
+    rng : numpy.random.Generator
+    share : float in [0, 0.5]
+        Expected share of the batch replaced (each image independently).
+
+    Returns
+    -------
+    (x, y) new arrays of the same shapes and dtypes; replaced rows have label ``NOT_A_DIGIT``.
+    """
+    _check(x)
+    check_param(0.0 <= share <= 0.5, "share", "in [0, 0.5]", share)
+    n = len(x)
+    x, y = x.copy(), np.array(y, copy=True)
+    if n < 2 or share == 0:
+        return x, y
+    sel = np.flatnonzero(rng.random(n) < share)
+    partner = rng.integers(0, n, len(sel))
+    overlap = rng.uniform(0.0, 0.35, len(sel))
+    lift = rng.uniform(-0.15, 0.15, len(sel))
+    size = rng.uniform(0.9, 1.1, len(sel))
+    src = x[:, 0].copy()
+    for i, j, ov, dy, sz in zip(sel, partner, overlap, lift, size):
+        a, b = _ink_box(src[i]), _ink_box(src[int(j)])
+        if not a.size or not b.size:
+            continue
+        hb = max(1, int(round(a.shape[0] * sz)))
+        wb = max(1, int(round(b.shape[1] * hb / b.shape[0])))
+        b = np.asarray(ndimage.zoom(b, (hb / b.shape[0], wb / b.shape[1]), order=1), np.float32)
+        hb, wb = b.shape
+        over = int(round(ov * min(a.shape[1], wb)))
+        top_b = int(round(dy * a.shape[0]))
+        r0 = min(0, top_b)
+        height = max(a.shape[0], top_b + hb) - r0
+        width = a.shape[1] + wb - over
+        canvas = np.zeros((height, width), np.float32)
+        canvas[-r0:-r0 + a.shape[0], :a.shape[1]] = a
+        region = canvas[top_b - r0:top_b - r0 + hb, a.shape[1] - over:]
+        np.maximum(region, b[:, :region.shape[1]], out=region)
+        x[i, 0] = normalize_digit(canvas)
+        y[i] = NOT_A_DIGIT
+    return x, y
 
 
 def augment_batch(x: np.ndarray, rng: np.random.Generator, cfg: AugmentConfig) -> np.ndarray:

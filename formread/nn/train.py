@@ -36,7 +36,7 @@ import numpy as np
 
 from ..errors import DataError, ParameterError, check_param
 from ..fileio import atomic_open
-from .augment import AugmentConfig, augment_batch
+from .augment import AugmentConfig, augment_batch, touching_pairs
 from .calibrate import fit_temperature, scaled_nll, softmax
 from .metrics import classification_report, expected_calibration_error
 from .model import Sequential
@@ -128,6 +128,8 @@ class TrainConfig:
         for name in ("prob", "stroke_max", "degrade_prob", "remnants_prob", "breaks_prob"):
             v = getattr(a, name)
             check_param(num(v) and 0 <= v <= 1, f"augment.{name}", "a number in [0, 1]", v)
+        check_param(num(a.pairs_share) and 0 <= a.pairs_share <= 0.5, "augment.pairs_share", "a number in [0, 0.5]",
+                    a.pairs_share)
 
     def as_dict(self) -> dict:
         return asdict(self)
@@ -420,20 +422,23 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
             e0 = time.monotonic()
             opt.lr = schedule(epoch)
             order = rng.permutation(len(tr_idx))
-            loss_sum, correct, seen = 0.0, 0, 0
+            loss_sum, correct, seen, digits_seen = 0.0, 0, 0, 0
             for b in range(n_batches):
                 sel = order[b * cfg.batch_size:(b + 1) * cfg.batch_size]
                 xb, yb = x_tr[sel], y_tr[sel]
                 if cfg.augment.enabled:
                     xb = augment_batch(xb, rng, cfg.augment)
+                if cfg.augment.pairs:
+                    xb, yb = touching_pairs(xb, yb, rng, cfg.augment.pairs_share)
                 loss, ok = grad_step(xb, yb, cfg.label_smoothing)
                 opt.step()
                 loss_sum += loss * len(sel)
                 correct += ok
                 seen += len(sel)
+                digits_seen += int((yb >= 0).sum())     # training accuracy is over the digits only
                 if progress is not None and b + 1 < n_batches:
                     progress(b + 1, n_batches, epoch=epoch + 1, epochs=cfg.epochs,
-                             loss=loss_sum / seen, acc=correct / seen)
+                             loss=loss_sum / seen, acc=correct / max(digits_seen, 1))
             val_loss, val_acc, val_logits = _evaluate(model, x_val, y_val)
             # select on the validation loss at this epoch's best temperature: calibration is
             # fixed afterwards by the temperature, so it should not decide which weights to keep
@@ -441,7 +446,7 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
             val_loss_t = (scaled_nll(val_logits, y_val, fit_temperature(val_logits, y_val))
                           if len(val_idx) else float("nan"))
             epoch += 1
-            row = {"epoch": epoch, "lr": opt.lr, "loss": loss_sum / seen, "acc": correct / seen,
+            row = {"epoch": epoch, "lr": opt.lr, "loss": loss_sum / seen, "acc": correct / max(digits_seen, 1),
                    "val_loss": val_loss, "val_loss_t": val_loss_t, "val_acc": val_acc,
                    "seconds": time.monotonic() - e0}
             history.append(row)

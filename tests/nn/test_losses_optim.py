@@ -41,9 +41,24 @@ def test_cross_entropy_hand_values():
     assert loss == pytest.approx(2e4, rel=1e-6) and np.isfinite(d).all()
 
 
+def test_cross_entropy_of_no_class_is_against_the_uniform_target():
+    # label -1 (no digit, outlier exposure): target 1/C on every class, smoothing or not.  Logits
+    # [ln 3, 0]: p = [3/4, 1/4], loss = -(ln 3/4 + ln 1/4) / 2, gradient p - 1/2 (worked by hand)
+    z = np.array([[math.log(3), 0.0]])
+    for s in (0.0, 0.2):
+        loss, d = softmax_cross_entropy(z, np.array([-1]), smoothing=s)
+        assert loss == pytest.approx(-(math.log(0.75) + math.log(0.25)) / 2)
+        np.testing.assert_allclose(d, [[0.25, -0.25]])
+    # mixed with digit rows, each row counts as it would alone (mean over the batch)
+    both = softmax_cross_entropy(np.vstack([z, z]), np.array([0, -1]))[0]
+    assert both == pytest.approx((-math.log(0.75) - (math.log(0.75) + math.log(0.25)) / 2) / 2)
+
+
 def test_cross_entropy_bad_labels():
     with pytest.raises(ParameterError):
         softmax_cross_entropy(np.zeros((2, 3)), np.array([0, 3]))
+    with pytest.raises(ParameterError):
+        softmax_cross_entropy(np.zeros((2, 3)), np.array([0, -2]))
     with pytest.raises(ParameterError):
         softmax_cross_entropy(np.zeros((2, 3)), np.array([0.0, 1.0]))
 
