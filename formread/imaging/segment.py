@@ -504,17 +504,19 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     group_cache: dict = {}
 
     def group(j: int, i: int):
-        """Mask, box and cost of the digit made of the pieces between boundaries j and i."""
+        """Mask, box and cost of the digit made of the pieces between boundaries j and i; the mask
+        covers the crop's columns ``a:`` only (those the two boundaries span), ``a`` returned too."""
         key = (j, i)
         if key in group_cache:
             return group_cache[key]
         pj, pi = edges[j][0], edges[i][0]
-        m = ink & (colgrid >= pj[:, None]) & (colgrid < pi[:, None])
+        a, b = int(pj.min()), int(pi.max())
+        m = ink[:, a:b] & (colgrid[:, a:b] >= pj[:, None]) & (colgrid[:, a:b] < pi[:, None])
         rows = np.flatnonzero(m.any(axis=1))
         if rows.size == 0:
-            group_cache[key] = (None, None, np.inf)
+            group_cache[key] = (None, a, None, np.inf)
             return group_cache[key]
-        cols = np.flatnonzero(m.any(axis=0))
+        cols = np.flatnonzero(m.any(axis=0)) + a
         gw = cols[-1] - cols[0] + 1
         gh = rows[-1] - rows[0] + 1
         cost = _W["digit"]                                      # each digit: prefer fewer, all else equal
@@ -528,7 +530,7 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
         cost += _W["cut"] * (edges[j][1] + edges[i][1]) / 2.0   # half of each cut's price
         if gw > 2.2 * dh and i - j > 1:
             cost = np.inf
-        group_cache[key] = (m, (int(cols[0]), int(rows[0]), int(cols[-1]) + 1, int(rows[-1]) + 1), cost)
+        group_cache[key] = (m, a, (int(cols[0]), int(rows[0]), int(cols[-1]) + 1, int(rows[-1]) + 1), cost)
         return group_cache[key]
 
     # k-best segmentations over the boundary lattice
@@ -540,7 +542,7 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
         for j in range(i - 1, -1, -1):
             if j < i - 1 and edges[j + 1][2] > 0.5 * dh:   # a wide empty gap is never inside one digit
                 break
-            _, box, c = group(j, i)
+            _, _, box, c = group(j, i)
             if box is not None and box[2] - box[0] > 2.4 * dh:   # wider than any one digit
                 break
             if not best[j] or not np.isfinite(c):
@@ -561,14 +563,18 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
     images: dict = {}
     for cost, cut in finals:
         pairs = [(cut[t], cut[t + 1]) for t in range(len(cut) - 1)]
-        boxes = tuple(group(*p)[1] for p in pairs)
+        boxes = tuple(group(*p)[2] for p in pairs)
         if boxes in seen:
             continue
         seen.add(boxes)
         digits = np.zeros((len(boxes), 1, SIZE, SIZE), np.float32)
         for t, p in enumerate(pairs):
             if p not in images:  # the same digit recurs in many candidates: normalise it once
-                images[p] = _digit(weights, group(*p)[0])[0]
+                m, a = group(*p)[:2]
+                lo, hi = max(0, a - 1), min(w, a + m.shape[1] + 1)   # _digit grows the mask by a pixel
+                sub = np.zeros((h, hi - lo), bool)
+                sub[:, a - lo:a - lo + m.shape[1]] = m
+                images[p] = _digit(weights[:, lo:hi], sub)[0]
             digits[t, 0] = images[p]
         candidates.append(Candidate(digits, list(boxes), float(cost)))
         if len(candidates) >= max_candidates:
