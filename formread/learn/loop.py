@@ -433,8 +433,9 @@ def learn(runs, *, bundle=None, out=None, config: LearnConfig | None = None, pro
         raise DataError("no run to learn from")
     if not isinstance(bundle, Bundle):
         bundle = load_bundle(bundle if bundle is not None else in_use_path())
-    if len(bundle.networks) != 1:
-        raise DataError(f"{bundle.path}: holds {len(bundle.networks)} networks; learning fine-tunes one")
+    if len(bundle.networks) != 1 and not cfg.refit_only:
+        raise DataError(f"{bundle.path}: holds {len(bundle.networks)} networks; learning fine-tunes one "
+                        "(--refit-only refits the decisions of several)")
     rep = LearnReport(bundle_before=str(bundle.path))
     fields, layouts = _gather(runs, truth)
     rep.fields_known = len(fields)
@@ -572,8 +573,8 @@ def _keep_network(bundle: Bundle, fitting: list[_Field], held_pairs: list[tuple]
 
 
 def _refit_only(bundle: Bundle, fields, layouts, targets, rep: LearnReport, out, runs, cfg, t0) -> LearnReport:
-    """The decoder's digit reliability map and the fitted decisions of the bundle's own network, from
-    every page (no training)."""
+    """The decoder's digit reliability map and the fitted decisions of the bundle's own network (or
+    networks, averaged), from every page (no training)."""
     pairs = _read_again(fields, layouts, bundle, bundle.decoder)
     p, ok = _digit_evidence(pairs, layouts, bundle)
     decoder = refit_digit_map(bundle.decoder, p, ok)

@@ -99,6 +99,26 @@ def test_refit_only_fits_the_digit_map_and_decisions_and_keeps_the_network(spot_
     assert not rep.promoted and "outside the model store" in rep.reason
 
 
+def test_refit_only_fits_the_decisions_of_a_bundle_of_several_networks(spot_runs, tmp_path, bundle):
+    # an ensemble (the shipped network twice, once with its weights scaled: another network) gets its
+    # decisions fitted for the pair, both networks kept; learning proper still fine-tunes one only
+    from formread.nn.model import build_model
+    from formread.read.bundle import save_bundle
+
+    other = build_model(bundle.networks[0].spec, np.random.default_rng(0))
+    other.load_state_dict({k: v * np.float32(0.9) for k, v in bundle.networks[0].state_dict().items()})
+    header = {k: v for k, v in bundle.header.items() if k not in ("decoder", "decisions")}
+    pair = save_bundle(tmp_path / "pair.npz", [bundle.networks[0], other], header, decoder=bundle.decoder,
+                       decoder_fitted_for=bundle.decoder_fitted_for)
+    assert pair.decoder_status != "fitted"
+    learn([spot_runs[1]], bundle=pair, out=tmp_path / "pair-refit.npz", config=LearnConfig(refit_only=True))
+    new = load_bundle(tmp_path / "pair-refit.npz")
+    assert len(new.networks) == 2 and new.weights_sha256 == pair.weights_sha256
+    assert new.decoder_status == "fitted" and new.decisions.status == "fitted"
+    with pytest.raises(DataError, match="holds 2 networks; learning fine-tunes one"):
+        learn([spot_runs[1]], bundle=pair, out=tmp_path / "pair-tuned.npz")
+
+
 def test_learn_refits_decisions_and_the_next_read_uses_them(spot_runs, tmp_path):
     res = CliRunner().invoke(app, ["learn", str(spot_runs[0]), "--epochs", "2", "--target", "0.02", "--json",
                                    "--quiet"])
