@@ -74,7 +74,8 @@ def _runs_open(band: np.ndarray, length: int, axis: int) -> np.ndarray:
     np.cumsum(a, axis=1, out=c[:, 1:])
     full = (c[:, length:] - c[:, :-length]) == length          # (rows, n - length + 1) window starts
     f = np.zeros((a.shape[0], n + 1), np.int32)
-    np.cumsum(np.pad(full, ((0, 0), (0, length - 1))), axis=1, out=f[:, 1:])
+    np.cumsum(full, axis=1, out=f[:, 1:n - length + 2])             # the window starts, then flat
+    f[:, n - length + 2:] = f[:, n - length + 1:n - length + 2]
     # pixel j is covered when a full window starts in [j - length + 1, j]
     j = np.arange(n)
     lo = np.maximum(j - length + 1, 0)
@@ -240,7 +241,10 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
     if not found:
         return LineResult(ink.copy(), np.zeros_like(ink), [])
     masks = [_line_mask(ink, ln) for ln in found]
-    all_lines = np.logical_or.reduce(masks)
+    count = np.zeros(ink.shape, np.uint8)            # how many lines' masks hold each pixel
+    for m in masks:
+        count += m
+    all_lines = count > 0
     keep_ink = ink & ~all_lines
     removed = all_lines.copy()
     reach = max(2, int(round(0.3 * px_per_mm)))
@@ -253,6 +257,6 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
         else:
             restore = m & cross[:, None]
         # a crossing of two printed lines (a box corner) is no stroke: only restore off the other lines
-        others = np.logical_or.reduce([mm for mm in masks if mm is not m]) if len(masks) > 1 else np.zeros_like(m)
+        others = count > m
         removed &= ~(restore & ~others)
     return LineResult(ink & ~removed, removed, found)
