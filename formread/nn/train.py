@@ -360,6 +360,8 @@ def train(model: Sequential, x: np.ndarray, y: np.ndarray, config: TrainConfig |
         raise DataError(f"training labels must be {x.shape[0]} integers; got shape {y.shape}, dtype {y.dtype}")
     if len(y) < 2:
         raise DataError(f"need at least 2 training images; got {len(y)}")
+    if cfg.augment.pairs and x.shape[2:] != (28, 28):
+        raise DataError(f"touching pairs (augment.pairs) are normalised as 28x28 digits; the images are {x.shape[2:]}")
     x = x.astype(np.float32, copy=False)
     y = y.astype(np.int64, copy=False)
     n_classes = model.spec_classes()

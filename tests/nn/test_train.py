@@ -183,3 +183,20 @@ def test_two_worker_processes_learn_too():
     x, y = _toy()
     res = train(build_model(TINY, np.random.default_rng(0)), x, y, _cfg(workers=2))
     assert res.val_accuracy >= 0.85 and len(res.history) == 8
+
+
+def test_touching_pairs_train_as_no_digit_and_accuracy_counts_digits_only():
+    # half of every batch replaced by pairs (label -1, uniform target): training still learns the
+    # digits, and its running accuracy is over the digits (it would stay near 0.5 over every image)
+    rng = np.random.default_rng(0)
+    y = np.arange(300) % 10
+    x = 0.1 * rng.random((300, 1, 28, 28), dtype=np.float32)
+    for i, c in enumerate(y):
+        x[i, 0, 4:24, 2 * c + 4:2 * c + 7] = 1.0          # a bar at a class-dependent column
+    arch = [dict(TINY[0]), *TINY[1:4], {**TINY[4], "in": 4 * 14 * 14}, *TINY[5:]]
+    cfg = _cfg(epochs=10, augment=AugmentConfig(affine=False, elastic=False, stroke=False, degrade=False,
+                                                 remnants=False, breaks=False, pairs=True, pairs_share=0.5))
+    res = train(build_model(arch, np.random.default_rng(0)), x, y.astype(np.int64), cfg)
+    assert res.val_accuracy > 0.9 and res.history[-1]["acc"] > 0.8
+    with pytest.raises(DataError, match="28x28"):
+        train(build_model(TINY, np.random.default_rng(0)), *_toy(), cfg)
