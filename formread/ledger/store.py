@@ -112,7 +112,8 @@ class FieldRow:
 
 @dataclass
 class PageRow:
-    """One page's result: its row in ``pages``, its fields and its page image (PNG bytes)."""
+    """One page's result: its row in ``pages``, its fields and its page image (JPEG bytes; ledgers of
+    an earlier formread hold PNG page images, which stay readable)."""
 
     content_hash: str
     source: str
@@ -122,7 +123,7 @@ class PageRow:
     residual_mm: float | None = None
     rotated_180: bool | None = None
     skew_deg: float | None = None
-    image_png: bytes | None = None
+    image_jpeg: bytes | None = None
     fields: list[FieldRow] = field(default_factory=list)
     form: str | None = None
     turn_deg: int | None = None
@@ -237,9 +238,9 @@ class Ledger:
             if page_id is None:
                 page_id = int(c.execute("SELECT coalesce(max(id), 0) + 1 FROM pages").fetchone()[0])
             image_path = None
-            if page.image_png is not None:
-                image_path = f"pages/{page_id}.png"
-                atomic_write(self.outdir / image_path, page.image_png)
+            if page.image_jpeg is not None:
+                image_path = f"pages/{page_id}.jpg"
+                atomic_write(self.outdir / image_path, page.image_jpeg)
             c.execute(
                 "INSERT INTO pages (id, run_id, content_hash, source, page_number, status, error, residual_mm,"
                 " rotated_180, skew_deg, image_path, created, form, turn_deg)"

@@ -60,6 +60,8 @@ SECURITY_HEADERS = {
 
 _STATIC = {"review.js": "text/javascript; charset=utf-8", "review.css": "text/css; charset=utf-8",
            "icon.svg": "image/svg+xml"}
+_IMAGE_TYPES = {".png": "image/png", ".jpg": "image/jpeg"}
+"""Stored images the page serves: field crops (PNG) and page views (JPEG; PNG in older ledgers)."""
 _ROUTE_ID = re.compile(r"/(api/field|api/page|img/field|img/page)/([0-9]{1,12})\Z")
 
 
@@ -269,9 +271,10 @@ class _Handler(BaseHTTPRequestHandler):
         if kind == "api/page":
             return self._with_ledger(lambda led: self._json(HTTPStatus.OK, queries.page_detail(led, item)))
         file = self._with_ledger(lambda led: queries.image_file(led, kind.split("/")[1], item))
-        if file.suffix.lower() != ".png":
+        kind_of = _IMAGE_TYPES.get(file.suffix.lower())
+        if kind_of is None:
             raise _Refused(HTTPStatus.NOT_FOUND, "no image for this id")
-        return self._send(HTTPStatus.OK, file.read_bytes(), "image/png")
+        return self._send(HTTPStatus.OK, file.read_bytes(), kind_of)
 
     def _with_ledger(self, fn):
         with open_ledger(self.server.outdir, create=False) as led:

@@ -16,7 +16,7 @@ def _run(ledger):
 
 
 def _page(h="h1", source="s.png", n=1, fields=2):
-    return PageRow(content_hash=h, source=source, page_number=n, status="read", image_png=b"page",
+    return PageRow(content_hash=h, source=source, page_number=n, status="read", image_jpeg=b"page",
                    fields=[FieldRow(name=f"f{i}", kind="boxed", reading=str(i) * 3, confidence=0.99 - 0.5 * i,
                                     decision="accepted" if i == 0 else "review",
                                     reason=None if i == 0 else "low_confidence",
@@ -38,7 +38,7 @@ def test_wal_mode_schema_version_and_rows(tmp_path):
     # accepted fields are decided automatically ('auto'); review fields wait for a clerk (NULL)
     assert rows == [("f0", "000", "accepted", "000", "auto", "fields/1/f0.png", "digits/1/f0.npz"),
                     ("f1", "111", "review", None, None, "fields/1/f1.png", "digits/1/f1.npz")]
-    assert (tmp_path / "out" / "pages" / "1.png").read_bytes() == b"page"
+    assert (tmp_path / "out" / "pages" / "1.jpg").read_bytes() == b"page"
     assert (tmp_path / "out" / "fields" / "1" / "f1.png").read_bytes() == b"crop"
 
 

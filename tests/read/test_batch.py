@@ -1,6 +1,7 @@
 """The batch job on real pages: failures recorded, the rest read, reruns skip, outputs agree with the ledger."""
 
 import csv
+import json
 import shutil
 import sqlite3
 
@@ -104,6 +105,24 @@ def test_digit_images_follow_the_reading(tmp_path, model):
             ff = load_field_file(out / digits_path)     # every candidate split is kept, for learning
             assert ff.cand_digits is not None and len(ff.cand_spans) == len(ff.cand_costs) >= 1
             assert (ff.crop_gray is not None) == (kind == "open")
+
+
+def test_page_views_are_jpeg_and_field_crops_lossless_png(tmp_path, model):
+    # the page view is context (JPEG: a noisy scan took 20 ms and 360 kB as PNG); the crops a clerk
+    # reads stay PNG; the page view's box of each field lies on the stored image
+    scans = write_copies(tmp_path / "scans", 1)
+    out = tmp_path / "out"
+    read_batch(scans, demo_layout(), out, bundle=model, workers=1)
+    (page_path,), = _rows(out, "SELECT image_path FROM pages")
+    assert page_path.endswith(".jpg")
+    with Image.open(out / page_path) as im:
+        assert im.format == "JPEG" and im.mode == "L"
+        size = im.size
+    for image_path, box in _rows(out, "SELECT image_path, box_px FROM fields"):
+        with Image.open(out / image_path) as im:
+            assert im.format == "PNG"
+        x0, y0, x1, y1 = json.loads(box)
+        assert 0 <= x0 < x1 <= size[0] and 0 <= y0 < y1 <= size[1]
 
 
 def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, model, monkeypatch):

@@ -105,6 +105,15 @@ def test_unknown_ids_and_routes(server):
     assert call(srv, "GET", f"/img/field/{info['ids'][(2, 'plot_number')]}{t}", token=False)[0] == 404
     status, h, png = call(srv, "GET", f"/img/page/{info['pages'][0]}{t}", token=False)
     assert status == 200 and h["content-type"] == "image/png" and png[:4] == b"\x89PNG"
+    # page views are JPEG since 2026-12-04 (the fixture's PNG pages are an older ledger's): both served
+    import sqlite3
+
+    from PIL import Image
+    with sqlite3.connect(out / "ledger.sqlite") as conn:
+        conn.execute("UPDATE pages SET image_path = ? WHERE id = ?", ("pages/new.jpg", info["pages"][1]))
+    Image.new("L", (40, 50), 200).save(out / "pages" / "new.jpg", format="JPEG")
+    status, h, jpg = call(srv, "GET", f"/img/page/{info['pages'][1]}{t}", token=False)
+    assert status == 200 and h["content-type"] == "image/jpeg" and jpg[:3] == b"\xff\xd8\xff"
     status, h, png = call(srv, "GET", f"/img/field/{info['ids'][(0, 'plot_number')]}{t}", token=False)
     assert status == 200 and png[:4] == b"\x89PNG"
     assert call(srv, "GET", f"/img/page/{info['pages'][0]}", token=False)[0] == 403
