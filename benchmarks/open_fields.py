@@ -144,17 +144,20 @@ def main(argv=None) -> int:
     ap.add_argument("--seed", type=int, default=21)
     ap.add_argument("--model", default=None, help="model bundle (default: the shipped one)")
     ap.add_argument("--threshold", type=float, default=None,
-                    help="acceptance threshold (default: the bundle's fitted one for the demo form at 0.5%%)")
+                    help="acceptance threshold (default: the bundle's fitted decisions at the default target, "
+                         "as formread read resolves it for a layout naming none)")
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args(argv)
 
+    from formread.form.thresholds import DEFAULT_TARGET, DEFAULT_THRESHOLD
     from formread.read.bundle import load_bundle
     from formread.store import shipped_model
 
     bundle = load_bundle(a.model or shipped_model())
     thr = a.threshold
     if thr is None:
-        thr = (bundle.decisions.threshold_for(None, None, 0.005) if bundle.decisions else None) or 0.95
+        fitted = bundle.decisions.threshold_for(None, None, DEFAULT_TARGET) if bundle.decisions else None
+        thr = fitted if fitted is not None else DEFAULT_THRESHOLD
     t0 = time.perf_counter()
     rows = [measure(bundle, case, a.fields, a.seed, thr) for case in CASES]
     secs = time.perf_counter() - t0

@@ -506,12 +506,13 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
 
     def group(j: int, i: int):
         """Mask, box and cost of the digit made of the pieces between boundaries j and i; the mask
-        covers the crop's columns ``a:`` only (those the two boundaries span), ``a`` returned too."""
+        covers the crop's columns ``a:`` only (those the two boundaries span, and one more on each
+        side for ``_digit`` to grow it into), ``a`` returned too."""
         key = (j, i)
         if key in group_cache:
             return group_cache[key]
         pj, pi = edges[j][0], edges[i][0]
-        a, b = int(pj.min()), int(pi.max())
+        a, b = max(0, int(pj.min()) - 1), min(w, int(pi.max()) + 1)
         m = ink[:, a:b] & (colgrid[:, a:b] >= pj[:, None]) & (colgrid[:, a:b] < pi[:, None])
         rows = np.flatnonzero(m.any(axis=1))
         if rows.size == 0:
@@ -572,10 +573,7 @@ def segment_open(crop: FieldCrop, field, *, max_candidates: int = MAX_CANDIDATES
         for t, p in enumerate(pairs):
             if p not in images:  # the same digit recurs in many candidates: normalise it once
                 m, a = group(*p)[:2]
-                lo, hi = max(0, a - 1), min(w, a + m.shape[1] + 1)   # _digit grows the mask by a pixel
-                sub = np.zeros((h, hi - lo), bool)
-                sub[:, a - lo:a - lo + m.shape[1]] = m
-                images[p] = _digit(weights[:, lo:hi], sub)[0]
+                images[p] = _digit(weights[:, a:a + m.shape[1]], m)[0]
             digits[t, 0] = images[p]
         candidates.append(Candidate(digits, list(boxes), float(cost)))
         if len(candidates) >= max_candidates:
