@@ -11,10 +11,9 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import ndimage
 
 from ..errors import SegmentationError, check_param
-from .affine import apply_affine, rect_corners
+from .affine import apply_affine, rect_corners, warp_bilinear
 from .binarize import ink_map
 
 OFF_PAGE_SHARE = 0.25
@@ -162,9 +161,7 @@ def cut_field(registration, field, *, px_per_mm: float = 10.0, margin_mm: float 
         gray = np.full((out_h, out_w), 255, np.uint8)
     else:
         window = page[r0:r1, c0:c1].astype(np.float32)
-        gray = ndimage.affine_transform(window, lin, offset=(off_row - r0, off_col - c0),
-                                        output_shape=(out_h, out_w), order=1, mode="constant", cval=255.0,
-                                        prefilter=False)
+        gray = warp_bilinear(window, lin, (off_row - r0, off_col - c0), (out_h, out_w), cval=255.0)
         gray = np.clip(np.rint(gray), 0, 255).astype(np.uint8)
     ink = ink_map(gray, level=level, method=method, px_per_mm=px_per_mm)
     m = margin_mm * px_per_mm

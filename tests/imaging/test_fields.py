@@ -9,6 +9,7 @@ import pytest
 from digit_pages import FakeField, FakeRegistration
 from scipy import ndimage
 
+from formread.imaging.affine import warp_bilinear
 from formread.imaging.binarize import ink_map, page_ink_level, threshold_otsu
 from formread.imaging.fields import crop_to_page, cut_field
 from formread.imaging.lines import _runs_open
@@ -122,6 +123,25 @@ def test_crop_samples_the_page_bilinearly():
         want = ((1 - fy) * ((1 - fx) * p[i, j] + fx * p[i, j + 1])
                 + fy * ((1 - fx) * p[i + 1, j] + fx * p[i + 1, j + 1]))
         assert abs(int(crop.gray[r, c]) - want) <= 1.0
+
+
+@pytest.mark.parametrize("seed", range(6))
+def test_warp_equals_scipy_affine_transform_inside_and_at_the_border(seed):
+    # reference: scipy.ndimage.affine_transform, order 1, mode "constant" (scipy's own definition of
+    # where the image stops); offsets of up to 8 px put part of the output off the image
+    rng = np.random.default_rng(seed)
+    h, w = int(rng.integers(30, 120)), int(rng.integers(30, 160))
+    image = rng.integers(0, 256, (h, w)).astype(np.float32)
+    a, k = rng.normal(0.0, 0.04), rng.uniform(0.7, 1.4)
+    lin = k * np.array([[math.cos(a), -math.sin(a)], [math.sin(a), math.cos(a)]])
+    offset = (float(rng.uniform(-8, 8)), float(rng.uniform(-8, 8))) if seed % 2 else (2.0, -1.0)
+    shape = (int(rng.integers(10, h + 10)), int(rng.integers(10, w + 10)))
+    want = ndimage.affine_transform(image, lin, offset=offset, output_shape=shape, order=1, mode="constant",
+                                    cval=255.0, prefilter=False)
+    got = warp_bilinear(image, lin, offset, shape, cval=255.0)
+    assert got.shape == shape and got.dtype == np.float32
+    assert np.abs(got - want).max() < 1e-3
+    assert (want == 255.0).any() == (got == 255.0).any()
 
 
 def test_page_level_sits_in_the_middle_of_a_bilevel_page_gap():
