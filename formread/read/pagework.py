@@ -17,8 +17,10 @@ candidate's residual, or "ambiguous") - a page is never read against a layout it
 from __future__ import annotations
 
 import io
+import struct
 import tempfile
 import time
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -110,10 +112,24 @@ def failed_page(source: str, page_number: int, content_hash: str, error: str, se
                             error=error), seconds=seconds)
 
 
+def _png_chunk(kind: bytes, data: bytes) -> bytes:
+    return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
+
+
 def _png(gray: np.ndarray, level: int = 1) -> bytes:
-    buf = io.BytesIO()
-    Image.fromarray(np.ascontiguousarray(gray, dtype=np.uint8)).save(buf, format="PNG", compress_level=level)
-    return buf.getvalue()
+    """A field crop (h, w) uint8 as 8-bit greyscale PNG bytes (the PNG specification, filter type 1
+    "Sub" on every row, deflate ``level``).
+
+    Written here rather than by Pillow, whose adaptive filter choice took twice as long per crop
+    (0.7-1.1 ms against 0.3-0.6) for files within a few percent of the same size."""
+    g = np.ascontiguousarray(gray, dtype=np.uint8)
+    h, w = g.shape
+    raw = np.empty((h, w + 1), np.uint8)
+    raw[:, 0] = 1                               # filter type: Sub, the difference to the pixel on the left
+    raw[:, 1:2] = g[:, :1]
+    np.subtract(g[:, 1:], g[:, :-1], out=raw[:, 2:])      # uint8 arithmetic wraps modulo 256, as the filter says
+    return (b"\x89PNG\r\n\x1a\n" + _png_chunk(b"IHDR", struct.pack(">IIBBBBB", w, h, 8, 0, 0, 0, 0))
+            + _png_chunk(b"IDAT", zlib.compress(raw.tobytes(), level)) + _png_chunk(b"IEND", b""))
 
 
 def _page_jpeg(gray: np.ndarray, dpi: float) -> tuple[bytes, float]:

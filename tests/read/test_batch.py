@@ -1,6 +1,7 @@
 """The batch job on real pages: failures recorded, the rest read, reruns skip, outputs agree with the ledger."""
 
 import csv
+import io
 import json
 import shutil
 import sqlite3
@@ -123,6 +124,17 @@ def test_page_views_are_jpeg_and_field_crops_lossless_png(tmp_path, model):
             assert im.format == "PNG"
         x0, y0, x1, y1 = json.loads(box)
         assert 0 <= x0 < x1 <= size[0] and 0 <= y0 < y1 <= size[1]
+
+
+@pytest.mark.parametrize("shape", [(110, 510), (1, 1), (7, 1), (1, 9)])
+def test_field_crop_png_decodes_to_the_same_pixels(shape):
+    # reference: Pillow's PNG decoder reads our own writer's files back pixel for pixel
+    rng = np.random.default_rng(shape[0] * 31 + shape[1])
+    gray = rng.integers(0, 256, shape).astype(np.uint8)
+    gray[: shape[0] // 2] = 255                 # paper as well as noise
+    with Image.open(io.BytesIO(pagework._png(gray))) as im:
+        assert im.format == "PNG" and im.mode == "L" and im.size == (shape[1], shape[0])
+        assert np.array_equal(np.asarray(im), gray)
 
 
 def test_a_bug_mid_batch_stops_loudly_keeps_whole_pages_and_resumes(tmp_path, model, monkeypatch):
