@@ -1,5 +1,6 @@
 """The ledger: WAL mode, one transaction per page, skip by content hash, safe with bad folders."""
 
+import hashlib
 import sqlite3
 
 import numpy as np
@@ -85,6 +86,10 @@ def test_page_hash_is_of_the_pixels_and_shape():
     assert page_hash(a) == page_hash(a.copy())
     assert page_hash(a) != page_hash(b)
     assert page_hash(a) != page_hash(a.reshape(6, 4))
+    # the hash ledgers already hold (a resumed run knows its pages by it): SHA-256 (hashlib) of the
+    # shape and dtype, then the pixels row by row, whatever the array's memory order
+    want = hashlib.sha256(b"4x6:|u1:" + b.tobytes()).hexdigest()
+    assert page_hash(b) == want and page_hash(np.asfortranarray(b)) == want
 
 
 def test_unusable_output_folder_is_a_one_line_error(tmp_path):
