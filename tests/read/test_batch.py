@@ -230,3 +230,12 @@ def test_recognition_is_one_network_call_for_several_pages():
     assert np.argmax(out[0]["a"].candidates[0].probs, axis=1).tolist() == [0, 1, 2]
     assert out[0]["c"].candidates == []
     assert np.argmax(out[1]["d"].candidates[0].probs, axis=1).tolist() == [6, 7]
+    # candidates sharing a digit image: each distinct image is read once, every row gets its answer
+    e = SimpleNamespace(name="e", kind="open", blank=None, doubtful=False, reason=None, candidates=[
+        SimpleNamespace(digits=a.candidates[0].digits[[2, 0, 2]], boxes=[], cost=0.0),
+        SimpleNamespace(digits=a.candidates[0].digits[[1, 2]], boxes=[], cost=1.0)])
+    model = Counting()
+    out = recognise_pages([{"a": a, "e": e}], model)
+    assert model.calls == [(3, 1, 28, 28)]                 # 8 rows, 3 distinct images
+    assert [np.argmax(c.probs, axis=1).tolist() for c in out[0]["e"].candidates] == [[2, 0, 2], [1, 2]]
+    assert np.argmax(out[0]["a"].candidates[0].probs, axis=1).tolist() == [0, 1, 2]
