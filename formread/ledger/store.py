@@ -47,7 +47,7 @@ def page_hash(gray) -> str:
     """
     g = np.ascontiguousarray(gray)
     h = hashlib.sha256(f"{g.shape[0]}x{g.shape[1]}:{g.dtype.str}:".encode())
-    h.update(memoryview(g).cast("B"))       # the pixel bytes in place (tobytes copied the whole page)
+    h.update(g.data.cast("B"))       # the pixel bytes in place (tobytes copied the whole page)
     return h.hexdigest()
 
 

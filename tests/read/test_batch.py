@@ -1,8 +1,10 @@
 """The batch job on real pages: failures recorded, the rest read, reruns skip, outputs agree with the ledger."""
 
 import csv
+import dataclasses
 import io
 import json
+import os
 import shutil
 import sqlite3
 
@@ -177,6 +179,41 @@ def test_worker_processes_read_the_same_as_one_process(tmp_path, model):
     assert sorted(got) == [("multi.tif", 1), ("multi.tif", 2), ("multi.tif", 3), ("page_000.png", 1),
                            ("page_001.png", 1)]
     assert readings(tmp_path / "one") == got
+
+
+@pytest.mark.skipif(not hasattr(os, "memfd_create"), reason="in-memory files are Linux's")
+def test_a_page_handed_through_an_in_memory_file_arrives_whole(monkeypatch):
+    from concurrent.futures import Future
+
+    from formread.imaging.load import Page
+    from formread.read import batch
+
+    gray = np.random.default_rng(3).integers(0, 256, (37, 53)).astype(np.uint8)
+    page = Page(gray=gray, dpi=200.0, source="a.png")
+    monkeypatch.setattr(batch, "_work", lambda p, h: (p.gray.copy(), p.source, h))
+    fd = batch._pixels_file(gray)
+    assert fd is not None
+    try:                                    # what the worker does: open the reader's file, read the pixels
+        got, source, h = batch._work_from_file(dataclasses.replace(page, gray=None), os.getpid(), fd,
+                                               gray.shape, "h1")
+        assert np.array_equal(got, gray) and (source, h) == ("a.png", "h1")
+        # a file the worker cannot open, or one too short: it asks for the pixels instead
+        assert batch._work_from_file(page, os.getpid(), 10 ** 6, gray.shape, "h1") == batch._NEED_PIXELS
+        assert batch._work_from_file(page, os.getpid(), fd, (38, 53), "h1") == batch._NEED_PIXELS
+    finally:
+        os.close(fd)
+
+    class InlinePool:                       # runs each call at once; the worker never finds the file
+        def submit(self, fn, *args):
+            f = Future()
+            f.set_result(batch._NEED_PIXELS if fn is batch._work_from_file else fn(*args))
+            return f
+
+    live: set = set()
+    handed = batch._Handed(InlinePool(), page, "h2", batch._pixels_file(gray), live)
+    assert live == {handed}
+    got, _, h = handed.result()             # sent again with its pixels, and the file closed
+    assert np.array_equal(got, gray) and h == "h2" and live == set() and handed._fd is None
 
 
 def test_list_scans_refuses_missing_inputs_and_sorts_folders(tmp_path):
