@@ -13,7 +13,12 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-__all__ = ["Line", "LineResult", "find_line", "remove_box_lines"]
+__all__ = ["Line", "LineResult", "find_line", "remove_box_lines", "LINE_GAP_MM"]
+
+LINE_GAP_MM = 0.4
+"""Breaks along a printed line up to this long still count as line.  A thin cell border that a
+blurred scan thresholded to bilevel comes out dashed; without this it was not found, stayed in the
+digits beside it ("|2" read as 6) and whole boxed fields were misread."""
 
 
 @dataclass
@@ -83,8 +88,22 @@ def _runs_open(band: np.ndarray, length: int, axis: int) -> np.ndarray:
     return out if axis == 1 else out.T
 
 
+def _close_gaps(band: np.ndarray, gap: int) -> np.ndarray:
+    """(n, m) bool -> (n, m) bool: each row's runs of paper at most ``gap`` px long between two ink
+    pixels filled with ink, so that a dashed line reads as one run (its pixels are never removed:
+    only the ink under a line found is)."""
+    n, m = band.shape
+    if gap <= 0 or m == 0:
+        return band
+    idx = np.arange(m)
+    last = np.maximum.accumulate(np.where(band, idx, -m - gap - 1), axis=1)       # last ink at or before j
+    nxt = np.minimum.accumulate(np.where(band, idx, 2 * m + gap + 1)[:, ::-1], axis=1)[:, ::-1]  # next at or after
+    return band | ((nxt - last - 1) <= gap)
+
+
 def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_run: int,
-              min_cover: float, max_thick: int, span: tuple | None = None, slack: int = 0) -> Line | None:
+              min_cover: float, max_thick: int, span: tuple | None = None, slack: int = 0,
+              gap: int = 0) -> Line | None:
     """Find one printed line near an expected position.
 
     Parameters
@@ -107,6 +126,9 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
         Ink is first thickened by this many px across the line, so that a thin line
         slightly askew (or jagged after a bilevel scan) still forms long runs; the
         line found then includes that slack on each side.
+    gap : int
+        Breaks along the line up to this many px long still count as line (a thin line
+        that a blurred bilevel scan left dashed).
 
     Returns
     -------
@@ -128,7 +150,7 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
             thick[d:] |= wide[:-d]
             thick[:-d] |= wide[d:]
         sub = thick[lo - lo2:lo - lo2 + (hi - lo)]
-    band = _runs_open(sub, min_run, 1)
+    band = _runs_open(_close_gaps(sub, gap), min_run, 1)
     cover = band.sum(axis=1) / float(s1 - s0)
     if cover.max() < min_cover:
         return None
@@ -142,6 +164,15 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
         b_ += 1
     cols = np.flatnonzero(band[a_:b_ + 1].any(axis=0))
     return Line(axis, lo + a_, lo + b_, (s0 + int(cols[0]), s0 + int(cols[-1]) + 1))
+
+
+def _find_line_or_dashed(ink: np.ndarray, axis: str, expected: float, *, gap: int, **kw) -> Line | None:
+    """``find_line`` of a solid line, and only when there is none, of a dashed one (breaks up to
+    ``gap`` px): bridging breaks beside a solid line would let a stroke that touches it widen it."""
+    ln = find_line(ink, axis, expected, **kw)
+    if ln is None and gap > 0:
+        ln = find_line(ink, axis, expected, gap=gap, **kw)
+    return ln
 
 
 def _line_mask(ink: np.ndarray, ln: Line) -> np.ndarray:
@@ -181,7 +212,7 @@ def _crossings(keep_ink: np.ndarray, ln: Line, reach: int) -> np.ndarray:
 def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: float = 10.0,
                      search_mm: float = 1.2, max_thick_mm: float = 1.0, v_span: tuple | None = None,
                      h_min_run_mm: float = 2.5, h_span: tuple | None = None,
-                     max_lines: int = 1) -> LineResult:
+                     max_lines: int = 1, gap_mm: float = LINE_GAP_MM) -> LineResult:
     """Remove printed lines near expected positions, keeping crossing strokes.
 
     Parameters
@@ -205,6 +236,8 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
     max_lines : int
         Most lines looked for near each expected column (2 where separate boxes
         leave a gap between the right edge of one and the left edge of the next).
+    gap_mm : float
+        Longest break along a line that still counts as line (see :data:`LINE_GAP_MM`).
 
     Returns
     -------
@@ -215,10 +248,11 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
     search = max(2, int(round(search_mm * px_per_mm)))
     thick = max(2, int(round(max_thick_mm * px_per_mm)))
     slack = max(1, int(round(0.15 * px_per_mm)))  # a thin line may wander this much (skew, bilevel jaggies)
+    gap = max(0, int(round(gap_mm * px_per_mm)))
     found: list[Line] = []
     for r in rows:
-        ln = find_line(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
-                       min_cover=0.3, max_thick=thick + 2 * slack, span=h_span, slack=slack)
+        ln = _find_line_or_dashed(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
+                                  min_cover=0.3, max_thick=thick + 2 * slack, span=h_span, slack=slack, gap=gap)
         if ln is not None:
             found.append(ln)
     hs = sorted(found, key=lambda ln: ln.centre)
@@ -229,9 +263,9 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
         rest = ink
         for _ in range(max_lines):
             span = (max(0, v_span[0] - search), min(h, v_span[1] + search))
-            ln = find_line(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
-                           min_cover=0.85 * v_len / max(1, span[1] - span[0]), max_thick=thick + 2 * slack,
-                           span=span, slack=slack)
+            ln = _find_line_or_dashed(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
+                                      min_cover=0.85 * v_len / max(1, span[1] - span[0]),
+                                      max_thick=thick + 2 * slack, span=span, slack=slack, gap=gap)
             if ln is None:
                 break
             if not any(o.axis == "v" and o.lo <= ln.hi and ln.lo <= o.hi for o in found):
