@@ -8,9 +8,10 @@ its images, outputs rebuilt).  Prints the figures; ``--json`` prints one object.
 
     python benchmarks/read_speed.py [--pages 100] [--workers 2] [--seed 3] [--keep DIR] [--json]
 
-``imaging_seconds`` is the time the imaging step took summed over pages (in the
-workers, so it can exceed the wall time); ``recognition_seconds`` is the network
-plus decoding in the main process; ``writing_seconds`` the ledger and image files.
+``imaging_seconds`` is the time the imaging step took summed over pages (decoding
+the files in the main process, the rest in the workers, so it can exceed the wall
+time); ``recognition_seconds`` is the network plus decoding, in the workers too;
+``writing_seconds`` the ledger and image files, in the main process.
 ``cpu_seconds_per_page`` is the CPU time of the reader and its workers per page,
 and ``cpu_bound_pages_per_second`` the rate it allows on the CPUs the run may use
 (min(CPUs, workers + 1)) when nothing else competes for them: an upper bound to
