@@ -25,8 +25,8 @@ import time
 from pathlib import Path
 
 from ..errors import ClusterError, ImageError, one_line
-from .batch import _file_failure_hash, _known, decoded_pages, display_name
 from .pagework import PageWork, RunContext, failed_page, read_page
+from .scans import decoded_pages, display_name, file_failure_hash, known_page
 
 __all__ = ["connect", "run_on_cluster", "CONNECT_SECONDS"]
 
@@ -62,13 +62,13 @@ def _file_task(path: str, source: str, data: bytes | None, ctx: RunContext, know
                     continue
                 page, h, _ = item
                 if h in known:
-                    out.append(_known(source, page.page_number, h))
+                    out.append(known_page(source, page.page_number, h))
                     continue
                 work = read_page(page, h, ctx)
                 work.row.source = source
                 out.append(work)
         except ImageError as e:                   # the file vanished or changed under the worker
-            out.append(failed_page(source, len(out) + 1, _file_failure_hash(source), one_line(e)))
+            out.append(failed_page(source, len(out) + 1, file_failure_hash(source), one_line(e)))
     return out
 
 
@@ -97,14 +97,14 @@ def run_on_cluster(client, scans, ctx: RunContext, ledger, report, progress, *, 
     for source, refusal in scans:
         name = display_name(source)
         if refusal is not None:
-            write(failed_page(name, 1, _file_failure_hash(source), f"{name}: {refusal}"), known, ledger, report)
+            write(failed_page(name, 1, file_failure_hash(source), f"{name}: {refusal}"), known, ledger, report)
             continue
         data = None
         if send_bytes:
             try:
                 data = Path(source).read_bytes()
             except OSError as e:
-                write(failed_page(name, 1, _file_failure_hash(source), f"{name}: cannot be read ({e.strerror or e})"),
+                write(failed_page(name, 1, file_failure_hash(source), f"{name}: cannot be read ({e.strerror or e})"),
                       known, ledger, report)
                 continue
         futures.append(client.submit(_file_task, str(source), name, data, ctx_f, known_f, pure=False, retries=2))
