@@ -9,11 +9,13 @@ crop's ink map, and the Sauvola settings.
 from __future__ import annotations
 
 import numpy as np
+from scipy import ndimage
 
 from ..errors import check_param
 
 __all__ = ["threshold_otsu", "threshold_sauvola", "binarize", "background", "is_uneven", "choose_method",
-           "page_ink_level", "ink_map", "UNEVEN_SPREAD", "SAUVOLA_K", "SAUVOLA_R", "SAUVOLA_WINDOW_MM"]
+           "page_ink_level", "ink_map", "faint_writing_level", "UNEVEN_SPREAD", "SAUVOLA_K", "SAUVOLA_R",
+           "SAUVOLA_WINDOW_MM", "FAINT_MIN_SHARE"]
 
 SAUVOLA_K = 0.2
 """Sauvola's k (implementations use 0.2 or 0.5, see scikit-image; 0.2 keeps faint strokes)."""
@@ -235,3 +237,57 @@ def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu
         window = max(3, int(round(SAUVOLA_WINDOW_MM * px_per_mm)) | 1)
         return (g <= threshold_sauvola(g, window=window, k=SAUVOLA_K, r=SAUVOLA_R)) & (g <= (level + 255.0) / 2)
     return g <= level
+
+
+FAINT_MIN_SHARE = 0.004
+"""Share of a field's inside that faint strokes must cover before the field gets its own level."""
+
+
+def faint_writing_level(gray: np.ndarray, rect, level: float, px_per_mm: float = 10.0) -> float | None:
+    """A grey level of the field's own for writing much paler than the page's print, or None.
+
+    The page's level sits between the paper and the printed form, which is what most of a page's
+    dark pixels are; a hairline or grey pen under a blurred scan can stay lighter than that level
+    and come out as specks (a development page read '31219355' as '3725').  When the field's inside
+    holds strokes clearly darker than its paper but lighter than ``level``, away from everything the
+    page level already calls ink (so not the soft edges of dark strokes or printed lines), the field's
+    level is put halfway between its paper and those strokes.
+
+    Parameters
+    ----------
+    gray : ndarray of shape (h, w), uint8, 0 = ink (a field crop)
+    rect : (x0, y0, x1, y1) the field's rectangle in crop px
+    level : the page's ink level (formread.imaging.binarize.page_ink_level)
+    px_per_mm : crop resolution
+
+    Returns
+    -------
+    float above ``level``, or None when the field's writing is not faint (the page level stands).
+    """
+    x0, y0, x1, y1 = (int(round(v)) for v in rect)
+    m = int(round(1.2 * px_per_mm))                       # off the field's own border lines
+    inner = np.asarray(gray)[max(0, y0 + m):max(0, y1 - m), max(0, x0 + m):max(0, x1 - m)]
+    if inner.size < 100:
+        return None
+    reach = max(1, int(round(0.6 * px_per_mm)))          # soft edges of strokes the level already has
+    dark = inner <= level
+    free = ~ndimage.binary_dilation(dark, iterations=reach) if dark.any() else np.ones(inner.shape, bool)
+    if free.sum() < 0.25 * inner.size:
+        return None
+    p25, p75 = np.percentile(inner[free], [25, 75])      # the paper away from all that
+    paper = float(p75)
+    delta = max(15.0, 4.0 * float(p75 - p25))            # well beyond the paper's own noise
+    if paper - delta <= level:
+        return None
+    pale = (inner <= paper - delta) & free
+    if pale.sum() < FAINT_MIN_SHARE * inner.size:
+        return None
+    lab, n = ndimage.label(pale)
+    sizes = np.bincount(lab.ravel())
+    sizes[0] = 0
+    strokes = sizes >= 0.6 * px_per_mm ** 2             # pieces of stroke, not specks of dust or noise
+    covered = int(sizes[strokes].sum())
+    if covered < FAINT_MIN_SHARE * inner.size:
+        return None
+    darkness = float(np.median(inner[strokes[lab]]))
+    return float(max(level, (paper + darkness) / 2.0))

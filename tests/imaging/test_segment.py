@@ -238,6 +238,58 @@ def test_dashed_cell_borders_are_removed_like_solid_ones(seed):
         assert img[:, :3].sum() < 3 and img[:, -3:].sum() < 3   # no border left beside the digit
 
 
+def _pale_page(digits: dict, darkness: float, blur_px: float, seed: int):
+    """Printed black cells with MNIST digits written ``darkness`` grey levels below the paper (a hairline
+    or grey pen), the page blurred and with a little noise, as a blurred grey scan gives it."""
+    from scipy import ndimage
+
+    page = blank_page(70.0, 26.0).astype(np.float64)
+    lines = blank_page(70.0, 26.0)
+    draw_boxes(lines, BOXED.x, BOXED.y, BOXED.w, BOXED.h, BOXED.cells)
+    page = np.minimum(page, lines)
+    images, labels = mnist_test()
+    cw = BOXED.w / BOXED.cells
+    for k, d in digits.items():
+        ink = digit_ink(images[np.flatnonzero(labels == d)[k]], 5.6 * S)
+        r, c = int((BOXED.y + 1.2) * S), int((BOXED.x + k * cw + cw / 2) * S - ink.shape[1] / 2)
+        region = page[r:r + ink.shape[0], c:c + ink.shape[1]]
+        np.minimum(region, 255.0 - darkness * ink, out=region)
+    page = ndimage.gaussian_filter(page, blur_px) + np.random.default_rng(seed).normal(0.0, 2.0, page.shape)
+    return np.clip(np.rint(page), 0, 255).astype(np.uint8)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_pale_writing_under_a_dark_print_gets_the_fields_own_level(seed, monkeypatch):
+    # the page level sits between paper and the black print; strokes 60 levels below the paper, blurred,
+    # stay above it and the digits were lost as specks (a development page read 31219355 as 3725)
+    from formread.imaging import fields as fields_mod
+    from formread.imaging.binarize import faint_writing_level, page_ink_level
+
+    page = _pale_page({0: 4, 1: 2, 3: 7, 5: 0}, darkness=60.0, blur_px=2.5, seed=seed)
+    level = page_ink_level(page)
+    crop = cut_field(identity_registration(page), BOXED, level=level)
+    assert faint_writing_level(crop.gray, crop.rect, level, crop.px_per_mm) > level
+    fd = segment_boxed(crop, BOXED)
+    assert fd.blank.tolist() == [False, False, True, False, True, False]
+    for k in (0, 1, 3, 5):                                    # whole digits, not specks
+        assert (fd.candidates[0].digits[k, 0] > 0.5).sum() > 40
+    monkeypatch.setattr(fields_mod, "faint_writing_level", lambda *a, **k: None)
+    lost = segment_boxed(cut_field(identity_registration(page), BOXED, level=level), BOXED)
+    assert lost.blank.tolist() != fd.blank.tolist()           # the page level alone loses them
+
+
+@pytest.mark.parametrize("case", ["dark pen, blurred", "blank, noisy", "blank"])
+def test_the_fields_own_level_leaves_dark_writing_and_paper_alone(case):
+    from formread.imaging.binarize import faint_writing_level, page_ink_level
+
+    digits = {} if case.startswith("blank") else {0: 4, 1: 2, 3: 7, 5: 0}
+    blur, noise_seed = (2.5, 1) if case != "blank" else (0.01, 2)
+    page = _pale_page(digits, darkness=255.0, blur_px=blur, seed=noise_seed)
+    level = page_ink_level(page)
+    crop = cut_field(identity_registration(page), BOXED, level=level)
+    assert faint_writing_level(crop.gray, crop.rect, level, crop.px_per_mm) is None
+
+
 def test_blank_boxed_field_is_all_blank():
     page = _boxed_page({})
     fd = segment_boxed(cut_field(identity_registration(page), BOXED), BOXED)
