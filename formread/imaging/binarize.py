@@ -249,9 +249,10 @@ def faint_writing_level(gray: np.ndarray, rect, level: float, px_per_mm: float =
     The page's level sits between the paper and the printed form, which is what most of a page's
     dark pixels are; a hairline or grey pen under a blurred scan can stay lighter than that level
     and come out as specks (a development page read '31219355' as '3725').  When the field's inside
-    holds strokes clearly darker than its paper but lighter than ``level``, away from everything the
-    page level already calls ink (so not the soft edges of dark strokes or printed lines), the field's
-    level is put halfway between its paper and those strokes.
+    holds strokes clearly darker than its paper (four times the paper's noise, at least 15 grey
+    levels) but lighter than ``level``, away from everything the page level already calls ink (so not
+    the soft edges of dark strokes or printed lines), the field's level is put halfway between its
+    paper and those strokes.
 
     Parameters
     ----------
@@ -274,9 +275,11 @@ def faint_writing_level(gray: np.ndarray, rect, level: float, px_per_mm: float =
     free = ~ndimage.binary_dilation(dark, iterations=reach) if dark.any() else np.ones(inner.shape, bool)
     if free.sum() < 0.25 * inner.size:
         return None
-    p25, p75 = np.percentile(inner[free], [25, 75])      # the paper away from all that
-    paper = float(p75)
-    delta = max(15.0, 4.0 * float(p75 - p25))            # well beyond the paper's own noise
+    # the paper away from all that, and its noise from the light side only (pale strokes sit on
+    # the dark side): for normal noise the 90th to 98th percentile spans 0.77 standard deviations
+    p90, p98 = np.percentile(inner[free], [90, 98])
+    paper = float(p90)
+    delta = max(15.0, 4.0 * float(p98 - p90) / 0.77)     # well beyond the paper's own noise
     if paper - delta <= level:
         return None
     pale = (inner <= paper - delta) & free
