@@ -272,7 +272,9 @@ def faint_writing_level(gray: np.ndarray, rect, level: float, px_per_mm: float =
         return None
     reach = max(1, int(round(0.6 * px_per_mm)))          # soft edges of strokes the level already has
     dark = inner <= level
-    free = ~ndimage.binary_dilation(dark, iterations=reach) if dark.any() else np.ones(inner.shape, bool)
+    # more than ``reach`` 4-neighbour steps from it (as binary_dilation by ``reach`` iterations, 3x faster)
+    free = (ndimage.distance_transform_cdt(~dark, metric="taxicab") > reach if dark.any()
+            else np.ones(inner.shape, bool))
     if free.sum() < 0.25 * inner.size:
         return None
     # the paper away from all that, and its noise from the light side only (pale strokes sit on
