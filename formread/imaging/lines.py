@@ -166,13 +166,16 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
     return Line(axis, lo + a_, lo + b_, (s0 + int(cols[0]), s0 + int(cols[-1]) + 1))
 
 
-def _find_line_or_dashed(ink: np.ndarray, axis: str, expected: float, *, gap: int, **kw) -> Line | None:
+def _find_line_or_dashed(ink: np.ndarray, axis: str, expected: float, *, gap: int,
+                         **kw) -> tuple[Line | None, bool]:
     """``find_line`` of a solid line, and only when there is none, of a dashed one (breaks up to
-    ``gap`` px): bridging breaks beside a solid line would let a stroke that touches it widen it."""
+    ``gap`` px): bridging breaks beside a solid line would let a stroke that touches it widen it.
+    Returns the line (or None) and whether it was found dashed."""
     ln = find_line(ink, axis, expected, **kw)
     if ln is None and gap > 0:
         ln = find_line(ink, axis, expected, gap=gap, **kw)
-    return ln
+        return ln, ln is not None
+    return ln, False
 
 
 def _line_mask(ink: np.ndarray, ln: Line) -> np.ndarray:
@@ -251,8 +254,8 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
     gap = max(0, int(round(gap_mm * px_per_mm)))
     found: list[Line] = []
     for r in rows:
-        ln = _find_line_or_dashed(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
-                                  min_cover=0.3, max_thick=thick + 2 * slack, span=h_span, slack=slack, gap=gap)
+        ln, _ = _find_line_or_dashed(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
+                                     min_cover=0.3, max_thick=thick + 2 * slack, span=h_span, slack=slack, gap=gap)
         if ln is not None:
             found.append(ln)
     hs = sorted(found, key=lambda ln: ln.centre)
@@ -261,13 +264,15 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
     v_len = max(3, v_span[1] - v_span[0])
     for c in cols:
         rest = ink
+        col_gap = gap        # a second line beside a solid first one is looked for solid only (the same print)
         for _ in range(max_lines):
             span = (max(0, v_span[0] - search), min(h, v_span[1] + search))
-            ln = _find_line_or_dashed(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
-                                      min_cover=0.85 * v_len / max(1, span[1] - span[0]),
-                                      max_thick=thick + 2 * slack, span=span, slack=slack, gap=gap)
+            ln, dashed = _find_line_or_dashed(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
+                                              min_cover=0.85 * v_len / max(1, span[1] - span[0]),
+                                              max_thick=thick + 2 * slack, span=span, slack=slack, gap=col_gap)
             if ln is None:
                 break
+            col_gap = gap if dashed else 0
             if not any(o.axis == "v" and o.lo <= ln.hi and ln.lo <= o.hi for o in found):
                 found.append(ln)
             rest = rest.copy()
