@@ -204,7 +204,7 @@ MIN_CONTRAST = 50.0
 
 
 def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu",
-            px_per_mm: float = 10.0) -> np.ndarray:
+            px_per_mm: float = 10.0, rect=None) -> np.ndarray:
     """Binarise a crop into ink (with :mod:`formread.imaging.binarize`).
 
     Parameters
@@ -219,6 +219,9 @@ def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu
         a :data:`SAUVOLA_WINDOW_MM` window),
         never darker-than-level paper only: a pixel is ink when it is under both the
         local threshold and the midpoint between ``level`` and white.
+    rect : (x0, y0, x1, y1) or None
+        The field's rectangle in the crop: with a page ``level`` and Otsu, writing much paler
+        than the page's print gets the field's own level (:func:`faint_writing_level`).
 
     Returns
     -------
@@ -236,6 +239,8 @@ def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu
     if method == "sauvola":
         window = max(3, int(round(SAUVOLA_WINDOW_MM * px_per_mm)) | 1)
         return (g <= threshold_sauvola(g, window=window, k=SAUVOLA_K, r=SAUVOLA_R)) & (g <= (level + 255.0) / 2)
+    if rect is not None:
+        level = faint_writing_level(g, rect, level, px_per_mm) or level
     return g <= level
 
 

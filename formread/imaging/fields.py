@@ -14,7 +14,7 @@ import numpy as np
 
 from ..errors import SegmentationError, check_param
 from .affine import apply_affine, rect_corners, warp_bilinear
-from .binarize import faint_writing_level, ink_map
+from .binarize import ink_map
 
 OFF_PAGE_SHARE = 0.25
 """A field with more than this share of its rectangle off the scanned image cannot be cut."""
@@ -165,7 +165,5 @@ def cut_field(registration, field, *, px_per_mm: float = 10.0, margin_mm: float 
         gray = np.clip(np.rint(gray), 0, 255).astype(np.uint8)
     m = margin_mm * px_per_mm
     rect = (m, m, m + field.w * px_per_mm, m + field.h * px_per_mm)
-    if level is not None and method == "otsu":
-        level = faint_writing_level(gray, rect, level, px_per_mm) or level
-    ink = ink_map(gray, level=level, method=method, px_per_mm=px_per_mm)
+    ink = ink_map(gray, level=level, method=method, px_per_mm=px_per_mm, rect=rect if level is not None else None)
     return FieldCrop(field.name, field.kind, gray, ink, float(px_per_mm), float(x0), float(y0), rect, A)

@@ -262,7 +262,7 @@ def _pale_page(digits: dict, darkness: float, blur_px: float, seed: int, noise: 
 def test_pale_writing_under_a_dark_print_gets_the_fields_own_level(seed, monkeypatch):
     # the page level sits between paper and the black print; strokes 60 levels below the paper, blurred,
     # stay above it and the digits were lost as specks (a development page read 31219355 as 3725)
-    from formread.imaging import fields as fields_mod
+    from formread.imaging import binarize
     from formread.imaging.binarize import faint_writing_level, page_ink_level
 
     page = _pale_page({0: 4, 1: 2, 3: 7, 5: 0}, darkness=60.0, blur_px=2.5, seed=seed)
@@ -273,7 +273,7 @@ def test_pale_writing_under_a_dark_print_gets_the_fields_own_level(seed, monkeyp
     assert fd.blank.tolist() == [False, False, True, False, True, False]
     for k in (0, 1, 3, 5):                                    # whole digits, not specks
         assert (fd.candidates[0].digits[k, 0] > 0.5).sum() > 40
-    monkeypatch.setattr(fields_mod, "faint_writing_level", lambda *a, **k: None)
+    monkeypatch.setattr(binarize, "faint_writing_level", lambda *a, **k: None)
     lost = segment_boxed(cut_field(identity_registration(page), BOXED, level=level), BOXED)
     assert lost.blank.tolist() != fd.blank.tolist()           # the page level alone loses them
 
