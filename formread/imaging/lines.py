@@ -32,12 +32,15 @@ class Line:
         First and last row (``"h"``) or column (``"v"``) of the line's core.
     span : tuple of int (start, stop)
         Columns (``"h"``) or rows (``"v"``) the line covers, stop exclusive.
+    dashed : bool
+        Found only with its breaks bridged (see ``find_line``'s ``gap``).
     """
 
     axis: str
     lo: int
     hi: int
     span: tuple
+    dashed: bool = False
 
     @property
     def centre(self) -> float:
@@ -127,8 +130,10 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
         slightly askew (or jagged after a bilevel scan) still forms long runs; the
         line found then includes that slack on each side.
     gap : int
-        Breaks along the line up to this many px long still count as line (a thin line
-        that a blurred bilevel scan left dashed).
+        Where no solid line is found, breaks along the line up to this many px long are
+        bridged and the search is made again (a thin line that a blurred bilevel scan left
+        dashed); the line found then says ``dashed``.  Only then: bridging breaks beside a
+        solid line would let a stroke that touches it widen it.
 
     Returns
     -------
@@ -150,8 +155,13 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
             thick[d:] |= wide[:-d]
             thick[:-d] |= wide[d:]
         sub = thick[lo - lo2:lo - lo2 + (hi - lo)]
-    band = _runs_open(_close_gaps(sub, gap), min_run, 1)
+    band = _runs_open(sub, min_run, 1)
     cover = band.sum(axis=1) / float(s1 - s0)
+    dashed = False
+    if cover.max() < min_cover and gap > 0:
+        band = _runs_open(_close_gaps(sub, gap), min_run, 1)
+        cover = band.sum(axis=1) / float(s1 - s0)
+        dashed = True
     if cover.max() < min_cover:
         return None
     # the line's core: rows around the best one with at least half its cover
@@ -163,19 +173,7 @@ def find_line(ink: np.ndarray, axis: str, expected: float, *, search: int, min_r
     while b_ < len(keep) - 1 and keep[b_ + 1] and b_ - a_ + 1 < max_thick:
         b_ += 1
     cols = np.flatnonzero(band[a_:b_ + 1].any(axis=0))
-    return Line(axis, lo + a_, lo + b_, (s0 + int(cols[0]), s0 + int(cols[-1]) + 1))
-
-
-def _find_line_or_dashed(ink: np.ndarray, axis: str, expected: float, *, gap: int,
-                         **kw) -> tuple[Line | None, bool]:
-    """``find_line`` of a solid line, and only when there is none, of a dashed one (breaks up to
-    ``gap`` px): bridging breaks beside a solid line would let a stroke that touches it widen it.
-    Returns the line (or None) and whether it was found dashed."""
-    ln = find_line(ink, axis, expected, **kw)
-    if ln is None and gap > 0:
-        ln = find_line(ink, axis, expected, gap=gap, **kw)
-        return ln, ln is not None
-    return ln, False
+    return Line(axis, lo + a_, lo + b_, (s0 + int(cols[0]), s0 + int(cols[-1]) + 1), dashed)
 
 
 def _line_mask(ink: np.ndarray, ln: Line) -> np.ndarray:
@@ -254,8 +252,8 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
     gap = max(0, int(round(gap_mm * px_per_mm)))
     found: list[Line] = []
     for r in rows:
-        ln, _ = _find_line_or_dashed(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
-                                     min_cover=0.3, max_thick=thick + 2 * slack, span=h_span, slack=slack, gap=gap)
+        ln = find_line(ink, "h", r, search=search, min_run=max(3, int(round(h_min_run_mm * px_per_mm))),
+                       min_cover=0.3, max_thick=thick + 2 * slack, span=h_span, slack=slack, gap=gap)
         if ln is not None:
             found.append(ln)
     hs = sorted(found, key=lambda ln: ln.centre)
@@ -267,12 +265,12 @@ def remove_box_lines(ink: np.ndarray, *, rows: list, cols: list, px_per_mm: floa
         col_gap = gap        # a second line beside a solid first one is looked for solid only (the same print)
         for _ in range(max_lines):
             span = (max(0, v_span[0] - search), min(h, v_span[1] + search))
-            ln, dashed = _find_line_or_dashed(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
-                                              min_cover=0.85 * v_len / max(1, span[1] - span[0]),
-                                              max_thick=thick + 2 * slack, span=span, slack=slack, gap=col_gap)
+            ln = find_line(rest, "v", c, search=search, min_run=max(3, int(0.8 * v_len)),
+                           min_cover=0.85 * v_len / max(1, span[1] - span[0]), max_thick=thick + 2 * slack,
+                           span=span, slack=slack, gap=col_gap)
             if ln is None:
                 break
-            col_gap = gap if dashed else 0
+            col_gap = gap if ln.dashed else 0
             if not any(o.axis == "v" and o.lo <= ln.hi and ln.lo <= o.hi for o in found):
                 found.append(ln)
             rest = rest.copy()
