@@ -220,7 +220,7 @@ def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu
         never darker-than-level paper only: a pixel is ink when it is under both the
         local threshold and the midpoint between ``level`` and white.
     rect : (x0, y0, x1, y1) or None
-        The field's rectangle in the crop: with a page ``level`` and Otsu, writing much paler
+        The field's rectangle in the crop: with a page ``level`` (not the crop's own) and Otsu, writing much paler
         than the page's print gets the field's own level (:func:`faint_writing_level`).
 
     Returns
@@ -230,6 +230,7 @@ def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu
     g = np.asarray(gray)
     if g.size == 0:
         return np.zeros(g.shape, bool)
+    page_level = level is not None
     if level is None:
         level = threshold_otsu(g)
         dark, light = g[g <= level], g[g > level]
@@ -239,7 +240,7 @@ def ink_map(gray: np.ndarray, *, level: float | None = None, method: str = "otsu
     if method == "sauvola":
         window = max(3, int(round(SAUVOLA_WINDOW_MM * px_per_mm)) | 1)
         return (g <= threshold_sauvola(g, window=window, k=SAUVOLA_K, r=SAUVOLA_R)) & (g <= (level + 255.0) / 2)
-    if rect is not None:
+    if rect is not None and page_level:
         level = faint_writing_level(g, rect, level, px_per_mm) or level
     return g <= level
 

@@ -165,5 +165,5 @@ def cut_field(registration, field, *, px_per_mm: float = 10.0, margin_mm: float 
         gray = np.clip(np.rint(gray), 0, 255).astype(np.uint8)
     m = margin_mm * px_per_mm
     rect = (m, m, m + field.w * px_per_mm, m + field.h * px_per_mm)
-    ink = ink_map(gray, level=level, method=method, px_per_mm=px_per_mm, rect=rect if level is not None else None)
+    ink = ink_map(gray, level=level, method=method, px_per_mm=px_per_mm, rect=rect)
     return FieldCrop(field.name, field.kind, gray, ink, float(px_per_mm), float(x0), float(y0), rect, A)

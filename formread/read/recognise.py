@@ -65,10 +65,13 @@ def recognise_pages(pages: Sequence[Mapping], bundle, *, batch_size: int = 256) 
     if len(x):
         # candidates share most of their digits (about 30% of a page's images are repeats): each
         # distinct image goes through the network once
-        first: dict[bytes, int] = {}
-        which = np.fromiter((first.setdefault(d.tobytes(), len(first)) for d in x), np.int64, len(x))
-        keep = np.zeros(len(first), np.int64)
-        keep[which[::-1]] = np.arange(len(x) - 1, -1, -1)      # the first row of each distinct image
+        slot: dict[bytes, int] = {}           # an image's bytes -> its row among the distinct ones
+        keep: list[int] = []                  # the first row of x holding each distinct image
+        which = np.empty(len(x), np.int64)    # each row of x -> its distinct image
+        for i, d in enumerate(x):
+            which[i] = slot.setdefault(d.tobytes(), len(keep))
+            if which[i] == len(keep):
+                keep.append(i)
         probs = bundle.predict_proba(x[keep], batch_size=batch_size)[which]
     else:
         probs = np.zeros((0, 10), np.float32)
