@@ -18,7 +18,7 @@ from scipy import ndimage
 
 from .errors import ParameterError
 
-__all__ = ["SIZE", "BOX", "NORMALISATION", "normalize_digit", "normalize_batch", "upscale_small"]
+__all__ = ["SIZE", "BOX", "NORMALISATION", "normalize_digit", "crop_to_ink", "normalize_batch", "upscale_small"]
 
 SIZE = 28
 """Side of the network's input frame in pixels."""
@@ -28,6 +28,16 @@ NORMALISATION = "mnist-fit20-com28"
 """Name recorded in model files for this normalisation."""
 
 _INK_FLOOR = 0.15  # share of the peak below which a pixel is background when finding the bounding box
+
+
+def crop_to_ink(a: np.ndarray) -> np.ndarray:
+    """An ink map (h, w), scaled so that its peak is 1, cut to the box of its pixels above the
+    background floor (a view); shape (0, 0) when none is."""
+    rows = np.flatnonzero((a > _INK_FLOOR).any(axis=1))
+    if rows.size == 0:
+        return a[:0, :0]
+    cols = np.flatnonzero((a > _INK_FLOOR).any(axis=0))
+    return a[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
 
 
 def normalize_digit(ink: np.ndarray) -> np.ndarray:
@@ -51,12 +61,9 @@ def normalize_digit(ink: np.ndarray) -> np.ndarray:
     peak = float(a.max()) if a.size else 0.0
     if not np.isfinite(peak) or peak <= 0:
         return out
-    a = np.clip(a / peak, 0.0, 1.0)
-    rows = np.flatnonzero((a > _INK_FLOOR).any(axis=1))
-    cols = np.flatnonzero((a > _INK_FLOOR).any(axis=0))
-    if rows.size == 0:
+    a = crop_to_ink(np.clip(a / peak, 0.0, 1.0))
+    if a.size == 0:
         return out
-    a = a[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
     h, w = a.shape
     scale = BOX / max(h, w)
     nh, nw = max(1, round(h * scale)), max(1, round(w * scale))

@@ -35,7 +35,7 @@ from dataclasses import asdict, dataclass
 import numpy as np
 from scipy import ndimage
 
-from ..digits import normalize_digit
+from ..digits import crop_to_ink, normalize_digit
 from ..errors import check_param
 
 __all__ = ["AugmentConfig", "random_affine", "elastic", "stroke_width", "degrade", "box_remnants", "stroke_breaks",
@@ -373,14 +373,10 @@ def stroke_breaks(x: np.ndarray, rng: np.random.Generator) -> np.ndarray:
     return out
 
 
-def _ink_box(img: np.ndarray) -> np.ndarray:
-    """The image cropped to its ink (pixels >= 0.15 of its peak); (0, 0) when it holds none."""
+def _inked(img: np.ndarray) -> np.ndarray:
+    """A digit image scaled to peak 1 and cut to its ink, as ``normalize_digit`` cuts it; (0, 0) if blank."""
     peak = float(img.max())
-    if peak <= 0:
-        return img[:0, :0]
-    rows = np.flatnonzero((img >= 0.15 * peak).any(axis=1))
-    cols = np.flatnonzero((img >= 0.15 * peak).any(axis=0))
-    return img[rows[0]:rows[-1] + 1, cols[0]:cols[-1] + 1]
+    return crop_to_ink(img / peak) if peak > 0 else img[:0, :0]
 
 
 def touching_pairs(x: np.ndarray, y: np.ndarray, rng: np.random.Generator, share: float
@@ -418,7 +414,7 @@ def touching_pairs(x: np.ndarray, y: np.ndarray, rng: np.random.Generator, share
     size = rng.uniform(0.9, 1.1, len(sel))
     src = x[:, 0].copy()
     for i, j, ov, dy, sz in zip(sel, partner, overlap, lift, size):
-        a, b = _ink_box(src[i]), _ink_box(src[int(j)])
+        a, b = _inked(src[i]), _inked(src[int(j)])
         if not a.size or not b.size:
             continue
         hb = max(1, int(round(a.shape[0] * sz)))
