@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 
 
-def _make(folder: Path, style: str, pages: int, seed: int) -> list[dict]:
+def make_pages(folder: Path, style: str, pages: int, seed: int) -> list[dict]:
     """Demo pages in ``folder`` (reused when already made with these settings); MNIST indices per page."""
     from formread.demo import make_demo
 
@@ -53,25 +53,24 @@ def _truth_order(folder: Path) -> list[tuple[str, int]]:
     return [(r["source"], int(r["page_number"])) for r in rows]
 
 
-def _measure(folder: Path, out: Path, model, by_page: list[dict]) -> dict:
-    from formread.digits import normalize_batch
-    from formread.learn.datasets import mnist_raw
+def cut_digits(folder: Path, out: Path, model, by_page: list[dict], command: str = "benchmarks/cut_vs_clean.py"
+               ) -> tuple[dict, float]:
+    """Read the pages of ``folder`` into ``out`` as ``formread read`` does and gather, per field kind, the
+    digits of every field cut to its written length.
+
+    Returns ({kind: {"cut": (N, 1, 28, 28) float32, "mnist": (N,) MNIST indices of the same digits,
+    "fields": fields written, "length_mismatch": fields cut to another length}}, seconds of the read).
+    """
     from formread.ledger.fieldfile import load_digits
     from formread.ledger.store import open_ledger
     from formread.read.batch import SCAN_SUFFIXES, read_batch
-    from formread.read.bundle import load_bundle
 
     scans = sorted(p for p in folder.iterdir() if p.suffix.lower() in SCAN_SUFFIXES)
     t0 = time.perf_counter()
-    read_batch(scans, folder / "layout.toml", out, bundle=model, workers=2, command="benchmarks/cut_vs_clean.py")
+    read_batch(scans, folder / "layout.toml", out, bundle=model, workers=2, command=command)
     seconds = time.perf_counter() - t0
-    bundle = load_bundle(model)
-    images, labels = mnist_raw()
     index = {key: i for i, key in enumerate(_truth_order(folder))}
-    clean_idx: dict[str, list] = {"boxed": [], "open": []}
-    cut: dict[str, list] = {"boxed": [], "open": []}
-    mismatch = {"boxed": 0, "open": 0}
-    fields = {"boxed": 0, "open": 0}
+    got = {kind: {"cut": [], "mnist": [], "fields": 0, "length_mismatch": 0} for kind in ("boxed", "open")}
     with open_ledger(out) as ledger:
         rows = ledger.field_rows()
     for r in rows:
@@ -81,26 +80,39 @@ def _measure(folder: Path, out: Path, model, by_page: list[dict]) -> dict:
         used = by_page[index[key]].get(r["name"], [])
         if not used:
             continue                     # a field left empty on paper
-        kind = r["kind"]
-        fields[kind] += 1
+        g = got[r["kind"]]
+        g["fields"] += 1
         d = load_digits(out / r["digits_path"]) if r.get("digits_path") else np.zeros((0, 1, 28, 28), np.float32)
         if len(d) != len(used):
-            mismatch[kind] += 1
+            g["length_mismatch"] += 1
             continue
-        clean_idx[kind] += list(used)
-        cut[kind].append(d)
+        g["mnist"] += list(used)
+        g["cut"].append(d)
+    for g in got.values():
+        g["cut"] = np.concatenate(g["cut"]) if g["cut"] else np.zeros((0, 1, 28, 28), np.float32)
+        g["mnist"] = np.asarray(g["mnist"], np.int64)
+    return got, seconds
+
+
+def _measure(folder: Path, out: Path, model, by_page: list[dict]) -> dict:
+    from formread.digits import normalize_batch
+    from formread.learn.datasets import mnist_raw
+    from formread.read.bundle import load_bundle
+
+    got, seconds = cut_digits(folder, out, model, by_page)
+    bundle = load_bundle(model)
+    images, labels = mnist_raw()
     res: dict = {"model": str(model), "read_seconds": round(seconds, 2)}
-    for kind in ("boxed", "open"):
-        if not clean_idx[kind]:
-            res[kind] = {"fields": fields[kind], "digits": 0}
+    for kind, g in got.items():
+        if not len(g["mnist"]):
+            res[kind] = {"fields": g["fields"], "digits": 0}
             continue
-        idx = np.asarray(clean_idx[kind])
+        idx = g["mnist"]
         y = labels[idx]
         clean = normalize_batch(images[idx])
-        cut_x = np.concatenate(cut[kind])
         acc_clean = float((bundle.predict_proba(clean).argmax(1) == y).mean())
-        acc_cut = float((bundle.predict_proba(cut_x).argmax(1) == y).mean())
-        res[kind] = {"fields": fields[kind], "length_mismatch": mismatch[kind], "digits": int(len(y)),
+        acc_cut = float((bundle.predict_proba(g["cut"]).argmax(1) == y).mean())
+        res[kind] = {"fields": g["fields"], "length_mismatch": g["length_mismatch"], "digits": int(len(y)),
                      "clean": round(acc_clean, 4), "cut": round(acc_cut, 4),
                      "gap_points": round(100 * (acc_clean - acc_cut), 2)}
     return res
@@ -125,7 +137,7 @@ def main(argv=None) -> int:
         for style in args.styles.split(","):
             folder = base / f"{style}-{args.seed}-{args.pages}"
             folder.mkdir(parents=True, exist_ok=True)
-            by_page = _make(folder, style, args.pages, args.seed)
+            by_page = make_pages(folder, style, args.pages, args.seed)
             for k, model in enumerate(models):
                 out = Path(tmp) / f"out-{style}-{k}"
                 r = _measure(folder, out, model, by_page)

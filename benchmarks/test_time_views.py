@@ -59,37 +59,17 @@ VIEWS = {
 
 
 def _cut_digits(folder: Path, out: Path, model, pages: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """Digits cut from development forms, (N, 1, 28, 28) float32, and their MNIST labels (N,)."""
-    from formread.demo import make_demo
-    from formread.learn.datasets import mnist_raw
-    from formread.ledger.fieldfile import load_digits
-    from formread.ledger.store import open_ledger
-    from formread.read.batch import SCAN_SUFFIXES, read_batch
+    """Digits cut from development forms, (N, 1, 28, 28) float32, and their MNIST labels (N,): the
+    pages and digits ``benchmarks/cut_vs_clean.py`` takes, both field kinds."""
+    from cut_vs_clean import cut_digits, make_pages  # this script's own folder is on sys.path
 
-    meta = folder / "test_time_views.json"
-    want = {"style": "mixed", "pages": pages, "seed": seed}
-    if meta.is_file() and json.loads(meta.read_text()).get("settings") == want:
-        by_page = json.loads(meta.read_text())["mnist_by_page"]
-    else:
-        by_page = make_demo(folder, count=pages, seed=seed, style="mixed")["mnist_by_page"]
-        meta.write_text(json.dumps({"settings": want, "mnist_by_page": by_page}))
-    scans = sorted(p for p in folder.iterdir() if p.suffix.lower() in SCAN_SUFFIXES)
-    read_batch(scans, folder / "layout.toml", out, bundle=model, workers=2, command="benchmarks/test_time_views.py")
-    rows = [json.loads(line) for line in (folder / "truth.jsonl").read_text().splitlines() if line.strip()]
-    index = {(r["source"], int(r["page_number"])): i for i, r in enumerate(rows)}
+    from formread.learn.datasets import mnist_raw
+
+    got, _ = cut_digits(folder, out, model, make_pages(folder, "mixed", pages, seed),
+                        command="benchmarks/test_time_views.py")
     _, labels = mnist_raw()
-    xs, ys = [], []
-    with open_ledger(out) as ledger:
-        for r in ledger.field_rows():
-            key = (Path(r["source"]).name, int(r["page_number"]))
-            used = by_page[index[key]].get(r["name"], []) if key in index else []
-            if not used or not r.get("digits_path"):
-                continue
-            d = load_digits(out / r["digits_path"])
-            if len(d) == len(used):                 # cut to its written length
-                xs.append(d)
-                ys.append(labels[np.asarray(used)])
-    return np.concatenate(xs).astype(np.float32), np.concatenate(ys).astype(np.int64)
+    x = np.concatenate([g["cut"] for g in got.values()]).astype(np.float32)
+    return x, labels[np.concatenate([g["mnist"] for g in got.values()])].astype(np.int64)
 
 
 def _measure(bundle, x: np.ndarray, y: np.ndarray) -> dict:
